@@ -20,8 +20,15 @@ COMBINE_RULES = ("any", "all")
 FENCE_DETECTOR = "fence"
 FLATLINE_DETECTOR = "flatline"
 QUARTILE_METHODS = (
-    "linear", "weibull", "hazen", "median_unbiased", "normal_unbiased",
-    "lower", "higher", "midpoint", "nearest",
+    "linear",
+    "weibull",
+    "hazen",
+    "median_unbiased",
+    "normal_unbiased",
+    "lower",
+    "higher",
+    "midpoint",
+    "nearest",
 )
 
 
@@ -97,7 +104,9 @@ class DetectorSettings:
         values = dataclasses.asdict(base) if base is not None else {}
         for key, value in data.items():
             if key not in known:
-                raise InputError(f"{where} key '{key}'", f"unknown setting (known: {', '.join(known)})")
+                raise InputError(
+                    f"{where} key '{key}'", f"unknown setting (known: {', '.join(known)})"
+                )
             values[key] = _coerce(key, value, known[key].type, where)
         settings = cls(**values)
         settings.validate(where)
@@ -113,7 +122,9 @@ class DetectorSettings:
             raise bad("period_hours", "must be at least 2")
         if self.seasonal_span < 7 or self.seasonal_span % 2 == 0:
             raise bad("seasonal_span", "must be odd and at least 7")
-        if self.trend_span != 0 and (self.trend_span % 2 == 0 or self.trend_span <= self.period_hours):
+        if self.trend_span != 0 and (
+            self.trend_span % 2 == 0 or self.trend_span <= self.period_hours
+        ):
             raise bad("trend_span", "must be 0 (library default) or odd and above period_hours")
         cycles = 3 if not self.weekly_period else 2
         need = cycles * self.period_hours * (7 if self.weekly_period else 1)
@@ -125,7 +136,9 @@ class DetectorSettings:
         if self.refit_every_hours < 1:
             raise bad("refit_every_hours", "must be at least 1")
         if not 4 <= self.fence_window_hours < self.decomposition_window_hours:
-            raise bad("fence_window_hours", "must be at least 4 and below decomposition_window_hours")
+            raise bad(
+                "fence_window_hours", "must be at least 4 and below decomposition_window_hours"
+            )
         if not self.fence_multiplier > 0:
             raise bad("fence_multiplier", "must be positive")
         if self.quartile_method not in QUARTILE_METHODS:
@@ -136,7 +149,9 @@ class DetectorSettings:
             raise bad("flatline_hours", "must be 0 (off) or at least 2")
         if self.min_impact < 0:
             raise bad("min_impact", "must be zero or positive")
-        if self.combine not in COMBINE_RULES and not (self.combine.isdigit() and int(self.combine) >= 1):
+        if self.combine not in COMBINE_RULES and not (
+            self.combine.isdigit() and int(self.combine) >= 1
+        ):
             raise bad("combine", "must be 'any', 'all' or a positive whole number as text")
 
     @property
@@ -157,8 +172,13 @@ class DetectorSettings:
     def decomposition_key(self) -> tuple:
         """The settings a remainder stream depends on (cache key for decompositions)."""
         return (
-            self.period_hours, self.seasonal_span, self.trend_span, self.robust,
-            self.weekly_period, self.decomposition_window_hours, self.refit_every_hours,
+            self.period_hours,
+            self.seasonal_span,
+            self.trend_span,
+            self.robust,
+            self.weekly_period,
+            self.decomposition_window_hours,
+            self.refit_every_hours,
         )
 
     def to_table(self) -> dict[str, Any]:
@@ -236,7 +256,11 @@ class DetectorConfig:
         base = DetectorSettings.from_mapping(table, where)
         groups = []
         for name, gt in group_tables.items():
-            gwhere = f"{where.rstrip(']')}.group.{name}]" if where.endswith("]") else f"{where} group {name}"
+            gwhere = (
+                f"{where.rstrip(']')}.group.{name}]"
+                if where.endswith("]")
+                else f"{where} group {name}"
+            )
             if not isinstance(gt, Mapping):
                 raise InputError(gwhere, "must be a table")
             gt = dict(gt)
@@ -244,10 +268,14 @@ class DetectorConfig:
             metrics = gt.pop("metrics", [])
             for key, val in (("levels", levels), ("metrics", metrics)):
                 if not isinstance(val, list) or not all(isinstance(v, str) for v in val):
-                    raise InputError(f"{gwhere} key '{key}'", f"must be a list of names, but got {val!r}")
+                    raise InputError(
+                        f"{gwhere} key '{key}'", f"must be a list of names, but got {val!r}"
+                    )
             settings = DetectorSettings.from_mapping(gt, gwhere, base=base)
             groups.append(
-                DetectorGroup(name=name, levels=tuple(levels), metrics=tuple(metrics), settings=settings)
+                DetectorGroup(
+                    name=name, levels=tuple(levels), metrics=tuple(metrics), settings=settings
+                )
             )
         return cls(base=base, groups=tuple(groups))
 
@@ -259,7 +287,11 @@ class DetectorConfig:
             for g in self.groups:
                 base = self.base.to_table()
                 diff = {k: v for k, v in g.settings.to_table().items() if base[k] != v}
-                out["group"][g.name] = {"levels": list(g.levels), "metrics": list(g.metrics), **diff}
+                out["group"][g.name] = {
+                    "levels": list(g.levels),
+                    "metrics": list(g.metrics),
+                    **diff,
+                }
         return out
 
     def with_base(self, **changes: Any) -> DetectorConfig:

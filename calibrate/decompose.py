@@ -1,0 +1,244 @@
+"""Remainder streams: STL on trailing windows, hour by hour (pipeline stage 3).
+
+For one series and one set of decomposition settings, `remainder_stream` returns,
+for every replayed hour t, the expected value, the remainder and the quartiles of
+the W remainders the detector sees just before t, for a whole grid of fence
+windows W at once. That is everything the fences need, so trials that change only
+the fence window, multiplier, sides or minimum impact never refit.
+
+Two fit providers give identical flags: the linear-smoother path (non-robust fits,
+every fitted value a fixed weighted sum of the window, so all fits of a series are
+one matrix product) and the compiled STL kernel (robust fits).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
+from calibrate.settings import DetectorSettings
+
+MIN_FENCE_VALUES = 4  # fewer usable remainders in a fence window: no score
+
+
+@dataclass
+class Stream:
+    """Per-hour decomposition results of one series (arrays of length n).
+
+    Hours before the first replayed hour (L-1) and hours whose value is undefined
+    hold NaN in `remainder`; `q1[W]`, `q3[W]` are NaN where fewer than
+    `MIN_FENCE_VALUES` usable remainders were in the window.
+    """
+
+    expected: np.ndarray
+    remainder: np.ndarray
+    q1: dict[int, np.ndarray]
+    q3: dict[int, np.ndarray]
+
+
+def _fill_window(window: np.ndarray) -> np.ndarray | None:
+    """Linear interpolation of NaN hours inside one fit window (edges held)."""
+    ok = ~np.isnan(window)
+    if ok.all():
+        return window
+    if not ok.any():
+        return None
+    x = np.arange(len(window))
+    out = window.copy()
+    out[~ok] = np.interp(x[~ok], x[ok], window[ok])
+    return out
+
+
+def _seasonal_periods(s: DetectorSettings) -> tuple[int, ...]:
+    return (s.period_hours, 7 * s.period_hours) if s.weekly_period else (s.period_hours,)
+
+
+def _fit_windows(windows: np.ndarray, s: DetectorSettings, tail: int):
+    """Fit each row of `windows`; return trend at the last point, seasonal tails
+    (one array per seasonal component, last `tail` points) and remainder tails."""
+    L = windows.shape[1]
+    if not s.robust:
+        trend_m, seas_ms = _linear_parts(L, s)
+        trend_last = windows @ trend_m[L - 1]
+        seas = [windows @ m[L - tail :].T for m in seas_ms]
+        fitted_tail = windows @ trend_m[L - tail :].T
+        for sc in seas:
+            fitted_tail = fitted_tail + sc
+        resid = windows[:, L - tail :] - fitted_tail
+        return trend_last, seas, resid
+    trend, seasonal, resid = _fit_many(windows, s)
+    seas = [c[:, L - tail :] for c in seasonal]
+    return trend[:, L - 1], seas, resid[:, L - tail :]
+
+
+def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[int, ...]) -> Stream:
+    """Replay one series through the decomposition and compute fence quartiles.
+
+    Parameters
+    ----------
+    y : ndarray
+        Hourly values, NaN where undefined (interpolated for the fits only).
+    s : DetectorSettings
+        Only the decomposition settings and `quartile_method` are used.
+    fence_windows : tuple of int
+        Every fence window W to compute quartiles for (each < L).
+    """
+    y = np.asarray(y, dtype=np.float64)
+    n = len(y)
+    L, h = s.decomposition_window_hours, s.refit_every_hours
+    wmax = max(fence_windows)
+    periods = _seasonal_periods(s)
+    tail = max(wmax + 1, max(periods)) if h > 1 else wmax + 1
+    tail = min(tail, L)
+    expected = np.full(n, np.nan)
+    remainder = np.full(n, np.nan)
+    q1 = {w: np.full(n, np.nan) for w in fence_windows}
+    q3 = {w: np.full(n, np.nan) for w in fence_windows}
+    if n < L:
+        return Stream(expected, remainder, q1, q3)
+    valid = ~np.isnan(y)
+    refits = np.arange(L - 1, n, h)
+    windows = sliding_window_view(y, L)[refits - (L - 1)]
+    bad = np.isnan(windows).any(axis=1)
+    usable = np.ones(len(refits), dtype=bool)
+    if bad.any():
+        windows = windows.copy()
+        for i in np.flatnonzero(bad):
+            filled = _fill_window(windows[i])
+            if filled is None:
+                usable[i] = False
+                windows[i] = 0.0
+            else:
+                windows[i] = filled
+    else:
+        windows = np.ascontiguousarray(windows)
+    trend_last, seas, resid = _fit_windows(windows, s, tail)
+    # stream[j, c]: the remainder the detector holds for hour t_j - wmax + c
+    hours = np.arange(L - 1, n)
+    n_rep = len(hours)
+    stream = np.full((n_rep, wmax), np.nan)
+    fit_of = (hours - (L - 1)) // h
+    offset = hours - refits[fit_of]  # hours since the last refit
+    # in-sample part: hour i = t - wmax + c <= t0  -> resid column tail-1-(t0-i)
+    for c in range(wmax):
+        i = hours - wmax + c
+        insample = i <= refits[fit_of]
+        col = tail - 1 - (refits[fit_of] - i)
+        sel = insample & (col >= 0)
+        stream[sel, c] = resid[fit_of[sel], col[sel]]
+    # expected values: refit hours from the fit, others extrapolated
+    exp = trend_last[fit_of].copy()
+    for p, sc in zip(periods, seas, strict=True):
+        lag = p * np.ceil(offset / p).astype(np.int64)
+        col = tail - 1 + offset - lag
+        exp = exp + sc[fit_of, col]
+    exp[~usable[fit_of]] = np.nan
+    expected[hours] = exp
+    remainder[hours] = np.where(valid[hours], y[hours] - exp, np.nan)
+    if h > 1:
+        # out-of-sample part: hours t0 < i < t use remainder_i
+        for c in range(wmax):
+            i = hours - wmax + c
+            outs = i > refits[fit_of]
+            stream[outs, c] = remainder[i[outs]]
+    # masked hours leave the fence windows
+    idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
+    stream[~valid[np.clip(idx, 0, n - 1)]] = np.nan
+    stream[~usable[fit_of]] = np.nan
+    for w in fence_windows:
+        block = stream[:, wmax - w :]
+        a, b = _quartiles(block, s.quartile_method)
+        q1[w][hours] = a
+        q3[w][hours] = b
+    return Stream(expected, remainder, q1, q3)
+
+
+def _quartiles(block: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
+    """Q1, Q3 of each row's non-NaN values, exactly as numpy.percentile gives them."""
+    nan = np.isnan(block)
+    counts = block.shape[1] - nan.sum(axis=1)
+    q = np.full((2, block.shape[0]), np.nan)
+    full = counts == block.shape[1]
+    if full.any():
+        q[:, full] = np.percentile(block[full], [25.0, 75.0], axis=1, method=method)
+    partial = np.flatnonzero(~full & (counts >= MIN_FENCE_VALUES))
+    for r in partial:
+        row = block[r]
+        q[:, r] = np.percentile(row[~np.isnan(row)], [25.0, 75.0], method=method)
+    return q[0], q[1]
+
+
+def fence_scores(remainder: np.ndarray, q1: np.ndarray, q3: np.ndarray, sides: str) -> np.ndarray:
+    """Fence score per hour: how many IQRs beyond the nearer watched quartile.
+
+    NaN where there is no score (no remainder or no quartiles). With IQR = 0 a
+    remainder beyond a watched quartile scores +inf and any other scores 0.
+    """
+    iqr = q3 - q1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        up = (remainder - q3) / iqr
+        down = (q1 - remainder) / iqr
+    zero = iqr == 0
+    up = np.where(zero, np.where(remainder > q3, np.inf, 0.0), up)
+    down = np.where(zero, np.where(remainder < q1, np.inf, 0.0), down)
+    if sides == "up":
+        score = up
+    elif sides == "down":
+        score = down
+    else:
+        score = np.maximum(up, down)
+    bad = np.isnan(remainder) | np.isnan(q1) | np.isnan(q3)
+    return np.where(bad, np.nan, score)
+
+
+def _fit_one(y: np.ndarray, s: DetectorSettings):
+    """One fit: trend, list of seasonal components, remainder (statsmodels semantics)."""
+    from statsmodels.tsa.seasonal import MSTL, STL
+
+    trend = None if s.trend_span == 0 else s.trend_span
+    if s.weekly_period:
+        res = MSTL(
+            y,
+            periods=_seasonal_periods(s),
+            windows=(s.seasonal_span, s.seasonal_span + 4),
+            stl_kwargs={"robust": s.robust, "trend": trend},
+        ).fit()
+        seas = np.asarray(res.seasonal)
+        return np.asarray(res.trend), [seas[:, 0], seas[:, 1]], np.asarray(res.resid)
+    res = STL(
+        y, period=s.period_hours, seasonal=s.seasonal_span, trend=trend, robust=s.robust
+    ).fit()
+    return np.asarray(res.trend), [np.asarray(res.seasonal)], np.asarray(res.resid)
+
+
+def _fit_many(windows: np.ndarray, s: DetectorSettings):
+    n, L = windows.shape
+    k = 2 if s.weekly_period else 1
+    trend = np.empty((n, L))
+    seas = [np.empty((n, L)) for _ in range(k)]
+    resid = np.empty((n, L))
+    for i in range(n):
+        t, sc, r = _fit_one(windows[i], s)
+        trend[i] = t
+        resid[i] = r
+        for j in range(k):
+            seas[j][i] = sc[j]
+    return trend, seas, resid
+
+
+_LINEAR_CACHE: dict[tuple, tuple[np.ndarray, list[np.ndarray]]] = {}
+
+
+def _linear_parts(L: int, s: DetectorSettings) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Matrices T, S_k with trend = T @ y and seasonal_k = S_k @ y for a window y."""
+    key = (L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period)
+    if key not in _LINEAR_CACHE:
+        trend, seas, _ = _fit_many(np.eye(L), s)
+        # row i of the fits of unit vector e_j is column j of the smoother matrix
+        _LINEAR_CACHE[key] = (
+            np.ascontiguousarray(trend.T),
+            [np.ascontiguousarray(m.T) for m in seas],
+        )
+    return _LINEAR_CACHE[key]

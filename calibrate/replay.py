@@ -1,0 +1,363 @@
+"""Hour-by-hour replay of the detector over every level and metric (stage 5).
+
+`Replayer` holds the history arrays, the executor and a cache of remainder
+streams keyed by the decomposition settings, so repeated replays (one per search
+trial) refit only when a setting the decomposition depends on changes. `replay`
+is the one-call convenience around it. Results stay numpy arrays; frames are made
+only by `alerts_frame` / `scores_frame` at the edge.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from tqdm.auto import tqdm
+
+from calibrate.decompose import Stream, fence_scores, remainder_stream
+from calibrate.detectors import detector_names, episodes_grid, flatline_flags
+from calibrate.episodes import Episodes
+from calibrate.executors import Executor, SerialExecutor, batched
+from calibrate.history import History
+from calibrate.settings import DetectorConfig, DetectorSettings
+
+SERIES_PER_TASK = 8
+
+
+@dataclass
+class StreamSet:
+    """Remainder streams of every series of one level and metric (n_series, n_hours)."""
+
+    expected: np.ndarray
+    remainder: np.ndarray
+    q1: dict[int, np.ndarray]
+    q3: dict[int, np.ndarray]
+
+    @property
+    def nbytes(self) -> int:
+        arrays = [self.expected, self.remainder, *self.q1.values(), *self.q3.values()]
+        return sum(a.nbytes for a in arrays)
+
+
+@dataclass
+class MetricScores:
+    """Per-hour detector results of one level and metric, all (n_series, n_hours)."""
+
+    level: str
+    metric: str
+    settings: DetectorSettings
+    value: np.ndarray
+    expected: np.ndarray
+    remainder: np.ndarray
+    q1: np.ndarray
+    q3: np.ndarray
+    score: np.ndarray
+    flat: np.ndarray
+
+    def flagged(self, k: float | None = None) -> np.ndarray:
+        """Hours flagged by the combined detectors at multiplier k (default: settings')."""
+        k = self.settings.fence_multiplier if k is None else k
+        with np.errstate(invalid="ignore"):
+            count = (self.score > k).astype(np.int8) + self.flat.astype(np.int8)
+        return count >= self.settings.min_detectors
+
+
+def _stream_task(shared: dict, task: tuple) -> tuple:
+    level, metric, rows, settings, windows = task
+    values = shared[(level, metric)]
+    out = [remainder_stream(values[r], settings, windows) for r in rows]
+    return level, metric, rows, out
+
+
+@dataclass
+class ReplayResult:
+    """What one replay raised, plus the per-hour scores it raised it from."""
+
+    history: History
+    config: DetectorConfig
+    scores: dict[tuple[str, str], MetricScores]
+    episodes: Episodes
+    routes: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def alerts_frame(self) -> pd.DataFrame:
+        """Alerts in the DESIGN.md contract (one row per episode)."""
+        return alerts_frame(self.episodes, self.history)
+
+    def scores_frame(self) -> pd.DataFrame:
+        """Per-hour scores (DESIGN.md contract) for every replayed hour."""
+        h = self.history
+        parts = []
+        for (level, metric), ms in self.scores.items():
+            ls = h.levels[level]
+            s_idx, t_idx = np.nonzero(~np.isnan(ms.expected))
+            flagged = ms.flagged()
+            part = {"level": level}
+            for col in h.key_columns:
+                part[col] = (
+                    ls.keys[col].to_numpy(dtype=object)[s_idx] if col in ls.key_columns else ""
+                )
+            part.update(
+                metric=metric,
+                hour=h.hours[t_idx],
+                value=ms.value[s_idx, t_idx],
+                expected=ms.expected[s_idx, t_idx],
+                remainder=ms.remainder[s_idx, t_idx],
+                q1=ms.q1[s_idx, t_idx],
+                q3=ms.q3[s_idx, t_idx],
+                lower=ms.q1[s_idx, t_idx]
+                - ms.settings.fence_multiplier * (ms.q3[s_idx, t_idx] - ms.q1[s_idx, t_idx]),
+                upper=ms.q3[s_idx, t_idx]
+                + ms.settings.fence_multiplier * (ms.q3[s_idx, t_idx] - ms.q1[s_idx, t_idx]),
+                score=ms.score[s_idx, t_idx],
+                flagged=flagged[s_idx, t_idx],
+            )
+            parts.append(pd.DataFrame(part))
+        if not parts:
+            return pd.DataFrame()
+        return pd.concat(parts, ignore_index=True)
+
+
+class Replayer:
+    """Replays a history under many configurations, reusing remainder streams.
+
+    Parameters
+    ----------
+    history : History
+    levels, metrics : sequence of str, optional
+        Subset to replay (default: every level and every watched metric).
+    executor : Executor, optional
+        Where the decompositions run (default: this process).
+    routes : dict, optional
+        level -> team of each series (from `Owners.route`).
+    fence_windows : tuple of int, optional
+        Grid of fence windows whose quartiles are computed at fit time; a
+        configuration's own fence window is always added.
+    progress : bool
+        Show a progress bar over decomposition tasks.
+    """
+
+    def __init__(
+        self,
+        history: History,
+        *,
+        levels: list[str] | None = None,
+        metrics: list[str] | None = None,
+        executor: Executor | None = None,
+        routes: dict[str, np.ndarray] | None = None,
+        fence_windows: tuple[int, ...] = (),
+        progress: bool = True,
+    ):
+        self.history = history
+        self.levels = list(levels) if levels else list(history.levels)
+        first = history.levels[self.levels[0]]
+        self.metrics = list(metrics) if metrics else list(first.values)
+        self.executor = executor or SerialExecutor()
+        self.routes = routes or {}
+        self.fence_windows = tuple(sorted(set(fence_windows)))
+        self.progress = progress
+        self.cache: dict[tuple, StreamSet] = {}
+        self.shared = {
+            (lv, m): history.levels[lv].values[m] for lv in self.levels for m in self.metrics
+        }
+        self.fits = 0  # decompositions computed (series x settings), for reports
+
+    def _key(self, level: str, metric: str, s: DetectorSettings) -> tuple:
+        return (level, metric, s.decomposition_key(), s.quartile_method)
+
+    def streams(self, config: DetectorConfig) -> dict[tuple[str, str], StreamSet]:
+        """Remainder streams for every (level, metric) under `config`, computing
+        only those not cached (one executor run for all of them)."""
+        need: dict[tuple, tuple[str, str, DetectorSettings, tuple[int, ...]]] = {}
+        for lv in self.levels:
+            for m in self.metrics:
+                s = config.for_series(lv, m)
+                key = self._key(lv, m, s)
+                have = self.cache.get(key)
+                if have is not None and s.fence_window_hours in have.q1:
+                    continue
+                windows = set(self.fence_windows) | {s.fence_window_hours}
+                windows = {w for w in windows if w < s.decomposition_window_hours}
+                if have is not None:
+                    windows |= set(have.q1)
+                need[key] = (lv, m, s, tuple(sorted(windows)))
+        tasks = []
+        for lv, m, s, windows in need.values():
+            n_s = self.history.levels[lv].n_series
+            for rows in batched(range(n_s), SERIES_PER_TASK):
+                tasks.append((lv, m, np.array(rows), s, windows))
+        if tasks:
+            results: dict[tuple, list] = {}
+            bar = tqdm(
+                total=len(tasks), desc="replay", unit="task", disable=not self.progress, leave=False
+            )
+            for _, (lv, m, rows, out) in self.executor.run(_stream_task, self.shared, tasks):
+                results.setdefault((lv, m), []).append((rows, out))
+                bar.update(1)
+            bar.close()
+            for key, (lv, m, _s, windows) in need.items():
+                self.cache[key] = _assemble(results[(lv, m)], self.history, lv, windows)
+                self.fits += self.history.levels[lv].n_series
+        return {
+            (lv, m): self.cache[self._key(lv, m, config.for_series(lv, m))]
+            for lv in self.levels
+            for m in self.metrics
+        }
+
+    def scores(self, config: DetectorConfig) -> dict[tuple[str, str], MetricScores]:
+        """Fence scores and flatline flags for every (level, metric)."""
+        out = {}
+        for (lv, m), st in self.streams(config).items():
+            s = config.for_series(lv, m)
+            w = s.fence_window_hours
+            q1, q3 = st.q1[w], st.q3[w]
+            score = fence_scores(st.remainder, q1, q3, s.sides)
+            value = self.history.levels[lv].values[m]
+            if s.flatline_hours:
+                flat = flatline_flags(value, st.expected, q3 - q1, s.flatline_hours)
+            else:
+                flat = np.zeros(value.shape, dtype=bool)
+            out[(lv, m)] = MetricScores(
+                lv, m, s, value, st.expected, st.remainder, q1, q3, score, flat
+            )
+        return out
+
+    def replay(self, config: DetectorConfig) -> ReplayResult:
+        """Replay `config`: per-hour scores and the alert episodes it raises."""
+        scores = self.scores(config)
+        episodes = sweep(scores, None, self.routes)
+        return ReplayResult(self.history, config, scores, episodes, self.routes)
+
+    def close(self) -> None:
+        self.executor.close()
+
+
+def _assemble(parts: list, history: History, level: str, windows: tuple[int, ...]) -> StreamSet:
+    n_s, n = history.levels[level].n_series, history.n_hours
+    expected = np.full((n_s, n), np.nan)
+    remainder = np.full((n_s, n), np.nan)
+    q1 = {w: np.full((n_s, n), np.nan) for w in windows}
+    q3 = {w: np.full((n_s, n), np.nan) for w in windows}
+    for rows, streams in parts:
+        for r, st in zip(rows, streams, strict=True):
+            st: Stream
+            expected[r] = st.expected
+            remainder[r] = st.remainder
+            for w in windows:
+                q1[w][r] = st.q1[w]
+                q3[w][r] = st.q3[w]
+    return StreamSet(expected, remainder, q1, q3)
+
+
+def sweep(
+    scores: dict[tuple[str, str], MetricScores],
+    ks: np.ndarray | None,
+    routes: dict[str, np.ndarray] | None = None,
+    apply_min_impact: bool = True,
+) -> Episodes:
+    """Episodes for a whole grid of fence multipliers at once, without replaying.
+
+    Parameters
+    ----------
+    scores : dict
+        Output of `Replayer.scores`.
+    ks : array of float or None
+        Multiplier grid; None uses each series' own `fence_multiplier` (grid 0).
+    routes : dict, optional
+        level -> team per series.
+    apply_min_impact : bool
+        Drop episodes whose |impact| is below the series' `min_impact`.
+
+    Returns
+    -------
+    Episodes
+        With `grid` the index into `ks`.
+    """
+    parts = []
+    for (lv, m), ms in scores.items():
+        grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
+        ints, floats = episodes_grid(
+            ms.score, ms.flat, ms.value, ms.expected, grid, ms.settings.min_detectors
+        )
+        if apply_min_impact and ms.settings.min_impact > 0:
+            keep = np.abs(floats[:, 1] - floats[:, 2]) >= ms.settings.min_impact
+            ints, floats = ints[keep], floats[keep]
+        k = len(ints)
+        team = np.full(k, "", dtype=object)
+        if routes and lv in routes:
+            team = np.asarray(routes[lv], dtype=object)[ints[:, 1]]
+        parts.append(
+            Episodes(
+                level=np.full(k, lv, dtype=object),
+                series=ints[:, 1],
+                metric=np.full(k, m, dtype=object),
+                start=ints[:, 2],
+                end=ints[:, 3],
+                peak_hour=ints[:, 4],
+                peak_score=floats[:, 0],
+                value=floats[:, 1],
+                expected=floats[:, 2],
+                detectors=detector_names(ints[:, 5]),
+                team=team,
+                grid=ints[:, 0],
+            )
+        )
+    eps = Episodes.concat(parts)
+    if len(eps):
+        order = np.lexsort(
+            (eps.metric.astype(str), eps.series, eps.level.astype(str), eps.start, eps.grid)
+        )
+        eps = eps.take(order)
+    return eps
+
+
+def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
+    """Episodes as the Alerts CSV contract of DESIGN.md, sorted by start."""
+    hours = history.hours
+    cols: dict[str, object] = {
+        "alert_id": [f"A{i + 1:06d}" for i in range(len(episodes))],
+        "level": episodes.level,
+    }
+    for col in history.key_columns:
+        vals = np.full(len(episodes), "", dtype=object)
+        for lv in pd.unique(episodes.level):
+            ls = history.levels[lv]
+            if col in ls.key_columns:
+                sel = episodes.level == lv
+                vals[sel] = ls.keys[col].to_numpy(dtype=object)[episodes.series[sel]]
+        cols[col] = vals
+    end_hours = hours.append(pd.DatetimeIndex([hours[-1] + pd.Timedelta(hours=1)]))
+    cols.update(
+        metric=episodes.metric,
+        start=_iso(hours[episodes.start]),
+        end=_iso(end_hours[episodes.end]),
+        peak_hour=_iso(hours[episodes.peak_hour]),
+        peak_score=episodes.peak_score,
+        value=episodes.value,
+        expected=episodes.expected,
+        impact=episodes.impact,
+        team=episodes.team,
+        detectors=episodes.detectors,
+    )
+    return pd.DataFrame(cols)
+
+
+def _iso(idx: pd.DatetimeIndex) -> np.ndarray:
+    return np.asarray(idx.strftime("%Y-%m-%dT%H:%M:%SZ"), dtype=object)
+
+
+def replay(
+    history: History,
+    config: DetectorConfig,
+    *,
+    levels: list[str] | None = None,
+    metrics: list[str] | None = None,
+    executor: Executor | None = None,
+    routes: dict[str, np.ndarray] | None = None,
+    progress: bool = True,
+) -> ReplayResult:
+    """Replay `config` over `history` once (see `Replayer` for repeated use)."""
+    rp = Replayer(
+        history, levels=levels, metrics=metrics, executor=executor, routes=routes, progress=progress
+    )
+    return rp.replay(config)

@@ -1,0 +1,885 @@
+"""Match alerts to incidents; figures with intervals; alert volume; the multiplier curve.
+
+Pipeline stage 6 (second half). Pure functions on the column tables `Episodes` and
+`Incidents`; the only frame-reading function is `episodes_from_alerts_frame`.
+
+Event rule (one rule for catches and for true alerts): an episode and an incident
+meet when they share level and series, the incident's metric is blank or equals the
+episode's, and the episode's hours ``[start, end)`` overlap the incident's window
+``[start - early_hours, end + late_hours)``. An incident is caught when some episode
+meets it; an episode is a true alert when it meets some incident. Alerts on an
+ancestor or descendant series are credited only when asked (``related=history``) and
+then reported separately, never in the main figures.
+
+Teams come from the ``team`` column of both tables; `route_teams` fills it from a
+routing array per level (the seam to ``calibrate.owners``).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field, replace
+from typing import Any, TypeVar
+
+import numpy as np
+import pandas as pd
+from statsmodels.stats.proportion import proportion_confint
+
+from calibrate.episodes import Episodes
+from calibrate.errors import InputError
+from calibrate.history import History
+from calibrate.incidents import (
+    ANY_METRIC,
+    FrameRows,
+    Incidents,
+    resolve_hours,
+    resolve_metrics,
+    resolve_series,
+)
+from calibrate.workspace import Goal, Workspace
+
+Table = TypeVar("Table", Episodes, Incidents)
+ANY_LABEL = "(any)"
+ALERT_COLUMNS = ("alert_id", "level", "metric", "start", "end")
+
+
+# --------------------------------------------------------------------------- seams
+
+
+def route_teams(table: Table, routes: Mapping[str, np.ndarray]) -> Table:
+    """Copy of `table` with ``team`` set from ``routes[level][series]``.
+
+    Parameters
+    ----------
+    table : Episodes or Incidents
+    routes : mapping of level -> ndarray of str
+        Team of every series of the level (e.g. from ``Owners.route``); levels not
+        in the mapping keep "".
+    """
+    team = np.full(len(table), "", dtype=object)
+    for lv in pd.unique(table.level):
+        if lv in routes:
+            m = table.level == lv
+            team[m] = np.asarray(routes[lv], dtype=object)[table.series[m]]
+    return replace(table, team=team)
+
+
+def period_filter(table: Table, start_hour: int | None, end_hour: int | None) -> Table:
+    """Rows of `table` that start in ``[start_hour, end_hour)`` (None = unbounded)."""
+    keep = np.ones(len(table), dtype=bool)
+    if start_hour is not None:
+        keep &= table.start >= start_hour
+    if end_hour is not None:
+        keep &= table.start < end_hour
+    return table.take(keep)
+
+
+# --------------------------------------------------------------------------- match
+
+
+@dataclass
+class Match:
+    """Result of `match`.
+
+    Attributes
+    ----------
+    early_hours, late_hours : int
+    caught : ndarray of bool, per incident
+    first_alert : ndarray of int64, per incident
+        Episode index of the earliest-starting episode meeting the incident (-1 if missed).
+    delay : ndarray of float64, per incident
+        Hours from incident start to that episode's start (NaN if missed; negative
+        when caught inside the early tolerance).
+    alert_true : ndarray of bool, per episode
+    alert_incident : ndarray of int64, per episode
+        First incident (lowest index) the episode meets, -1 for a false alert.
+    pair_alert, pair_incident : ndarray of int64
+        Every (episode, incident) pair that meets, sorted by incident then episode.
+    caught_related : ndarray of bool, per incident
+        Missed by the main rule but met by an alert on an ancestor or descendant
+        series (always False unless `match` was given ``related``).
+    related_first_alert : ndarray of int64, per incident (-1 if none)
+    alert_related : ndarray of bool, per episode
+        False alert that meets an incident of a related series.
+    """
+
+    early_hours: int
+    late_hours: int
+    caught: np.ndarray
+    first_alert: np.ndarray
+    delay: np.ndarray
+    alert_true: np.ndarray
+    alert_incident: np.ndarray
+    pair_alert: np.ndarray
+    pair_incident: np.ndarray
+    caught_related: np.ndarray
+    related_first_alert: np.ndarray
+    alert_related: np.ndarray
+
+    def incidents_of(self, alert: int) -> np.ndarray:
+        """Indices of the incidents episode `alert` meets."""
+        return self.pair_incident[self.pair_alert == alert]
+
+    def alerts_of(self, incident: int) -> np.ndarray:
+        """Indices of the episodes meeting incident `incident`."""
+        return self.pair_alert[self.pair_incident == incident]
+
+
+def match(
+    episodes: Episodes,
+    incidents: Incidents,
+    early_hours: int,
+    late_hours: int,
+    related: History | None = None,
+) -> Match:
+    """Match alert episodes of one detector configuration to incidents.
+
+    Parameters
+    ----------
+    episodes : Episodes
+        Alerts of one configuration (the ``grid`` column is ignored).
+    incidents : Incidents
+    early_hours, late_hours : int
+        Tolerances: the incident window is ``[start - early_hours, end + late_hours)``.
+    related : History, optional
+        When given, alerts on an ancestor or descendant series (key prefixes) are
+        credited in ``caught_related`` / ``alert_related``; main figures are unchanged.
+
+    Returns
+    -------
+    Match
+    """
+    if early_hours < 0 or late_hours < 0:
+        raise ValueError(f"tolerances must be >= 0, but got {early_hours=}, {late_hours=}")
+    n_inc, n_ep = len(incidents), len(episodes)
+    pa, pi = _overlap_pairs(episodes, incidents, early_hours, late_hours)
+    caught, first = _first_per_incident(pa, pi, episodes.start, n_inc)
+    delay = np.full(n_inc, np.nan)
+    delay[caught] = episodes.start[first[caught]] - incidents.start[caught]
+    alert_true = np.zeros(n_ep, dtype=bool)
+    alert_true[pa] = True
+    alert_incident = np.full(n_ep, -1, dtype=np.int64)
+    # pairs are sorted by incident, so reversed assignment leaves the lowest incident
+    alert_incident[pa[::-1]] = pi[::-1]
+
+    caught_related = np.zeros(n_inc, dtype=bool)
+    related_first = np.full(n_inc, -1, dtype=np.int64)
+    alert_related = np.zeros(n_ep, dtype=bool)
+    if related is not None:
+        ra, ri = _related_pairs(episodes, incidents, early_hours, late_hours, related)
+        rc, rfirst = _first_per_incident(ra, ri, episodes.start, n_inc)
+        caught_related = rc & ~caught
+        related_first = np.where(caught_related, rfirst, -1)
+        alert_related[ra] = True
+        alert_related &= ~alert_true
+    return Match(
+        early_hours=early_hours,
+        late_hours=late_hours,
+        caught=caught,
+        first_alert=first,
+        delay=delay,
+        alert_true=alert_true,
+        alert_incident=alert_incident,
+        pair_alert=pa,
+        pair_incident=pi,
+        caught_related=caught_related,
+        related_first_alert=related_first,
+        alert_related=alert_related,
+    )
+
+
+def _overlap_pairs(
+    episodes: Episodes, incidents: Incidents, early: int, late: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """All (episode, incident) pairs that meet, sorted by incident then episode."""
+    n_ep, n_inc = len(episodes), len(incidents)
+    if n_ep == 0 or n_inc == 0:
+        return np.array([], dtype=np.int64), np.array([], dtype=np.int64)
+    codes, _ = pd.factorize(np.concatenate([episodes.level, incidents.level]).astype(str))
+    width = int(max(episodes.series.max(), incidents.series.max())) + 1
+    ep_code = codes[:n_ep].astype(np.int64) * width + episodes.series
+    inc_code = codes[n_ep:].astype(np.int64) * width + incidents.series
+    order = np.lexsort((episodes.start, ep_code))
+    code_sorted = ep_code[order]
+    start_sorted = episodes.start[order]
+    lo = np.searchsorted(code_sorted, inc_code, side="left")
+    hi = np.searchsorted(code_sorted, inc_code, side="right")
+    out_a: list[np.ndarray] = []
+    out_i: list[np.ndarray] = []
+    for i in range(n_inc):
+        if lo[i] == hi[i]:
+            continue
+        win_lo = incidents.start[i] - early
+        win_hi = incidents.end[i] + late
+        # starts are sorted within one series, so the window's right edge bounds the slice
+        stop = lo[i] + np.searchsorted(start_sorted[lo[i]:hi[i]], win_hi, side="left")
+        cand = order[lo[i]:stop]
+        cand = cand[episodes.end[cand] > win_lo]
+        if incidents.metric[i] != ANY_METRIC:
+            cand = cand[episodes.metric[cand] == incidents.metric[i]]
+        if len(cand):
+            out_a.append(np.sort(cand))
+            out_i.append(np.full(len(cand), i, dtype=np.int64))
+    if not out_a:
+        return np.array([], dtype=np.int64), np.array([], dtype=np.int64)
+    return np.concatenate(out_a).astype(np.int64), np.concatenate(out_i)
+
+
+def _related_pairs(
+    episodes: Episodes, incidents: Incidents, early: int, late: int, history: History
+) -> tuple[np.ndarray, np.ndarray]:
+    """Pairs meeting on an ancestor or descendant series (same metric rule, same window)."""
+    keys = {
+        name: (ls.key_columns, ls.keys[list(ls.key_columns)].astype(str).to_numpy(dtype=object))
+        for name, ls in history.levels.items()
+    }
+    by_level = {lv: np.flatnonzero(episodes.level == lv) for lv in pd.unique(episodes.level)}
+    out_a: list[np.ndarray] = []
+    out_i: list[np.ndarray] = []
+    for i in range(len(incidents)):
+        cols_i, keys_i = keys[incidents.level[i]]
+        kt = keys_i[incidents.series[i]]
+        a = len(cols_i)
+        for lv, idx in by_level.items():
+            if lv == incidents.level[i] or lv not in keys:
+                continue
+            cols_l, keys_l = keys[lv]
+            b = len(cols_l)
+            if b == a or tuple(cols_l[: min(a, b)]) != tuple(cols_i[: min(a, b)]):
+                continue
+            if b > a:
+                rel = np.flatnonzero((keys_l[:, :a] == kt).all(axis=1))
+            else:
+                rel = np.flatnonzero((keys_l == kt[:b]).all(axis=1))
+            cand = idx[np.isin(episodes.series[idx], rel)]
+            cand = cand[
+                (episodes.start[cand] < incidents.end[i] + late)
+                & (episodes.end[cand] > incidents.start[i] - early)
+            ]
+            if incidents.metric[i] != ANY_METRIC:
+                cand = cand[episodes.metric[cand] == incidents.metric[i]]
+            if len(cand):
+                out_a.append(cand)
+                out_i.append(np.full(len(cand), i, dtype=np.int64))
+    if not out_a:
+        return np.array([], dtype=np.int64), np.array([], dtype=np.int64)
+    pa, pi = np.concatenate(out_a).astype(np.int64), np.concatenate(out_i)
+    order = np.lexsort((pa, pi))
+    return pa[order], pi[order]
+
+
+def _first_per_incident(
+    pa: np.ndarray, pi: np.ndarray, ep_start: np.ndarray, n_inc: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Per incident: caught flag and the earliest-starting meeting episode (ties: lowest)."""
+    caught = np.zeros(n_inc, dtype=bool)
+    first = np.full(n_inc, -1, dtype=np.int64)
+    if len(pa):
+        order = np.lexsort((pa, ep_start[pa], pi))
+        sp, si = pa[order], pi[order]
+        head = np.r_[True, si[1:] != si[:-1]]
+        caught[si[head]] = True
+        first[si[head]] = sp[head]
+    return caught, first
+
+
+# --------------------------------------------------------------------------- figures
+
+
+def wilson(
+    count: np.ndarray | int, nobs: np.ndarray | int, confidence: float = 0.95
+) -> tuple[np.ndarray, np.ndarray]:
+    """Wilson score interval (statsmodels `proportion_confint`); NaN where nobs == 0."""
+    count = np.asarray(count, dtype=np.float64)
+    nobs = np.asarray(nobs, dtype=np.float64)
+    safe = np.where(nobs > 0, nobs, 1.0)
+    low, high = proportion_confint(
+        np.minimum(count, safe), safe, alpha=1.0 - confidence, method="wilson"
+    )
+    low = np.where(nobs > 0, np.clip(low, 0.0, 1.0), np.nan)
+    high = np.where(nobs > 0, np.clip(high, 0.0, 1.0), np.nan)
+    return low, high
+
+
+def _ratio(num: np.ndarray | float, den: np.ndarray | float) -> np.ndarray:
+    num = np.asarray(num, dtype=np.float64)
+    den = np.asarray(den, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+
+
+def _summary(
+    caught: np.ndarray, delay: np.ndarray, alert_true: np.ndarray, confidence: float
+) -> dict[str, float | int]:
+    n, c = len(caught), int(caught.sum())
+    alerts, true_alerts = len(alert_true), int(alert_true.sum())
+    low, high = wilson(n - c, n, confidence)
+    plow, phigh = wilson(true_alerts, alerts, confidence)
+    d = delay[caught]
+    return {
+        "incidents": n,
+        "caught": c,
+        "missed": n - c,
+        "miss_rate": float(_ratio(n - c, n)),
+        "miss_rate_low": float(low),
+        "miss_rate_high": float(high),
+        "recall": float(_ratio(c, n)),
+        "recall_low": float(1.0 - high),
+        "recall_high": float(1.0 - low),
+        "alerts": alerts,
+        "true_alerts": true_alerts,
+        "false_alerts": alerts - true_alerts,
+        "precision": float(_ratio(true_alerts, alerts)),
+        "precision_low": float(plow),
+        "precision_high": float(phigh),
+        "delay_median_hours": float(np.median(d)) if len(d) else math.nan,
+        "delay_p90_hours": float(np.percentile(d, 90)) if len(d) else math.nan,
+    }
+
+
+@dataclass
+class Figures:
+    """Event-level figures of one configuration over one period.
+
+    Rates and precision are NaN when undefined (no incidents / no alerts /
+    no analysts); `to_json_dict` writes those as null. Intervals are Wilson
+    intervals at `confidence`; recall's interval is one minus miss rate's.
+    """
+
+    incidents: int
+    caught: int
+    missed: int
+    miss_rate: float
+    miss_rate_low: float
+    miss_rate_high: float
+    recall: float
+    recall_low: float
+    recall_high: float
+    alerts: int
+    true_alerts: int
+    false_alerts: int
+    precision: float
+    precision_low: float
+    precision_high: float
+    delay_median_hours: float
+    delay_p90_hours: float
+    caught_related: int
+    related_alerts: int
+    n_days: float
+    confidence: float
+    per_team: pd.DataFrame = field(default_factory=pd.DataFrame)
+    per_level: pd.DataFrame = field(default_factory=pd.DataFrame)
+    per_metric: pd.DataFrame = field(default_factory=pd.DataFrame)
+    per_incident: pd.DataFrame = field(default_factory=pd.DataFrame)
+
+    def to_json_dict(self) -> dict[str, Any]:
+        """Plain, JSON-safe dict (NaN and inf as None, numpy scalars as Python)."""
+        out: dict[str, Any] = {}
+        for name in self.__dataclass_fields__:
+            value = getattr(self, name)
+            if isinstance(value, pd.DataFrame):
+                continue
+            out[name] = _json_value(value)
+        for name in ("per_team", "per_level", "per_metric"):
+            frame: pd.DataFrame = getattr(self, name)
+            out[name] = {
+                str(idx): {k: _json_value(v) for k, v in row.items()}
+                for idx, row in frame.to_dict(orient="index").items()
+            }
+        out["per_incident"] = [
+            {k: _json_value(v) for k, v in row.items()}
+            for row in self.per_incident.to_dict(orient="records")
+        ]
+        return out
+
+
+def _json_value(v: Any) -> Any:
+    if v is None or v is pd.NA or v is pd.NaT:
+        return None
+    if isinstance(v, np.generic):
+        v = v.item()
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
+    if isinstance(v, pd.Timestamp):
+        return v.strftime("%Y-%m-%dT%H:%M:%SZ")
+    return v
+
+
+def figures(
+    match: Match,
+    episodes: Episodes,
+    incidents: Incidents,
+    teams_analysts: Mapping[str, int],
+    n_days: float,
+    confidence: float = 0.95,
+    goal: Goal | None = None,
+) -> Figures:
+    """Miss rate, recall, precision (Wilson intervals), delay and load per team.
+
+    Parameters
+    ----------
+    match : Match
+        From ``match(episodes, incidents, ...)``.
+    episodes, incidents : Episodes, Incidents
+        The tables that were matched (their ``team`` columns give the teams).
+    teams_analysts : mapping of team -> number of analysts
+    n_days : float
+        Length of the scored period in days (denominator of per-analyst-day rates).
+    confidence : float
+    goal : Goal, optional
+        Adds each team's alert budget to ``per_team``.
+    """
+    _check_lengths(match, episodes, incidents)
+    if not n_days > 0:
+        raise ValueError(f"n_days must be positive, but got {n_days=}")
+    s = _summary(match.caught, match.delay, match.alert_true, confidence)
+    args = (match, episodes, incidents)
+    return Figures(
+        **s,
+        caught_related=int(match.caught_related.sum()),
+        related_alerts=int(match.alert_related.sum()),
+        n_days=float(n_days),
+        confidence=confidence,
+        per_team=breakdown(*args, by="team", teams_analysts=teams_analysts, n_days=n_days,
+                           confidence=confidence, goal=goal),
+        per_level=breakdown(*args, by="level", confidence=confidence),
+        per_metric=breakdown(*args, by="metric", confidence=confidence),
+        per_incident=incident_table(match, episodes, incidents),
+    )
+
+
+def _check_lengths(match: Match, episodes: Episodes, incidents: Incidents) -> None:
+    if len(match.caught) != len(incidents) or len(match.alert_true) != len(episodes):
+        raise ValueError("match was computed on other episodes or incidents")
+
+
+def breakdown(
+    match: Match,
+    episodes: Episodes,
+    incidents: Incidents,
+    by: str,
+    teams_analysts: Mapping[str, int] | None = None,
+    n_days: float | None = None,
+    confidence: float = 0.95,
+    goal: Goal | None = None,
+) -> pd.DataFrame:
+    """Figures per level, metric or team: one row per group value.
+
+    Parameters
+    ----------
+    by : {"level", "metric", "team"}
+        Incidents with a blank metric form the metric group ``"(any)"``.
+    teams_analysts, n_days : optional
+        With ``by="team"``: adds analysts and per-analyst-day rates; every team
+        with analysts gets a row even without alerts.
+    goal : Goal, optional
+        With ``by="team"``: adds ``budget`` and ``over_budget``.
+
+    Returns
+    -------
+    pandas.DataFrame indexed by group value.
+    """
+    _check_lengths(match, episodes, incidents)
+    if by not in ("level", "metric", "team"):
+        raise ValueError(f"by must be 'level', 'metric' or 'team', but got {by=}")
+    inc_key = np.asarray(getattr(incidents, by), dtype=object)
+    ep_key = np.asarray(getattr(episodes, by), dtype=object)
+    if by == "metric":
+        inc_key = np.where(inc_key == ANY_METRIC, ANY_LABEL, inc_key)
+    groups = list(dict.fromkeys([*inc_key.tolist(), *ep_key.tolist()]))
+    if by == "team" and teams_analysts:
+        groups = list(dict.fromkeys([*teams_analysts, *groups]))
+    rows = {}
+    for g in sorted(groups, key=str):
+        mi, me = inc_key == g, ep_key == g
+        row: dict[str, Any] = _summary(match.caught[mi], match.delay[mi], match.alert_true[me],
+                                       confidence)
+        row["caught_related"] = int(match.caught_related[mi].sum())
+        if by == "team" and teams_analysts is not None and n_days is not None:
+            analysts = int(teams_analysts.get(g, 0))
+            row["analysts"] = analysts
+            row["alerts_per_analyst_day"] = float(_ratio(row["alerts"], analysts * n_days))
+            row["false_alerts_per_analyst_day"] = float(
+                _ratio(row["false_alerts"], analysts * n_days)
+            )
+            if goal is not None:
+                row["budget"] = goal.budget(g)
+                row["over_budget"] = bool(row["alerts_per_analyst_day"] > row["budget"])
+        rows[g] = row
+    frame = pd.DataFrame.from_dict(rows, orient="index")
+    frame.index.name = by
+    return frame
+
+
+def incident_table(match: Match, episodes: Episodes, incidents: Incidents) -> pd.DataFrame:
+    """One row per incident: what it is, whether and by which alert it was caught."""
+    df = incidents.to_frame().rename(columns={"label": "series_label"})
+    df["metric"] = np.where(df["metric"] == ANY_METRIC, ANY_LABEL, df["metric"])
+    df["caught"] = match.caught
+    df["first_alert"] = pd.array(np.where(match.caught, match.first_alert, 0), dtype="Int64")
+    df.loc[~match.caught, "first_alert"] = pd.NA
+    df["delay_hours"] = match.delay
+    df["caught_related"] = match.caught_related
+    cols = ["incident_id", "level", "series", "series_label", "metric", "team"]
+    cols += [c for c in ("start", "end") if c in df.columns]
+    cols += ["start_hour", "end_hour", "caught", "first_alert", "delay_hours", "caught_related"]
+    return df[cols].reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------- volume
+
+
+def volume(
+    episodes: Episodes,
+    teams_analysts: Mapping[str, int],
+    hours: pd.DatetimeIndex,
+    start_hour: int,
+    end_hour: int,
+    goal: Goal | None = None,
+) -> pd.DataFrame:
+    """Alerts per team per ISO week, and per analyst per day.
+
+    Episodes count in the week of their start hour; only those starting in
+    ``[start_hour, end_hour)`` count. ``days`` is the number of period hours falling
+    in the week divided by 24, so partial weeks at the ends are rated fairly.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns team, week ("YYYY-Www"), days, alerts, analysts,
+        alerts_per_analyst_day, and with a goal budget and over_budget. Every team
+        in `teams_analysts` gets a row for every week of the period.
+    """
+    if not 0 <= start_hour < end_hour <= len(hours):
+        raise ValueError(f"need 0 <= start_hour < end_hour <= {len(hours)}, got "
+                         f"{start_hour=}, {end_hour=}")
+    iso = pd.DatetimeIndex(hours[start_hour:end_hour]).isocalendar()
+    week_of_hour = np.array([f"{y}-W{w:02d}" for y, w in zip(iso["year"], iso["week"],
+                                                             strict=True)], dtype=object)
+    weeks, hours_per_week = np.unique(week_of_hour, return_counts=True)
+    ep = period_filter(episodes, start_hour, end_hour)
+    ep_week = week_of_hour[ep.start - start_hour]
+    teams = list(dict.fromkeys([*teams_analysts, *sorted(set(ep.team.tolist()))]))
+    week_pos = np.searchsorted(weeks, ep_week) if len(ep) else np.array([], dtype=np.int64)
+    team_pos = {t: i for i, t in enumerate(teams)}
+    tp = np.array([team_pos[t] for t in ep.team], dtype=np.int64)
+    counts = np.bincount(tp * len(weeks) + week_pos, minlength=len(teams) * len(weeks))
+    counts = counts.reshape(len(teams), len(weeks))
+    days = hours_per_week / 24.0
+    analysts = np.array([int(teams_analysts.get(t, 0)) for t in teams])
+    frame = pd.DataFrame({
+        "team": np.repeat(np.array(teams, dtype=object), len(weeks)),
+        "week": np.tile(weeks, len(teams)),
+        "days": np.tile(days, len(teams)),
+        "alerts": counts.ravel(),
+        "analysts": np.repeat(analysts, len(weeks)),
+    })
+    frame["alerts_per_analyst_day"] = _ratio(frame["alerts"], frame["analysts"] * frame["days"])
+    if goal is not None:
+        frame["budget"] = [goal.budget(t) for t in frame["team"]]
+        frame["over_budget"] = frame["alerts_per_analyst_day"] > frame["budget"]
+    return frame
+
+
+# --------------------------------------------------------------------------- curve
+
+
+@dataclass
+class Curve:
+    """Figures for every fence multiplier of a grid (arrays over the grid).
+
+    Attributes
+    ----------
+    ks : ndarray (n_k,)
+    incidents : int
+    caught, alerts, true_alerts, false_alerts : ndarray of int64 (n_k,)
+    miss_rate, miss_rate_low, miss_rate_high : ndarray of float64 (n_k,)
+    teams : tuple of str
+    analysts : ndarray of int64 (n_team,)
+    team_alerts, team_false_alerts : ndarray of int64 (n_k, n_team)
+    alerts_per_analyst_day, false_alerts_per_analyst_day : ndarray of float64 (n_k, n_team)
+        NaN for teams without analysts.
+    n_days : float
+    """
+
+    ks: np.ndarray
+    incidents: int
+    caught: np.ndarray
+    miss_rate: np.ndarray
+    miss_rate_low: np.ndarray
+    miss_rate_high: np.ndarray
+    alerts: np.ndarray
+    true_alerts: np.ndarray
+    false_alerts: np.ndarray
+    teams: tuple[str, ...]
+    analysts: np.ndarray
+    team_alerts: np.ndarray
+    team_false_alerts: np.ndarray
+    alerts_per_analyst_day: np.ndarray
+    false_alerts_per_analyst_day: np.ndarray
+    n_days: float
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per multiplier (for reports); team columns as ``alerts_per_analyst_day[t]``."""
+        df = pd.DataFrame({
+            "k": self.ks, "caught": self.caught, "miss_rate": self.miss_rate,
+            "miss_rate_low": self.miss_rate_low, "miss_rate_high": self.miss_rate_high,
+            "alerts": self.alerts, "true_alerts": self.true_alerts,
+            "false_alerts": self.false_alerts,
+        })
+        for j, t in enumerate(self.teams):
+            df[f"alerts_per_analyst_day[{t}]"] = self.alerts_per_analyst_day[:, j]
+        return df
+
+
+def multiplier_curve(
+    episodes_by_grid: Episodes,
+    ks: np.ndarray,
+    incidents: Incidents,
+    early: int,
+    late: int,
+    teams_analysts: Mapping[str, int],
+    n_days: float,
+    confidence: float = 0.95,
+) -> Curve:
+    """Figures for every multiplier at once.
+
+    Parameters
+    ----------
+    episodes_by_grid : Episodes
+        Episodes of all multipliers in one table; ``grid`` = index into `ks`.
+    ks : array of float
+    incidents : Incidents
+    early, late : int
+        Matching tolerances in hours (as in `match`).
+    teams_analysts : mapping of team -> analysts
+    n_days : float
+    confidence : float
+
+    Returns
+    -------
+    Curve
+        Equal, multiplier by multiplier, to `figures` of the episodes of that grid index.
+    """
+    ks = np.asarray(ks, dtype=np.float64)
+    n_k, n_inc, ep = len(ks), len(incidents), episodes_by_grid
+    grid = np.asarray(ep.grid, dtype=np.int64)
+    if len(grid) and (grid.min() < 0 or grid.max() >= n_k):
+        raise ValueError(
+            f"episode grid indices must lie in [0, {n_k}), got {grid.min()}..{grid.max()}"
+        )
+    if not n_days > 0:
+        raise ValueError(f"n_days must be positive, but got {n_days=}")
+    pa, pi = _overlap_pairs(ep, incidents, early, late)
+    caught_mat = np.zeros((n_k, n_inc), dtype=bool)
+    caught_mat[grid[pa], pi] = True
+    caught = caught_mat.sum(axis=1).astype(np.int64)
+    alert_true = np.zeros(len(ep), dtype=bool)
+    alert_true[pa] = True
+    alerts = np.bincount(grid, minlength=n_k).astype(np.int64)
+    true_alerts = np.bincount(grid[alert_true], minlength=n_k).astype(np.int64)
+
+    teams = tuple(dict.fromkeys([*teams_analysts, *sorted(set(ep.team.tolist()))]))
+    team_pos = {t: j for j, t in enumerate(teams)}
+    tp = np.fromiter((team_pos[t] for t in ep.team), dtype=np.int64, count=len(ep))
+    cell = grid * len(teams) + tp
+    size = n_k * len(teams)
+    team_alerts = np.bincount(cell, minlength=size).reshape(n_k, len(teams))
+    team_false = np.bincount(cell[~alert_true], minlength=size).reshape(n_k, len(teams))
+    analysts = np.array([int(teams_analysts.get(t, 0)) for t in teams], dtype=np.int64)
+    low, high = wilson(n_inc - caught, np.full(n_k, n_inc), confidence)
+    return Curve(
+        ks=ks,
+        incidents=n_inc,
+        caught=caught,
+        miss_rate=_ratio(n_inc - caught, np.full(n_k, n_inc)),
+        miss_rate_low=low,
+        miss_rate_high=high,
+        alerts=alerts,
+        true_alerts=true_alerts,
+        false_alerts=alerts - true_alerts,
+        teams=teams,
+        analysts=analysts,
+        team_alerts=team_alerts.astype(np.int64),
+        team_false_alerts=team_false.astype(np.int64),
+        alerts_per_analyst_day=_ratio(team_alerts, analysts[None, :] * n_days),
+        false_alerts_per_analyst_day=_ratio(team_false, analysts[None, :] * n_days),
+        n_days=float(n_days),
+    )
+
+
+def solve_multiplier(
+    curve: Curve, max_miss_rate: float, budgets: Mapping[str, float] | Goal
+) -> tuple[float | None, str]:
+    """The largest multiplier in the grid meeting the miss-rate target and every budget.
+
+    Parameters
+    ----------
+    curve : Curve
+    max_miss_rate : float
+        A grid point meets it when ``miss_rate <= max_miss_rate`` (always, when there
+        are no incidents).
+    budgets : mapping of team -> alerts per analyst per day, or Goal
+        Teams without analysts are not checked (their alerts are unrouted load);
+        teams not in a mapping have no budget.
+
+    Returns
+    -------
+    k : float or None
+        None when no grid point meets every constraint.
+    reason : str
+        One line: what was met, or which constraint fails and by how much.
+    """
+    ks = curve.ks
+    if isinstance(budgets, Goal):
+        budget = np.array([budgets.budget(t) for t in curve.teams], dtype=np.float64)
+    else:
+        budget = np.array([float(budgets.get(t, math.inf)) for t in curve.teams])
+    checked = curve.analysts > 0
+    miss_ok = np.isnan(curve.miss_rate) | (curve.miss_rate <= max_miss_rate)
+    load = np.where(checked[None, :], curve.alerts_per_analyst_day, 0.0)
+    within = load <= budget[None, :]
+    ok = miss_ok & within.all(axis=1)
+    if len(ks) == 0:
+        return None, "the multiplier grid is empty"
+    if ok.any():
+        k = float(ks[ok].max())
+        j = int(np.flatnonzero(ok & (ks == k))[0])
+        if curve.incidents == 0:
+            met = "no incidents to miss"
+        else:
+            met = f"miss rate {curve.miss_rate[j]:.3f} <= {max_miss_rate:.3f}"
+        return k, f"k={k:g}: {met}, every team within its alert budget"
+    if not miss_ok.any():
+        j = int(np.lexsort((-ks, curve.miss_rate))[0])
+        return None, (
+            f"no multiplier in the grid meets the miss-rate target {max_miss_rate:.3f}: "
+            f"the lowest miss rate is {curve.miss_rate[j]:.3f} at k={ks[j]:g} "
+            f"({curve.incidents - curve.caught[j]} of {curve.incidents} incidents missed), "
+            f"{curve.miss_rate[j] - max_miss_rate:.3f} above the target"
+        )
+    j = int(np.flatnonzero(miss_ok)[np.argmax(ks[miss_ok])])
+    over = [
+        f"team '{t}' gets {load[j, m]:.2f} alerts per analyst per day, "
+        f"{load[j, m] - budget[m]:.2f} over its budget {budget[m]:g}"
+        for m, t in enumerate(curve.teams)
+        if not within[j, m]
+    ]
+    return None, (
+        f"at k={ks[j]:g}, the largest multiplier meeting the miss-rate target "
+        f"{max_miss_rate:.3f}, {'; '.join(over)}; no smaller multiplier does better"
+    )
+
+
+# --------------------------------------------------------------------------- alerts CSV
+
+
+def episodes_from_alerts_frame(
+    df: pd.DataFrame, ws: Workspace, history: History, where: str
+) -> Episodes:
+    """Convert an alerts frame (Alerts CSV contract) back to `Episodes`.
+
+    Required columns: alert_id, level, <key columns of each row's level>, metric,
+    start, end. Optional: peak_hour (blank = start), peak_score, value, expected
+    (blank = NaN), team, detectors (blank = ""). ``impact`` is derived, so it is
+    not read. ``grid`` is 0.
+
+    Raises
+    ------
+    InputError
+        Naming `where`, row (header = row 1) and column of the first problem.
+    """
+    rows = FrameRows(df, where)
+    rows.require(ALERT_COLUMNS)
+    n = len(rows)
+    level, series, _ = resolve_series(rows, history)
+    metric = resolve_metrics(rows, ws, allow_any=False)
+    start = resolve_hours(rows, "start", history.hours, is_end=False)
+    end = resolve_hours(rows, "end", history.hours, is_end=True)
+    bad = np.flatnonzero(end <= start)
+    if len(bad):
+        raise InputError(rows.at(bad[0], "end"), "end must be after start")
+    peak = start.copy()
+    if "peak_hour" in rows.columns:
+        given = resolve_hours(rows, "peak_hour", history.hours, is_end=False, optional=True)
+        peak = np.where(given >= 0, given, start)
+        outside = np.flatnonzero((peak < start) | (peak >= end))
+        if len(outside):
+            raise InputError(
+                rows.at(outside[0], "peak_hour"), "must lie within the alert's start .. end"
+            )
+
+    def numbers(column: str) -> np.ndarray:
+        if column not in rows.columns:
+            return np.full(n, np.nan)
+        raw = rows.text(column)
+        vals = pd.to_numeric(pd.Series(raw), errors="coerce").to_numpy(dtype=np.float64)
+        spelled_nan = np.array([v.lower() == "nan" for v in raw], dtype=bool)
+        wrong = np.flatnonzero(np.isnan(vals) & (raw != "") & ~spelled_nan)
+        if len(wrong):
+            raise InputError(rows.at(wrong[0], column), f"'{raw[wrong[0]]}' is not a number")
+        return vals
+
+    def text(column: str) -> np.ndarray:
+        return rows.text(column) if column in rows.columns else np.full(n, "", dtype=object)
+
+    return Episodes(
+        level=level,
+        series=series,
+        metric=metric,
+        start=start,
+        end=end,
+        peak_hour=peak,
+        peak_score=numbers("peak_score"),
+        value=numbers("value"),
+        expected=numbers("expected"),
+        detectors=text("detectors"),
+        team=text("team"),
+        grid=np.zeros(n, dtype=np.int64),
+    )
+
+
+# --------------------------------------------------------------------------- point / range
+
+
+def intervals_mask(start: np.ndarray, end: np.ndarray, n_hours: int) -> np.ndarray:
+    """Boolean hour mask of length `n_hours` covering every ``[start, end)``."""
+    diff = np.zeros(n_hours + 1, dtype=np.int64)
+    np.add.at(diff, np.clip(start, 0, n_hours), 1)
+    np.add.at(diff, np.clip(end, 0, n_hours), -1)
+    return np.cumsum(diff[:-1]) > 0
+
+
+def point_precision_recall(truth: np.ndarray, pred: np.ndarray) -> tuple[float, float]:
+    """Hour-level precision and recall of boolean masks (NaN when undefined).
+
+    Shown for comparison only: hour-level figures weigh long incidents heavily;
+    the workbench's figures are event-level (see `match`).
+    """
+    truth, pred = np.asarray(truth, dtype=bool), np.asarray(pred, dtype=bool)
+    tp = int((truth & pred).sum())
+    return float(_ratio(tp, int(pred.sum()))), float(_ratio(tp, int(truth.sum())))
+
+
+def _runs(mask: np.ndarray) -> list[tuple[int, int]]:
+    m = np.r_[False, np.asarray(mask, dtype=bool), False].astype(np.int8)
+    edges = np.flatnonzero(np.diff(m))
+    return list(zip(edges[::2].tolist(), edges[1::2].tolist(), strict=True))
+
+
+def range_precision_recall(truth: np.ndarray, pred: np.ndarray) -> tuple[float, float]:
+    """Range-based precision and recall (Tatbul et al. 2018), alpha=0, flat bias, gamma=1.
+
+    Each real range scores the share of its hours covered by predictions (recall);
+    each predicted range the share of its hours inside real ranges (precision);
+    both averaged over ranges. NaN when there are no ranges of that kind.
+    """
+    truth, pred = np.asarray(truth, dtype=bool), np.asarray(pred, dtype=bool)
+
+    def mean_cover(ranges: list[tuple[int, int]], other: np.ndarray) -> float:
+        if not ranges:
+            return math.nan
+        return float(np.mean([other[a:b].mean() for a, b in ranges]))
+
+    return mean_cover(_runs(pred), truth), mean_cover(_runs(truth), pred)
