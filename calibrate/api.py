@@ -1,0 +1,154 @@
+"""The Python API: everything the CLI does, as functions over a `Session`.
+
+A `Session` is one workspace with its history, owners routing and incidents
+loaded once. Typical use::
+
+    from calibrate.api import open_session, replay_session, score_episodes
+    ses = open_session("sample_data")
+    result = replay_session(ses)
+    figs = score_episodes(ses, result.episodes)
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from calibrate.errors import InputError
+from calibrate.executors import Executor, make_executor
+from calibrate.history import History, load_history
+from calibrate.incidents import Incidents, load_incidents
+from calibrate.owners import load_owners
+from calibrate.replay import Replayer, ReplayResult
+from calibrate.scoring import Figures, figures, match, period_filter, route_teams, volume
+from calibrate.settings import DetectorConfig
+from calibrate.workspace import Workspace, load_workspace
+
+
+@dataclass
+class Session:
+    """A loaded workspace: settings, history, team routing and incidents."""
+
+    ws: Workspace
+    history: History
+    routes: dict[str, np.ndarray] = field(default_factory=dict)
+    incidents: Incidents | None = None
+
+    @property
+    def analysts(self) -> dict[str, int]:
+        return dict(self.ws.teams.analysts)
+
+    def hour_index(self, when: str | None, name: str, default: int) -> int:
+        """Hour index of an ISO date/time given on the command line (None -> default)."""
+        if when is None:
+            return default
+        try:
+            ts = pd.Timestamp(when)
+        except ValueError:
+            raise InputError(name, f"not a date or ISO-8601 time: {when!r}") from None
+        ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+        idx = int(self.history.hours.searchsorted(ts))
+        return min(max(idx, 0), self.history.n_hours)
+
+
+def open_session(path: str | Path, incidents: bool = True) -> Session:
+    """Load a workspace, its history, owners routing and (optionally) incidents."""
+    ws = load_workspace(path)
+    history = load_history(ws)
+    routes: dict[str, np.ndarray] = {}
+    if ws.teams.owners is not None:
+        owners = load_owners(ws, history)
+        routes = {lv: owners.route(ls) for lv, ls in history.levels.items()}
+    inc = None
+    if incidents and ws.incidents.path is not None:
+        inc = route_teams(load_incidents(ws, history), routes)
+    return Session(ws, history, routes, inc)
+
+
+def make_replayer(
+    ses: Session,
+    *,
+    levels: list[str] | None = None,
+    metrics: list[str] | None = None,
+    executor: Executor | None = None,
+    engine: str = "local",
+    workers: int | None = None,
+    scheduler: str | None = None,
+    fence_windows: tuple[int, ...] = (),
+    progress: bool = True,
+) -> Replayer:
+    """A `Replayer` over the session's history and watched metrics."""
+    for lv in levels or []:
+        if lv not in ses.history.levels:
+            raise InputError(
+                "--levels", f"unknown level '{lv}' (known: {', '.join(ses.history.levels)})"
+            )
+    known = list(ses.ws.metric_names)
+    for m in metrics or []:
+        if m not in known:
+            raise InputError("--metrics", f"unknown metric '{m}' (known: {', '.join(known)})")
+    executor = executor or make_executor(engine, workers, scheduler)
+    return Replayer(
+        ses.history,
+        levels=levels,
+        metrics=metrics or known,
+        executor=executor,
+        routes=ses.routes,
+        fence_windows=fence_windows,
+        progress=progress,
+    )
+
+
+def replay_session(ses: Session, config: DetectorConfig | None = None, **kwargs) -> ReplayResult:
+    """Replay the workspace's `[detector]` settings (or `config`) once."""
+    rp = make_replayer(ses, **kwargs)
+    try:
+        return rp.replay(config or ses.ws.detector)
+    finally:
+        rp.close()
+
+
+def first_scored_hour(config: DetectorConfig, ws: Workspace) -> int:
+    """First hour every series is replayed at (the longest decomposition window)."""
+    windows = [config.base.decomposition_window_hours]
+    windows += [g.settings.decomposition_window_hours for g in config.groups]
+    return max(windows) - 1
+
+
+def score_episodes(
+    ses: Session,
+    episodes,
+    start_hour: int | None = None,
+    end_hour: int | None = None,
+    related: bool = False,
+) -> Figures:
+    """Figures for alert episodes against the session's incidents over a period."""
+    if ses.incidents is None:
+        raise InputError(str(ses.ws.file), "no [incidents] path: nothing to score against")
+    start = 0 if start_hour is None else start_hour
+    end = ses.history.n_hours if end_hour is None else end_hour
+    eps = period_filter(episodes, start, end)
+    inc = period_filter(ses.incidents, start, end)
+    m = match(
+        eps,
+        inc,
+        ses.ws.incidents.early_hours,
+        ses.ws.incidents.late_hours,
+        related=ses.history if related else None,
+    )
+    n_days = max(end - start, 1) / 24.0
+    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal)
+
+
+def alert_volume(
+    ses: Session, episodes, start_hour: int | None = None, end_hour: int | None = None
+) -> pd.DataFrame:
+    """Alerts per team per ISO week and per analyst per day, against the budget."""
+    start = 0 if start_hour is None else start_hour
+    end = ses.history.n_hours if end_hour is None else end_hour
+    if end <= start:
+        raise InputError("--from/--to", "the period is empty")
+    return volume(episodes, ses.analysts, ses.history.hours, start, end, goal=ses.ws.goal)

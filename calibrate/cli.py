@@ -1,0 +1,304 @@
+"""`calibrate` command line: parse arguments, call the API, map errors to exit codes.
+
+Every command is one function `cmd_NAME(args) -> int`; expected errors
+(`CalibrationError`) print one line on stderr and exit 1, never a traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from calibrate.errors import CalibrationError
+
+
+def _engine_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--engine",
+        choices=("local", "serial", "dask"),
+        default="local",
+        help="where decompositions run (default: processes on this machine)",
+    )
+    p.add_argument("--workers", type=int, default=None, help="worker processes (default: cores)")
+    p.add_argument(
+        "--scheduler",
+        default=None,
+        help="Dask scheduler address for --engine dask (default: a local cluster)",
+    )
+
+
+def _subset_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--levels", nargs="+", default=None, help="replay only these levels")
+    p.add_argument("--metrics", nargs="+", default=None, help="replay only these metrics")
+
+
+def _period_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--from", dest="start", default=None, help="first day/hour (ISO-8601, UTC)")
+    p.add_argument("--to", dest="end", default=None, help="end day/hour, exclusive (ISO-8601)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = argparse.ArgumentParser(
+        prog="calibrate",
+        description="Calibrate STL + Tukey-fence alert thresholds against known incidents.",
+    )
+    sub = ap.add_subparsers(dest="command", required=True)
+
+    p = sub.add_parser("check", help="validate a workspace and summarise its data")
+    p.add_argument("workspace")
+
+    p = sub.add_parser("replay", help="replay history hour by hour and write the alerts")
+    p.add_argument("workspace")
+    p.add_argument(
+        "--config", default=None, help="tuned config (default: the workspace's [detector])"
+    )
+    p.add_argument("--out", required=True, help="alerts file (.csv)")
+    p.add_argument("--scores", default=None, help="per-hour scores file (.parquet or .csv)")
+    p.add_argument("--force", action="store_true", help="replace existing output files")
+    _subset_args(p)
+    _engine_args(p)
+
+    p = sub.add_parser("score", help="score an alerts file against the incidents")
+    p.add_argument("workspace")
+    p.add_argument("--alerts", required=True)
+    p.add_argument("--json", default=None, help="write the figures as JSON here")
+    p.add_argument(
+        "--related",
+        action="store_true",
+        help="also credit alerts on ancestor/descendant series (shown separately)",
+    )
+    _period_args(p)
+
+    p = sub.add_parser("volume", help="alerts per team per week and per analyst per day")
+    p.add_argument("workspace")
+    p.add_argument("--config", default=None, help="config to replay (default: [detector])")
+    p.add_argument("--alerts", default=None, help="count an existing alerts file instead")
+    p.add_argument("--csv", default=None, help="write the table here")
+    _period_args(p)
+    _engine_args(p)
+
+    p = sub.add_parser("tune", help="search settings for the least alerts meeting the goal")
+    p.add_argument("workspace")
+    p.add_argument("--out", required=True, help="tuned config to write (.toml)")
+    p.add_argument("--report", default=None, help="report folder (e.g. reports/NAME)")
+    p.add_argument("--trials", type=int, default=None, help="trial budget of the study")
+    p.add_argument(
+        "--storage",
+        default=None,
+        help="Optuna storage URL or journal file (default: a file in the workspace)",
+    )
+    p.add_argument("--study", default=None, help="study name (default: derived from the inputs)")
+    p.add_argument("--max-miss-rate", type=float, default=None, help="override [goal]")
+    p.add_argument(
+        "--max-alerts-per-analyst-day",
+        type=float,
+        default=None,
+        help="override [goal] for every team",
+    )
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
+    _engine_args(p)
+
+    p = sub.add_parser("report", help="write the calibration report for a config")
+    p.add_argument("workspace")
+    p.add_argument("--config", required=True)
+    p.add_argument("--out", required=True, help="report folder")
+    _engine_args(p)
+
+    p = sub.add_parser("retune", help="merge analysts' verdicts and tune again")
+    p.add_argument("workspace")
+    p.add_argument("--verdicts", required=True, help="reviewed alerts file (verdict column)")
+    p.add_argument("--previous", default=None, help="previous tuned config (warm start)")
+    p.add_argument("--out", required=True)
+    p.add_argument("--report", default=None)
+    p.add_argument("--trials", type=int, default=None)
+    p.add_argument("--force", action="store_true")
+    _engine_args(p)
+
+    p = sub.add_parser("demo", help="run the whole job on the bundled sample data")
+    p.add_argument("--out", default="demo-output", help="folder for the demo's outputs")
+    p.add_argument("--trials", type=int, default=None)
+    _engine_args(p)
+    return ap
+
+
+def cmd_check(args) -> int:
+    from calibrate.checks import check_workspace
+    from calibrate.workspace import load_workspace
+
+    summary = check_workspace(load_workspace(args.workspace))
+    for line in summary.lines():
+        print(line)
+    return 0
+
+
+def cmd_replay(args) -> int:
+    from calibrate import api
+    from calibrate.outputs import load_config, write_table
+
+    for out in (args.out, args.scores):
+        if out and Path(out).exists() and not args.force:
+            raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    ses = api.open_session(args.workspace, incidents=False)
+    config = load_config(args.config) if args.config else ses.ws.detector
+    result = api.replay_session(
+        ses,
+        config,
+        levels=args.levels,
+        metrics=args.metrics,
+        engine=args.engine,
+        workers=args.workers,
+        scheduler=args.scheduler,
+    )
+    alerts = result.alerts_frame()
+    write_table(Path(args.out), alerts, force=True)
+    print(f"{len(alerts)} alerts written to {args.out}")
+    if args.scores:
+        write_table(Path(args.scores), result.scores_frame(), force=True)
+        print(f"per-hour scores written to {args.scores}")
+    return 0
+
+
+def _period(ses, args) -> tuple[int, int]:
+    start = ses.hour_index(args.start, "--from", 0)
+    end = ses.hour_index(args.end, "--to", ses.history.n_hours)
+    if end <= start:
+        raise CalibrationError("--from/--to: the period is empty")
+    return start, end
+
+
+def cmd_score(args) -> int:
+    from calibrate import api
+    from calibrate.incidents import read_text_csv
+    from calibrate.outputs import write_text
+    from calibrate.scoring import episodes_from_alerts_frame, route_teams
+
+    ses = api.open_session(args.workspace)
+    path = Path(args.alerts)
+    if not path.is_file():
+        raise CalibrationError(f"{path}: no such alerts file")
+    eps = episodes_from_alerts_frame(read_text_csv(path), ses.ws, ses.history, str(path))
+    eps = route_teams(eps, ses.routes)
+    start, end = _period(ses, args)
+    figs = api.score_episodes(ses, eps, start, end, related=args.related)
+    data = figs.to_json_dict()
+    for line in format_figures(data):
+        print(line)
+    if args.json:
+        write_text(Path(args.json), json.dumps(data, indent=2, default=str))
+        print(f"figures written to {args.json}")
+    return 0
+
+
+def format_figures(d: dict) -> list[str]:
+    """Plain-text summary of a figures dict (the JSON of `calibrate score`)."""
+
+    def pct(x):
+        return "n/a" if x is None else f"{100 * x:.1f}%"
+
+    lines = [
+        f"incidents {d['incidents']}: caught {d['caught']}, missed {d['missed']}",
+        f"miss rate {pct(d['miss_rate'])} (95% interval {pct(d['miss_rate_low'])}"
+        f" to {pct(d['miss_rate_high'])})",
+        f"alerts {d['alerts']}: true {d['true_alerts']}, false {d['false_alerts']},"
+        f" precision {pct(d['precision'])}",
+        "detection delay: median "
+        + ("n/a" if d["delay_median_hours"] is None else f"{d['delay_median_hours']:.1f} h")
+        + ", 90th percentile "
+        + ("n/a" if d["delay_p90_hours"] is None else f"{d['delay_p90_hours']:.1f} h"),
+    ]
+    for team, t in sorted(d.get("per_team", {}).items()):
+        rate = t.get("alerts_per_analyst_day")
+        budget = t.get("budget")
+        rate_s = "n/a" if rate is None else f"{rate:.2f}"
+        extra = "" if budget is None else f" (budget {budget:g})"
+        lines.append(f"team {team}: {t['alerts']} alerts, {rate_s} per analyst per day{extra}")
+    return lines
+
+
+def cmd_volume(args) -> int:
+    from calibrate import api
+    from calibrate.incidents import read_text_csv
+    from calibrate.outputs import load_config, write_table
+    from calibrate.scoring import episodes_from_alerts_frame, route_teams
+
+    ses = api.open_session(args.workspace, incidents=False)
+    if args.alerts:
+        path = Path(args.alerts)
+        if not path.is_file():
+            raise CalibrationError(f"{path}: no such alerts file")
+        eps = episodes_from_alerts_frame(read_text_csv(path), ses.ws, ses.history, str(path))
+        eps = route_teams(eps, ses.routes)
+    else:
+        config = load_config(args.config) if args.config else ses.ws.detector
+        eps = api.replay_session(
+            ses, config, engine=args.engine, workers=args.workers, scheduler=args.scheduler
+        ).episodes
+    start, end = _period(ses, args)
+    table = api.alert_volume(ses, eps, start, end)
+    with_budget = "budget" in table.columns
+    print(
+        f"{'team':<16}{'week':<10}{'alerts':>7}{'per analyst-day':>17}"
+        + (f"{'budget':>8}" if with_budget else "")
+    )
+    for row in table.itertuples(index=False):
+        line = f"{row.team:<16}{row.week:<10}{row.alerts:>7}{row.alerts_per_analyst_day:>17.2f}"
+        if with_budget:
+            line += f"{row.budget:>8g}" + ("  over budget" if row.over_budget else "")
+        print(line)
+    if args.csv:
+        write_table(Path(args.csv), table)
+    return 0
+
+
+def cmd_tune(args) -> int:
+    from calibrate.search import cli_tune
+
+    return cli_tune(args)
+
+
+def cmd_report(args) -> int:
+    from calibrate.report import cli_report
+
+    return cli_report(args)
+
+
+def cmd_retune(args) -> int:
+    from calibrate.retune import cli_retune
+
+    return cli_retune(args)
+
+
+def cmd_demo(args) -> int:
+    from calibrate.demo import run_demo
+
+    return run_demo(args)
+
+
+COMMANDS = {
+    "check": cmd_check,
+    "replay": cmd_replay,
+    "score": cmd_score,
+    "volume": cmd_volume,
+    "tune": cmd_tune,
+    "report": cmd_report,
+    "retune": cmd_retune,
+    "demo": cmd_demo,
+}
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return COMMANDS[args.command](args)
+    except CalibrationError as exc:
+        print(f"calibrate {args.command}: {exc}", file=sys.stderr)
+        return 1
+    except KeyboardInterrupt:
+        print(f"calibrate {args.command}: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

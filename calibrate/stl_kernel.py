@@ -1,0 +1,804 @@
+"""Compiled (numba) port of statsmodels' STL and MSTL, plus linear-smoother matrices.
+
+The kernel follows statsmodels' ``tsa/stl/_stl.pyx`` (itself a port of the NETLIB
+Fortran) operation by operation, so that fits are bit-identical to statsmodels on the
+same machine. Two changes keep the bits and remove the cost:
+
+- the tricube weights ``(1 - (r/h)**3)**3`` depend only on the integer distance ``r``
+  and the integer half-width ``h``; they are read from a table filled once with the same
+  ``pow`` (including statsmodels' 0.001/0.999 thresholds);
+- in the sliding part of each LOESS pass, four neighbouring output points are computed
+  together. Each point keeps its own sums in statsmodels' order, so the bits do not
+  change; the four independent chains just let the CPU overlap them.
+
+Public API: `stl_config`, `stl_fit`, `stl_fit_windows`, `mstl_fit`, `linear_smoother`,
+`trend_matrix`, `seasonal_matrix`.
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+import warnings
+from collections.abc import Sequence
+from typing import NamedTuple
+
+import numba as nb
+import numpy as np
+
+__all__ = [
+    "LinearSmoother",
+    "linear_smoother",
+    "mstl_fit",
+    "seasonal_matrix",
+    "stl_config",
+    "stl_fit",
+    "stl_fit_windows",
+    "trend_matrix",
+]
+
+_JIT = dict(cache=True, nogil=True, error_model="numpy")
+_BLOCK = 16  # output points per vectorised LOESS block
+
+
+# --------------------------------------------------------------------------- settings
+
+
+def stl_config(
+    period: int, seasonal: int, trend: int | None = None, low_pass: int | None = None
+) -> tuple[int, int]:
+    """Return ``(trend, low_pass)`` as statsmodels' STL resolves them.
+
+    Parameters
+    ----------
+    period, seasonal : int
+        Seasonal period (>= 2) and seasonal smoother length (odd, >= 3).
+    trend, low_pass : int or None
+        Explicit smoother lengths; None (or 0 for `trend`) means statsmodels' default.
+
+    Returns
+    -------
+    tuple of int
+        ``(trend, low_pass)``; both odd and > period.
+    """
+    period, seasonal = int(period), int(seasonal)
+    if period < 2:
+        raise ValueError(f"period must be an integer >= 2, but got {period=}")
+    if seasonal < 3 or seasonal % 2 == 0:
+        raise ValueError(f"seasonal must be an odd integer >= 3, but got {seasonal=}")
+    if trend is None or trend == 0:
+        # Same expression as statsmodels (numpy ceil on the float quotient).
+        trend = int(np.ceil(1.5 * period / (1 - 1.5 / seasonal)))
+        trend += (trend % 2) == 0
+    trend = int(trend)
+    if trend < 3 or trend % 2 == 0 or trend <= period:
+        raise ValueError(f"trend must be odd, >= 3 and > period, but got {trend=}")
+    if low_pass is None or low_pass == 0:
+        low_pass = period + 1
+        low_pass += (low_pass % 2) == 0
+    low_pass = int(low_pass)
+    if low_pass < 3 or low_pass % 2 == 0 or low_pass <= period:
+        raise ValueError(f"low_pass must be odd, >= 3 and > period, but got {low_pass=}")
+    return trend, low_pass
+
+
+@functools.lru_cache(maxsize=32)
+def _weight_table(hmax: int) -> tuple[np.ndarray, np.ndarray]:
+    """Tricube weights for every half-width h <= hmax and distance r <= h.
+
+    Row h starts at ``offsets[h] = h*(h+1)//2``. Filled with libm ``pow`` through
+    ``math.pow`` so the values equal statsmodels' ``(1.0 - (r / h) ** 3) ** 3``.
+    """
+    offsets = np.array([h * (h + 1) // 2 for h in range(hmax + 2)], dtype=np.int64)
+    table = np.zeros(int(offsets[-1]), dtype=np.float64)
+    for h in range(hmax + 1):
+        hf = float(h)
+        h9 = 0.999 * hf
+        h1 = 0.001 * hf
+        base = int(offsets[h])
+        for r in range(h + 1):
+            rf = float(r)
+            if rf <= h9:
+                table[base + r] = 1.0 if rf <= h1 else math.pow(1.0 - math.pow(rf / hf, 3.0), 3.0)
+    table.flags.writeable = False
+    offsets.flags.writeable = False
+    return table, offsets
+
+
+def _table_for(n: int, seasonal: int, trend: int, low_pass: int) -> tuple[np.ndarray, np.ndarray]:
+    # Largest half-width any LOESS of a fit can use: len - 1 inside the series, len at the
+    # cycle-subseries end points and when a span exceeds the data (+1 spare).
+    del n
+    return _weight_table(max(seasonal, trend, low_pass) + 1)
+
+
+# --------------------------------------------------------------------------- kernel
+
+
+@nb.njit(**_JIT)
+def _est(y, n, len_, ideg, xs, nleft, nright, w, userw, rw, tab, toff):
+    """One LOESS value at ``xs`` (1-based) from ``y[nleft-1:nright]``; NaN if no weight."""
+    rng = n - 1.0
+    h = max(xs - nleft, nright - xs)
+    if len_ > n:
+        h += (len_ - n) // 2
+    base = toff[h]
+    a = 0.0
+    for j in range(nleft - 1, nright):
+        wj = tab[base + abs(j + 1 - xs)]
+        if userw:
+            wj = wj * rw[j]
+        w[j] = wj
+        a = a + wj
+    if a <= 0:
+        return np.nan
+    for j in range(nleft - 1, nright):
+        w[j] = w[j] / a
+    if h > 0 and ideg > 0:
+        a = 0.0
+        for j in range(nleft - 1, nright):
+            a = a + w[j] * (j + 1)
+        b = xs - a
+        c = 0.0
+        for j in range(nleft - 1, nright):
+            d = j + 1 - a
+            c = c + w[j] * (d * d)
+        if math.sqrt(c) > 0.001 * rng:
+            b = b / c
+            for j in range(nleft - 1, nright):
+                w[j] = w[j] * (b * (j + 1 - a) + 1.0)
+    ys = 0.0
+    for j in range(nleft - 1, nright):
+        ys = ys + w[j] * y[j]
+    return ys
+
+
+@nb.njit(**_JIT)
+def _est_block(y, n, len_, ideg, xs0, nleft0, nb_, userw, rw, tab, toff, ys, wbuf, acc):
+    """`_est` for the ``nb_`` points ``xs0 ..`` whose windows start at ``nleft0 ..``.
+
+    The windows are consecutive shifts of one window, so all points share the half-width
+    and the tricube row. Each point keeps its sums in statsmodels' order; the loops run
+    over the points innermost, which the compiler vectorises without reordering any sum.
+    Writes ``ys[xs0-1 : xs0-1+nb_]``; returns False (nothing written) when a point has
+    no positive weight, so that the caller can fall back point by point.
+    """
+    rng = n - 1.0
+    h = max(xs0 - nleft0, nleft0 + len_ - 1 - xs0)
+    base = toff[h]
+    off = xs0 - nleft0
+    j0 = nleft0 - 1
+    a = acc[0]
+    m = acc[1]
+    c = acc[2]
+    b = acc[3]
+    s = acc[4]
+    pos = acc[5]
+    for k in range(nb_):
+        pos[k] = float(nleft0 + k)
+        m[k] = 0.0
+        c[k] = 0.0
+        b[k] = 0.0
+        s[k] = 0.0
+    if userw:
+        for k in range(nb_):
+            a[k] = 0.0
+        for d in range(len_):
+            t = tab[base + abs(d - off)]
+            row = d * nb_
+            for k in range(nb_):
+                wv = t * rw[j0 + d + k]
+                wbuf[row + k] = wv
+                a[k] = a[k] + wv
+        for k in range(nb_):
+            if not a[k] > 0:
+                return False
+        for d in range(len_):
+            row = d * nb_
+            for k in range(nb_):
+                wbuf[row + k] = wbuf[row + k] / a[k]
+    else:
+        # Same weights for every point: one sum and one division per weight suffice.
+        tot = 0.0
+        for d in range(len_):
+            tot = tot + tab[base + abs(d - off)]
+        if not tot > 0:
+            return False
+        for d in range(len_):
+            wn = tab[base + abs(d - off)] / tot
+            row = d * nb_
+            for k in range(nb_):
+                wbuf[row + k] = wn
+    if h > 0 and ideg > 0:
+        for d in range(len_):
+            row = d * nb_
+            for k in range(nb_):
+                m[k] = m[k] + wbuf[row + k] * (pos[k] + d)
+        for d in range(len_):
+            row = d * nb_
+            for k in range(nb_):
+                e = (pos[k] + d) - m[k]
+                c[k] = c[k] + wbuf[row + k] * (e * e)
+        lim = 0.001 * rng
+        for k in range(nb_):
+            # No slope correction leaves b = 0: the factor below is then exactly 1.0.
+            b[k] = ((xs0 + k) - m[k]) / c[k] if math.sqrt(c[k]) > lim else 0.0
+    for d in range(len_):
+        row = d * nb_
+        for k in range(nb_):
+            s[k] = s[k] + (wbuf[row + k] * (b[k] * ((pos[k] + d) - m[k]) + 1.0)) * y[j0 + d + k]
+    for k in range(nb_):
+        ys[xs0 - 1 + k] = s[k]
+    return True
+
+
+@nb.njit(**_JIT)
+def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, tab, toff, blocked):
+    """LOESS smooth of ``y[:n]`` into ``ys[:n]`` (statsmodels' ``_ess``)."""
+    if n < 2:
+        ys[0] = y[0]
+        return
+    newnj = min(njump, n - 1)
+    nleft = 1
+    nright = n
+    if len_ >= n:
+        nleft = 1
+        nright = n
+        i = 0
+        while i < n:
+            ys[i] = _est(y, n, len_, ideg, i + 1, nleft, nright, res, userw, rw, tab, toff)
+            if np.isnan(ys[i]):
+                ys[i] = y[i]
+            i += newnj
+    elif newnj == 1:
+        nsh = (len_ + 2) // 2
+        nleft = 1
+        nright = len_
+        i = 0
+        while i < n:
+            if (i + 1) > nsh and nright != n:
+                # Sliding part: the next nb_ points all shift their window by one.
+                nb_ = min(_BLOCK, n - len_ + nsh - i)
+                if blocked and nb_ > 1:
+                    if _est_block(y, n, len_, ideg, i + 1, nleft + 1, nb_, userw, rw, tab,
+                                  toff, ys, blk, acc):
+                        nleft += nb_
+                        nright += nb_
+                        i += nb_
+                        continue
+                nleft = nleft + 1
+                nright = nright + 1
+            ys[i] = _est(y, n, len_, ideg, i + 1, nleft, nright, res, userw, rw, tab, toff)
+            if np.isnan(ys[i]):
+                ys[i] = y[i]
+            i += 1
+    else:
+        nsh = (len_ + 1) // 2
+        i = 0
+        while i < n:
+            if (i + 1) < nsh:
+                nleft = 1
+                nright = len_
+            elif (i + 1) >= (n - nsh + 1):
+                nleft = n - len_ + 1
+                nright = n
+            else:
+                nleft = i + 1 - nsh + 1
+                nright = len_ + i + 1 - nsh
+            ys[i] = _est(y, n, len_, ideg, i + 1, nleft, nright, res, userw, rw, tab, toff)
+            if np.isnan(ys[i]):
+                ys[i] = y[i]
+            i += newnj
+    if newnj == 1:
+        return
+    i = 0
+    while i < (n - newnj):
+        delta = (ys[i + newnj] - ys[i]) / newnj
+        for j in range(i, i + newnj):
+            ys[j] = ys[i] + delta * ((j + 1) - (i + 1))
+        i += newnj
+    k = ((n - 1) // newnj) * newnj + 1
+    if k != n:
+        ys[n - 1] = _est(y, n, len_, ideg, n, nleft, nright, res, userw, rw, tab, toff)
+        if np.isnan(ys[n - 1]):
+            ys[n - 1] = y[n - 1]
+        if k != (n - 1):
+            delta = (ys[n - 1] - ys[k - 1]) / (n - k)
+            for j in range(k, n):
+                ys[j] = ys[k - 1] + delta * ((j + 1) - k)
+
+
+@nb.njit(**_JIT)
+def _ma(x, n, len_, ave):
+    """Moving average of length ``len_`` over ``x[:n]`` (running sum, as statsmodels)."""
+    newn = n - len_ + 1
+    flen = float(len_)
+    v = 0.0
+    for i in range(len_):
+        v = v + x[i]
+    ave[0] = v / flen
+    k = len_
+    m = 0
+    for j in range(1, newn):
+        v += x[k] - x[m]
+        ave[j] = v / flen
+        k += 1
+        m += 1
+
+
+@nb.njit(**_JIT)
+def _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season_out, blk, acc, tab, toff,
+        blocked):
+    """Cycle-subseries smoothing of ``work[0]`` into ``work[1]`` (n + 2*np values)."""
+    y = work[0]
+    season = work[1]
+    work1 = work[2]
+    work2 = work[3]
+    work3 = work[4]
+    work4 = season_out
+    for j in range(np_):
+        k = (n - (j + 1)) // np_ + 1
+        for i in range(k):
+            work1[i] = y[i * np_ + j]
+        if userw:
+            for i in range(k):
+                work3[i] = rw[i * np_ + j]
+        _ess(work1, k, ns, isdeg, nsjump, userw, work3, work2[1:], work4, blk, acc, tab,
+             toff, blocked)
+        nright = min(ns, k)
+        work2[0] = _est(work1, k, ns, isdeg, 0, 1, nright, work4, userw, work3, tab, toff)
+        if np.isnan(work2[0]):
+            work2[0] = work2[1]
+        nleft = max(1, k - ns + 1)
+        work2[k + 1] = _est(work1, k, ns, isdeg, k + 1, nleft, k, work4, userw, work3, tab,
+                            toff)
+        if np.isnan(work2[k + 1]):
+            work2[k + 1] = work2[k]
+        for m in range(k + 2):
+            season[m * np_ + j] = work2[m]
+
+
+@nb.njit(**_JIT)
+def _select(x, n, kth):
+    """Rearrange ``x[:n]`` so that ``x[kth]`` is the kth smallest (Hoare quickselect)."""
+    lo = 0
+    hi = n - 1
+    while lo < hi:
+        pivot = x[(lo + hi) // 2]
+        i = lo
+        j = hi
+        while i <= j:
+            while x[i] < pivot:
+                i += 1
+            while x[j] > pivot:
+                j -= 1
+            if i <= j:
+                t = x[i]
+                x[i] = x[j]
+                x[j] = t
+                i += 1
+                j -= 1
+        if kth <= j:
+            hi = j
+        elif kth >= i:
+            lo = i
+        else:
+            return
+
+
+@nb.njit(**_JIT)
+def _rwts(y, n, fit, rw, buf):
+    """Bisquare robustness weights from the residuals ``y - fit``."""
+    for i in range(n):
+        rw[i] = abs(y[i] - fit[i])
+        buf[i] = rw[i]
+    m0 = n // 2
+    m1 = n - m0 - 1
+    _select(buf, n, m0)
+    v0 = buf[m0]
+    v1 = v0
+    if m1 != m0:
+        # m1 = m0 - 1: the largest value left of the selected one.
+        v1 = buf[0]
+        for i in range(1, m0):
+            if buf[i] > v1:
+                v1 = buf[i]
+    cmad = 3.0 * (v0 + v1)
+    if cmad == 0:
+        for i in range(n):
+            rw[i] = 1.0
+        return
+    c9 = 0.999 * cmad
+    c1 = 0.001 * cmad
+    for i in range(n):
+        r = rw[i]
+        if r <= c1:
+            rw[i] = 1.0
+        elif r <= c9:
+            q = r / cmad
+            q = 1.0 - q * q
+            rw[i] = q * q
+        else:
+            rw[i] = 0.0
+
+
+@nb.njit(**_JIT)
+def _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni, no,
+              season, trend, rw, work, blk, acc, tab, toff, blocked):
+    """Full STL fit of ``y`` into ``season``, ``trend``, ``rw`` (statsmodels' ``fit``).
+
+    ``work`` is (7, n + 2*np) scratch; ``blk`` and ``acc`` come from `_block_scratch`.
+    """
+    n = y.shape[0]
+    for i in range(n):
+        season[i] = 0.0
+        trend[i] = 0.0
+        rw[i] = 1.0
+    userw = False
+    k = 0
+    while True:
+        for _ in range(ni):
+            for i in range(n):
+                work[0, i] = y[i] - trend[i]
+            _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season, blk, acc, tab, toff,
+                blocked)
+            # _fts: three moving averages of work[1] -> work[2]
+            m = n + 2 * np_
+            _ma(work[1], m, np_, work[2])
+            _ma(work[2], m - np_ + 1, np_, work[0])
+            _ma(work[0], m - 2 * np_ + 2, 3, work[2])
+            _ess(work[2], n, nl, ildeg, nljump, False, work[3], work[0], work[4], blk, acc,
+                 tab, toff, blocked)
+            for i in range(n):
+                season[i] = work[1, np_ + i] - work[0, i]
+                work[0, i] = y[i] - season[i]
+            _ess(work[0], n, nt, itdeg, ntjump, userw, rw, trend, work[2], blk, acc, tab,
+                 toff, blocked)
+        k += 1
+        if k > no:
+            break
+        for i in range(n):
+            work[0, i] = trend[i] + season[i]
+        _rwts(y, n, work[0], rw, work[5])
+        userw = True
+
+
+@nb.njit(**_JIT)
+def _block_scratch(ns, nt, nl):
+    span = max(ns, nt, nl) + 1
+    return np.empty(_BLOCK * span), np.zeros((6, _BLOCK))
+
+
+@nb.njit(**_JIT)
+def _stl_one(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni, no,
+             tab, toff, blocked):
+    n = y.shape[0]
+    season = np.empty(n)
+    trend = np.empty(n)
+    rw = np.empty(n)
+    work = np.zeros((7, n + 2 * np_))
+    blk, acc = _block_scratch(ns, nt, nl)
+    _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni, no,
+              season, trend, rw, work, blk, acc, tab, toff, blocked)
+    return season, trend, rw
+
+
+@nb.njit(parallel=True, **_JIT)
+def _stl_windows(y, ends, window, np_, ns, nt, nl, ni, no, tab, toff):
+    """STL (default degrees and jumps) on ``y[e-window+1 : e+1]`` for each ``e``."""
+    nw = ends.shape[0]
+    trend_out = np.empty((nw, window))
+    season_out = np.empty((nw, window))
+    resid_out = np.empty((nw, window))
+    for w in nb.prange(nw):
+        e = ends[w]
+        seg = y[e - window + 1 : e + 1]
+        rw = np.empty(window)
+        work = np.zeros((7, window + 2 * np_))
+        blk, acc = _block_scratch(ns, nt, nl)
+        _stl_into(seg, np_, ns, nt, nl, 1, 1, 1, 1, 1, 1, ni, no,
+                  season_out[w], trend_out[w], rw, work, blk, acc, tab, toff, True)
+        for i in range(window):
+            resid_out[w, i] = seg[i] - season_out[w, i] - trend_out[w, i]
+    return trend_out, season_out, resid_out
+
+
+@nb.njit(parallel=True, **_JIT)
+def _stl_rows(ys, np_, ns, nt, nl, ni, no, tab, toff):
+    """STL (default degrees and jumps) of each row of ``ys``; returns (trend, season)."""
+    nr, n = ys.shape
+    trend_out = np.empty((nr, n))
+    season_out = np.empty((nr, n))
+    for r in nb.prange(nr):
+        rw = np.empty(n)
+        work = np.zeros((7, n + 2 * np_))
+        blk, acc = _block_scratch(ns, nt, nl)
+        _stl_into(ys[r], np_, ns, nt, nl, 1, 1, 1, 1, 1, 1, ni, no,
+                  season_out[r], trend_out[r], rw, work, blk, acc, tab, toff, True)
+    return trend_out, season_out
+
+
+# --------------------------------------------------------------------------- Python API
+
+
+def _iterations(robust: bool, inner_iter: int | None, outer_iter: int | None) -> tuple[int, int]:
+    ni = (2 if robust else 5) if inner_iter is None else int(inner_iter)
+    no = (15 if robust else 0) if outer_iter is None else int(outer_iter)
+    return ni, no
+
+
+def _as_series(y: object) -> np.ndarray:
+    arr = np.ascontiguousarray(np.squeeze(np.asarray(y, dtype=np.float64)))
+    if arr.ndim != 1:
+        raise ValueError(f"y must be one-dimensional, but got shape {arr.shape}")
+    return arr
+
+
+def stl_fit(
+    y: np.ndarray,
+    period: int,
+    seasonal: int,
+    trend: int = 0,
+    robust: bool = False,
+    *,
+    low_pass: int = 0,
+    seasonal_deg: int = 1,
+    trend_deg: int = 1,
+    low_pass_deg: int = 1,
+    seasonal_jump: int = 1,
+    trend_jump: int = 1,
+    low_pass_jump: int = 1,
+    inner_iter: int | None = None,
+    outer_iter: int | None = None,
+    blocked: bool = True,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Fit STL as ``statsmodels.tsa.seasonal.STL(...).fit()`` does.
+
+    Parameters
+    ----------
+    y : array_like
+        One-dimensional series without NaN.
+    period, seasonal : int
+        Seasonal period and seasonal smoother length (odd).
+    trend : int
+        Trend smoother length; 0 means statsmodels' default.
+    robust : bool
+        Robust fit (default 2 inner / 15 outer iterations instead of 5 / 0).
+    low_pass, seasonal_deg, trend_deg, low_pass_deg, seasonal_jump, trend_jump, \
+low_pass_jump, inner_iter, outer_iter
+        statsmodels' other STL / fit parameters (0 / None = its default).
+    blocked : bool
+        Use the four-point interleaved LOESS (same bits; False is the plain port).
+
+    Returns
+    -------
+    trend, seasonal, resid : ndarray of float64
+    """
+    ya = _as_series(y)
+    nt, nl = stl_config(period, seasonal, trend or None, low_pass or None)
+    for name, deg in (("seasonal_deg", seasonal_deg), ("trend_deg", trend_deg),
+                      ("low_pass_deg", low_pass_deg)):
+        if deg not in (0, 1):
+            raise ValueError(f"{name} must be 0 or 1, but got {deg}")
+    for name, jump in (("seasonal_jump", seasonal_jump), ("trend_jump", trend_jump),
+                       ("low_pass_jump", low_pass_jump)):
+        if int(jump) < 1:
+            raise ValueError(f"{name} must be a positive integer, but got {jump}")
+    ni, no = _iterations(robust, inner_iter, outer_iter)
+    tab, toff = _table_for(ya.shape[0], seasonal, nt, nl)
+    season, tr, _ = _stl_one(ya, int(period), int(seasonal), nt, nl, int(seasonal_deg),
+                             int(trend_deg), int(low_pass_deg), int(seasonal_jump),
+                             int(trend_jump), int(low_pass_jump), ni, no, tab, toff,
+                             bool(blocked))
+    resid = ya - season - tr
+    return tr, season, resid
+
+
+def stl_fit_windows(
+    y: np.ndarray,
+    ends: np.ndarray,
+    window: int,
+    period: int,
+    seasonal: int,
+    trend: int = 0,
+    low_pass: int = 0,
+    robust: bool = False,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Fit STL on ``y[e-window+1 : e+1]`` for every ``e`` in `ends` (threads over windows).
+
+    Parameters
+    ----------
+    y : ndarray of float64
+        The whole series.
+    ends : ndarray of int64
+        Last index of each window; each must satisfy ``window-1 <= e < len(y)``.
+    window, period, seasonal, trend, low_pass, robust
+        Window length and STL settings (0 = statsmodels' default for trend/low_pass).
+
+    Returns
+    -------
+    trend_out, seasonal_out, resid_out : ndarray of shape (len(ends), window)
+        Row i equals `stl_fit` on window i.
+    """
+    ya = _as_series(y)
+    ends_a = np.ascontiguousarray(ends, dtype=np.int64).reshape(-1)
+    window = int(window)
+    if ends_a.size and (ends_a.min() < window - 1 or ends_a.max() >= ya.shape[0]):
+        raise ValueError(
+            f"every end must lie in [{window - 1}, {ya.shape[0] - 1}], but got "
+            f"min={ends_a.min()} max={ends_a.max()}"
+        )
+    nt, nl = stl_config(period, seasonal, trend or None, low_pass or None)
+    ni, no = _iterations(robust, None, None)
+    tab, toff = _table_for(window, seasonal, nt, nl)
+    return _stl_windows(ya, ends_a, window, int(period), int(seasonal), nt, nl, ni, no,
+                        tab, toff)
+
+
+def _mstl_settings(
+    n: int, periods: int | Sequence[int], windows: int | Sequence[int] | None
+) -> tuple[tuple[int, ...], tuple[int, ...]]:
+    """Periods and seasonal windows exactly as statsmodels' MSTL processes them."""
+    per = (int(periods),) if isinstance(periods, int | np.integer) else tuple(
+        int(p) for p in periods)
+    if windows:
+        win = (int(windows),) if isinstance(windows, int | np.integer) else tuple(
+            int(w) for w in windows)
+        if len(per) != len(win):
+            raise ValueError("periods and windows must have the same length")
+        pairs = sorted(zip(per, win, strict=True))
+        per = tuple(p for p, _ in pairs)
+        win = tuple(w for _, w in pairs)
+    else:
+        win = tuple(7 + 4 * i for i in range(1, len(per) + 1))
+        per = tuple(sorted(per))
+    if any(p >= n / 2 for p in per):
+        warnings.warn(
+            "A period(s) is larger than half the length of time series. "
+            "Removing these period(s).",
+            UserWarning,
+            stacklevel=3,
+        )
+        per = tuple(p for p in per if p < n / 2)
+        win = win[: len(per)]
+    return per, win
+
+
+def mstl_fit(
+    y: np.ndarray,
+    periods: int | Sequence[int] = (24, 168),
+    windows: int | Sequence[int] | None = None,
+    robust: bool = False,
+    iterate: int = 2,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Fit MSTL as ``statsmodels.tsa.seasonal.MSTL(...).fit()`` does (no Box-Cox).
+
+    Parameters
+    ----------
+    y : array_like
+        One-dimensional series.
+    periods : int or sequence of int
+        Seasonal periods (sorted; periods >= len(y)/2 are dropped with a warning, as
+        statsmodels does).
+    windows : int, sequence of int or None
+        Seasonal smoother lengths; None gives 7 + 4*i (11, 15, ...).
+    robust : bool
+        Robust inner STL fits.
+    iterate : int
+        Number of passes over the seasonal components (1 when there is one period).
+
+    Returns
+    -------
+    trend : ndarray (n,)
+    seasonal : ndarray (n_periods, n)
+        One row per kept period, in sorted order.
+    resid : ndarray (n,)
+    """
+    ya = _as_series(y)
+    n = ya.shape[0]
+    per, win = _mstl_settings(n, periods, windows)
+    if not per:
+        raise ValueError("no period is shorter than half the series")
+    iterate = 1 if len(per) == 1 else int(iterate)
+    ni, no = _iterations(robust, None, None)
+    seasonal = np.zeros((len(per), n))
+    deseas = ya
+    tr = np.zeros(n)
+    for _ in range(iterate):
+        for i, (p, s) in enumerate(zip(per, win, strict=True)):
+            deseas = deseas + seasonal[i]
+            nt, nl = stl_config(p, s)
+            tab, toff = _table_for(n, s, nt, nl)
+            season, tr, _ = _stl_one(np.ascontiguousarray(deseas), p, s, nt, nl, 1, 1, 1,
+                                     1, 1, 1, ni, no, tab, toff, True)
+            seasonal[i] = season
+            deseas = deseas - seasonal[i]
+    resid = deseas - tr
+    return tr, seasonal, resid
+
+
+class LinearSmoother(NamedTuple):
+    """Matrices of a non-robust fit: ``trend = T @ y``, ``seasonal = S @ y``.
+
+    Attributes
+    ----------
+    trend : ndarray (window, window)
+        T; row i gives the fitted trend at position i of the window.
+    seasonal : ndarray (window, window)
+        S; the seasonal component (summed over periods for MSTL).
+    """
+
+    trend: np.ndarray
+    seasonal: np.ndarray
+
+    @property
+    def fitted(self) -> np.ndarray:
+        """M = T + S, so that ``trend + seasonal = M @ y``."""
+        return self.trend + self.seasonal
+
+
+@functools.lru_cache(maxsize=16)
+def linear_smoother(
+    window: int, period: int, seasonal: int, trend: int = 0, weekly: bool = False
+) -> LinearSmoother:
+    """Matrices of non-robust STL (or MSTL with periods (period, 7*period)) on a window.
+
+    Non-robust STL with fixed settings is linear in the data, so column j of each
+    matrix is the fit of the j-th unit vector. With ``weekly`` the fit is MSTL with
+    statsmodels' default windows (`seasonal` and `trend` are then not used, as MSTL
+    derives them); a weekly period >= window/2 is dropped as statsmodels does.
+    Results are cached by the settings and read-only.
+
+    Returns
+    -------
+    LinearSmoother
+        ``(trend, seasonal)`` matrices of shape (window, window).
+    """
+    window = int(window)
+    eye = np.eye(window)
+    if weekly:
+        per, win = _mstl_settings(window, (int(period), 7 * int(period)), None)
+        cols_t, cols_s = _mstl_rows(eye, per, win)
+    else:
+        nt, nl = stl_config(period, seasonal, trend or None)
+        ni, no = _iterations(False, None, None)
+        tab, toff = _table_for(window, seasonal, nt, nl)
+        cols_t, cols_s = _stl_rows(eye, int(period), int(seasonal), nt, nl, ni, no, tab, toff)
+    # Row r of cols_* is the fit of unit vector r, i.e. column r of the matrix.
+    t_mat = np.ascontiguousarray(cols_t.T)
+    s_mat = np.ascontiguousarray(cols_s.T)
+    t_mat.flags.writeable = False
+    s_mat.flags.writeable = False
+    return LinearSmoother(t_mat, s_mat)
+
+
+def _mstl_rows(ys: np.ndarray, per: tuple[int, ...], win: tuple[int, ...]
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Non-robust MSTL (iterate=2) of each row of `ys`; returns (trend, summed seasonal)."""
+    iterate = 1 if len(per) == 1 else 2
+    ni, no = _iterations(False, None, None)
+    seasonal = np.zeros((len(per),) + ys.shape)
+    deseas = ys
+    tr = np.zeros_like(ys)
+    for _ in range(iterate):
+        for i, (p, s) in enumerate(zip(per, win, strict=True)):
+            deseas = deseas + seasonal[i]
+            nt, nl = stl_config(p, s)
+            tab, toff = _table_for(ys.shape[1], s, nt, nl)
+            tr, season = _stl_rows(np.ascontiguousarray(deseas), p, s, nt, nl, ni, no, tab,
+                                   toff)
+            seasonal[i] = season
+            deseas = deseas - seasonal[i]
+    return tr, seasonal.sum(axis=0)
+
+
+def trend_matrix(window: int, period: int, seasonal: int, trend: int = 0,
+                 weekly: bool = False) -> np.ndarray:
+    """T of `linear_smoother` (cached, read-only)."""
+    return linear_smoother(window, period, seasonal, trend, weekly).trend
+
+
+def seasonal_matrix(window: int, period: int, seasonal: int, trend: int = 0,
+                    weekly: bool = False) -> np.ndarray:
+    """S of `linear_smoother` (cached, read-only)."""
+    return linear_smoother(window, period, seasonal, trend, weekly).seasonal

@@ -1,0 +1,318 @@
+"""The compiled STL/MSTL port against statsmodels (the reference library) and R's STL.
+
+Every exactness check compares with statsmodels computed inside the test, on this
+machine. "Bit-identical" is asserted with `np.array_equal` where the kernel claims it.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from statsmodels.datasets import co2
+from statsmodels.tsa.seasonal import MSTL, STL
+
+from calibrate.stl_kernel import (
+    linear_smoother,
+    mstl_fit,
+    seasonal_matrix,
+    stl_config,
+    stl_fit,
+    stl_fit_windows,
+    trend_matrix,
+)
+
+
+def _sm_stl(y: np.ndarray, period: int, seasonal: int, trend: int = 0, robust: bool = False,
+            **kw: int) -> object:
+    model = STL(y, period=period, seasonal=seasonal, trend=(None if trend == 0 else trend),
+                robust=robust, **kw)
+    return model.fit()
+
+
+def _assert_same(ours: tuple[np.ndarray, ...], ref: object) -> None:
+    tr, se, re = ours
+    np.testing.assert_array_equal(tr, np.asarray(ref.trend))
+    np.testing.assert_array_equal(se, np.asarray(ref.seasonal))
+    np.testing.assert_array_equal(re, np.asarray(ref.resid))
+
+
+def _hourly(n: int, seed: int) -> np.ndarray:
+    """Seeded hourly-like counts: daily cycle, weekly bump, drift, noise, a few spikes."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n)
+    level = 200 + 0.05 * t + 80 * np.sin(2 * np.pi * t / 24) + 20 * (t % 168 < 48)
+    y = rng.poisson(np.clip(level, 1, None)).astype(float)
+    y[rng.choice(n, 3, replace=False)] *= 3
+    return y
+
+
+@pytest.fixture(scope="module")
+def co2_monthly() -> np.ndarray:
+    # statsmodels' shipped weekly Mauna Loa CO2, monthly means, gaps forward-filled (as in
+    # the example of statsmodels' STL docstring).
+    data = co2.load_pandas().data["co2"]
+    return data.resample("MS").mean().ffill().to_numpy()
+
+
+# ----------------------------------------------------------------------------- config
+
+@pytest.mark.parametrize(
+    ("period", "seasonal", "expected"),
+    [
+        # REFERENCES.md, statsmodels STL(...).config: period 24 seasonal 7 -> 47 / 25
+        (24, 7, (47, 25)),
+        # REFERENCES.md, statsmodels STL(...).config: period 168 seasonal 7 -> 321 / 169
+        (168, 7, (321, 169)),
+    ],
+)
+def test_stl_config_published_defaults(period: int, seasonal: int,
+                                       expected: tuple[int, int]) -> None:
+    assert stl_config(period, seasonal) == expected
+
+
+@pytest.mark.parametrize("period", [2, 7, 12, 24, 25, 168])
+@pytest.mark.parametrize("seasonal", [3, 7, 11, 15, 35])
+def test_stl_config_matches_statsmodels(period: int, seasonal: int) -> None:
+    cfg = STL(np.zeros(4 * period + 4), period=period, seasonal=seasonal).config
+    assert stl_config(period, seasonal) == (cfg["trend"], cfg["low_pass"])
+    assert stl_config(period, seasonal, trend=0) == (cfg["trend"], cfg["low_pass"])
+
+
+def test_stl_config_explicit_and_invalid() -> None:
+    assert stl_config(24, 7, trend=61, low_pass=27) == (61, 27)
+    for kwargs in ({"trend": 24}, {"trend": 49 - 1}, {"low_pass": 23}, {"low_pass": 26}):
+        with pytest.raises(ValueError):
+            stl_config(24, 7, **kwargs)
+    with pytest.raises(ValueError):
+        stl_config(24, 8)
+    with pytest.raises(ValueError):
+        stl_config(1, 7)
+
+
+# ----------------------------------------------------------------------------- STL fits
+
+@pytest.mark.parametrize("robust", [False, True])
+def test_co2_monthly_bit_identical(co2_monthly: np.ndarray, robust: bool) -> None:
+    # statsmodels' co2 dataset, reference = statsmodels STL fitted here.
+    ref = _sm_stl(co2_monthly, 12, 7, robust=robust)
+    _assert_same(stl_fit(co2_monthly, 12, 7, robust=robust), ref)
+
+
+def _r_call_fit(y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    # R call from REFERENCES.md: stl(ts(x, frequency=12), s.window=35, s.degree=1,
+    # t.window=19, t.degree=1, l.window=13, l.degree=1, s.jump=4, t.jump=2, l.jump=2,
+    # inner=1, outer=2)
+    return stl_fit(y, 12, 35, trend=19, low_pass=13, seasonal_jump=4, trend_jump=2,
+                   low_pass_jump=2, inner_iter=1, outer_iter=2)
+
+
+def _stl_results_dir() -> Path | None:
+    spec = importlib.util.find_spec("statsmodels")
+    assert spec is not None and spec.origin is not None
+    folder = Path(spec.origin).parent / "tsa" / "stl" / "tests" / "results"
+    return folder if folder.is_dir() else None
+
+
+def test_r_reference_endpoints() -> None:
+    folder = _stl_results_dir()
+    if folder is None or not (folder / "stl_co2.csv").exists():
+        pytest.skip("statsmodels' STL test data (stl_co2.csv) is not installed")
+    # The 348-point monthly CO2 series statsmodels ships for its R comparison.
+    y = pd.read_csv(folder / "stl_co2.csv", header=None).iloc[:, 0].to_numpy(float)
+    tr, se, re = _r_call_fit(y)
+    # REFERENCES.md (R stl output as shipped by statsmodels): first and last points.
+    assert se[0] == pytest.approx(-0.13125464, abs=1e-8)
+    assert tr[0] == pytest.approx(315.5519, abs=1e-4)
+    assert re[0] == pytest.approx(0.159314918, abs=1e-8)
+    assert se[-1] == pytest.approx(-0.94898196, abs=1e-8)
+    assert tr[-1] == pytest.approx(349.7027, abs=1e-4)
+    assert re[-1] == pytest.approx(-0.083709640, abs=1e-8)
+    # Same call in statsmodels, bit for bit.
+    ref = STL(y, period=12, seasonal=35, trend=19, low_pass=13, seasonal_jump=4,
+              trend_jump=2, low_pass_jump=2).fit(inner_iter=1, outer_iter=2)
+    _assert_same((tr, se, re), ref)
+
+
+def test_r_reference_full_series() -> None:
+    folder = _stl_results_dir()
+    results = None if folder is None else folder / "stl_test_results.csv"
+    if results is None or not results.exists():
+        pytest.skip("statsmodels' stl_test_results.csv is not installed")
+    y = pd.read_csv(folder / "stl_co2.csv", header=None).iloc[:, 0].to_numpy(float)
+    # statsmodels' results file, scenario "baseline" = the R call above (statsmodels
+    # tests compare with it at assert_allclose's default rtol 1e-7).
+    table = pd.read_csv(results)
+    table.columns = [c.strip() for c in table.columns]
+    base = table[table["scenario"].str.strip() == "baseline"].sort_values("idx")
+    tr, se, _ = _r_call_fit(y)
+    np.testing.assert_allclose(tr, base["trend"].to_numpy(), rtol=1e-7)
+    np.testing.assert_allclose(se, base["season"].to_numpy(), rtol=1e-7, atol=1e-9)
+
+
+@pytest.mark.parametrize("n", [168, 336, 672])
+@pytest.mark.parametrize("robust", [False, True])
+def test_hourly_random_bit_identical(n: int, robust: bool) -> None:
+    y = _hourly(n, seed=n)
+    _assert_same(stl_fit(y, 24, 7, robust=robust), _sm_stl(y, 24, 7, robust=robust))
+
+
+def test_plain_port_equals_blocked() -> None:
+    y = _hourly(336, seed=3)
+    for robust in (False, True):
+        a = stl_fit(y, 24, 11, robust=robust, blocked=True)
+        b = stl_fit(y, 24, 11, robust=robust, blocked=False)
+        for u, v in zip(a, b, strict=True):
+            np.testing.assert_array_equal(u, v)
+
+
+def _degenerate(kind: str, n: int) -> np.ndarray:
+    rng = np.random.default_rng(7)
+    if kind == "zeros":
+        return np.zeros(n)
+    if kind == "spikes":
+        y = np.zeros(n)
+        y[rng.choice(n, 5, replace=False)] = rng.integers(1, 40, 5)
+        return y
+    if kind == "periodic":
+        return np.tile(rng.integers(0, 30, 24).astype(float), n // 24)
+    if kind == "constant":
+        return np.full(n, 3.25)
+    if kind == "night_zero":
+        y = _hourly(n, seed=11)
+        y[(np.arange(n) % 24) < 9] = 0.0
+        return y
+    raise AssertionError(kind)
+
+
+@pytest.mark.parametrize("kind", ["zeros", "spikes", "periodic", "constant", "night_zero"])
+@pytest.mark.parametrize("n", [168, 336, 672])
+@pytest.mark.parametrize("robust", [False, True])
+def test_degenerate_windows_bit_identical(kind: str, n: int, robust: bool) -> None:
+    y = _degenerate(kind, n)
+    for seasonal, trend in ((7, 0), (11, 0), (7, 61), (11, 35)):
+        ref = _sm_stl(y, 24, seasonal, trend=trend, robust=robust)
+        _assert_same(stl_fit(y, 24, seasonal, trend=trend, robust=robust), ref)
+
+
+@pytest.mark.parametrize(
+    ("period", "seasonal", "trend", "n"),
+    [
+        (168, 7, 0, 336),   # 2 cycles < seasonal span: widened window, len >= n paths
+        (168, 11, 0, 672),
+        (24, 35, 0, 100),   # seasonal span > cycles, trend span > ... partial last cycle
+        (7, 7, 9, 50),
+        (24, 7, 0, 30),     # trend span 47 > n
+    ],
+)
+@pytest.mark.parametrize("robust", [False, True])
+def test_edge_rule_shapes_bit_identical(period: int, seasonal: int, trend: int, n: int,
+                                        robust: bool) -> None:
+    y = _hourly(n, seed=period + n)
+    ref = _sm_stl(y, period, seasonal, trend=trend, robust=robust)
+    _assert_same(stl_fit(y, period, seasonal, trend=trend, robust=robust), ref)
+
+
+@pytest.mark.parametrize("kw", [
+    {"seasonal_deg": 0}, {"trend_deg": 0, "low_pass_deg": 0},
+    {"seasonal_jump": 3, "trend_jump": 5, "low_pass_jump": 4},
+])
+def test_degree_and_jump_options_bit_identical(kw: dict[str, int]) -> None:
+    y = _hourly(336, seed=5)
+    for robust in (False, True):
+        ref = _sm_stl(y, 24, 7, robust=robust, **kw)
+        _assert_same(stl_fit(y, 24, 7, robust=robust, **kw), ref)
+
+
+def test_stl_fit_rejects_bad_input() -> None:
+    with pytest.raises(ValueError):
+        stl_fit(np.zeros((4, 48)), 24, 7)
+    with pytest.raises(ValueError):
+        stl_fit(np.zeros(100), 24, 7, seasonal_deg=2)
+    with pytest.raises(ValueError):
+        stl_fit(np.zeros(100), 24, 7, trend_jump=0)
+
+
+@pytest.mark.parametrize("robust", [False, True])
+def test_stl_fit_windows_matches_single_fits(robust: bool) -> None:
+    y = _hourly(900, seed=1)
+    y[:200] = 0.0  # some degenerate windows in the batch
+    window = 336
+    ends = np.array([335, 336, 400, 535, 899], dtype=np.int64)
+    tr, se, re = stl_fit_windows(y, ends, window, 24, 7, 0, 0, robust)
+    assert tr.shape == se.shape == re.shape == (len(ends), window)
+    for i, e in enumerate(ends):
+        seg = y[e - window + 1 : e + 1]
+        _assert_same((tr[i], se[i], re[i]), _sm_stl(seg, 24, 7, robust=robust))
+
+
+def test_stl_fit_windows_checks_ends() -> None:
+    with pytest.raises(ValueError):
+        stl_fit_windows(np.zeros(400), np.array([100]), 168, 24, 7, 0, 0, False)
+    with pytest.raises(ValueError):
+        stl_fit_windows(np.zeros(400), np.array([400]), 168, 24, 7, 0, 0, False)
+
+
+# ----------------------------------------------------------------------------- MSTL
+
+@pytest.mark.parametrize("robust", [False, True])
+@pytest.mark.parametrize(("periods", "windows"), [((24, 168), None), ((168, 24), (9, 13))])
+def test_mstl_matches_statsmodels(robust: bool, periods: tuple[int, int],
+                                  windows: tuple[int, int] | None) -> None:
+    y = _hourly(672, seed=2)
+    ref = MSTL(y, periods=periods, windows=windows, stl_kwargs={"robust": robust}).fit()
+    tr, seas, re = mstl_fit(y, periods=periods, windows=windows, robust=robust)
+    np.testing.assert_allclose(tr, ref.trend, rtol=0, atol=1e-9 * np.abs(y).max())
+    np.testing.assert_allclose(seas.T, ref.seasonal, rtol=0, atol=1e-9 * np.abs(y).max())
+    np.testing.assert_allclose(re, ref.resid, rtol=0, atol=1e-9 * np.abs(y).max())
+    # The kernel repeats MSTL's STL calls exactly, so the bits agree as well.
+    np.testing.assert_array_equal(tr, np.asarray(ref.trend))
+
+
+def test_mstl_drops_long_period_like_statsmodels() -> None:
+    y = _hourly(336, seed=4)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        ref = MSTL(y, periods=(24, 168)).fit()
+    assert any("larger than half" in str(w.message) for w in caught)
+    with pytest.warns(UserWarning, match="larger than half"):
+        tr, seas, re = mstl_fit(y, periods=(24, 168))
+    assert seas.shape == (1, 336)
+    np.testing.assert_array_equal(seas[0], np.asarray(ref.seasonal))
+    np.testing.assert_array_equal(tr, np.asarray(ref.trend))
+    np.testing.assert_array_equal(re, np.asarray(ref.resid))
+
+
+# ----------------------------------------------------------------------------- smoother
+
+@pytest.mark.parametrize(("window", "seasonal", "trend"), [(168, 7, 0), (336, 11, 61)])
+def test_linear_smoother_matches_statsmodels(window: int, seasonal: int, trend: int) -> None:
+    sm = linear_smoother(window, 24, seasonal, trend)
+    assert sm.trend.shape == sm.seasonal.shape == (window, window)
+    for seed in (0, 1):
+        y = _hourly(window, seed=seed)
+        ref = _sm_stl(y, 24, seasonal, trend=trend)
+        scale = np.abs(y).max()
+        np.testing.assert_allclose(sm.trend @ y, ref.trend, rtol=0, atol=1e-10 * scale)
+        np.testing.assert_allclose(sm.seasonal @ y, ref.seasonal, rtol=0, atol=1e-10 * scale)
+        np.testing.assert_allclose(sm.fitted @ y, ref.trend + ref.seasonal, rtol=0,
+                                   atol=1e-10 * scale)
+    assert linear_smoother(window, 24, seasonal, trend) is sm  # cached
+    assert trend_matrix(window, 24, seasonal, trend) is sm.trend
+    assert seasonal_matrix(window, 24, seasonal, trend) is sm.seasonal
+    assert not sm.trend.flags.writeable
+
+
+def test_linear_smoother_weekly_matches_mstl() -> None:
+    window = 504  # weekly period 168 < 504 / 2 is kept
+    sm = linear_smoother(window, 24, 7, weekly=True)
+    y = _hourly(window, seed=9)
+    ref = MSTL(y, periods=(24, 168)).fit()
+    scale = np.abs(y).max()
+    np.testing.assert_allclose(sm.trend @ y, ref.trend, rtol=0, atol=1e-10 * scale)
+    np.testing.assert_allclose(sm.seasonal @ y, ref.seasonal.sum(axis=1), rtol=0,
+                               atol=1e-10 * scale)
