@@ -38,7 +38,6 @@ __all__ = [
 ]
 
 _JIT = dict(cache=True, nogil=True, error_model="numpy")
-_BLOCK = 16  # output points per vectorised LOESS block
 
 
 # --------------------------------------------------------------------------- settings
@@ -154,86 +153,136 @@ def _est(y, n, len_, ideg, xs, nleft, nright, w, userw, rw, tab, toff):
 
 
 @nb.njit(**_JIT)
-def _est_block(y, n, len_, ideg, xs0, nleft0, nb_, userw, rw, tab, toff, ys, wbuf, acc):
-    """`_est` for the ``nb_`` points ``xs0 ..`` whose windows start at ``nleft0 ..``.
+def _loess_finish(y, n, ideg, npts, jfirst, shift, ys_out, out0, wbuf, acc, hpos):
+    """Shared tail of the vectorised LOESS: slope correction and the weighted sum.
 
-    The windows are consecutive shifts of one window, so all points share the half-width
-    and the tricube row. Each point keeps its sums in statsmodels' order; the loops run
-    over the points innermost, which the compiler vectorises without reordering any sum.
-    Writes ``ys[xs0-1 : xs0-1+nb_]``; returns False (nothing written) when a point has
-    no positive weight, so that the caller can fall back point by point.
+    ``wbuf[d*npts + k]`` holds the normalised weight of point k at offset d; the data
+    index is ``jfirst + d + shift*k``; ``hpos[k]`` is point k's half-width, ``hpos[npts]``
+    the window length, ``acc[0]`` the weight sums and ``acc[6]`` the points.
+    Per point, every sum runs over d in statsmodels' order; only the loop over points
+    (innermost) is vectorised.
     """
     rng = n - 1.0
-    h = max(xs0 - nleft0, nleft0 + len_ - 1 - xs0)
-    base = toff[h]
-    off = xs0 - nleft0
-    j0 = nleft0 - 1
     a = acc[0]
     m = acc[1]
     c = acc[2]
     b = acc[3]
     s = acc[4]
     pos = acc[5]
-    for k in range(nb_):
-        pos[k] = float(nleft0 + k)
+    len_ = hpos[npts]
+    for k in range(npts):
+        pos[k] = float(jfirst + 1 + shift * k)
         m[k] = 0.0
         c[k] = 0.0
         b[k] = 0.0
         s[k] = 0.0
-    if userw:
-        for k in range(nb_):
-            a[k] = 0.0
+    if ideg > 0:
         for d in range(len_):
-            t = tab[base + abs(d - off)]
-            row = d * nb_
-            for k in range(nb_):
-                wv = t * rw[j0 + d + k]
-                wbuf[row + k] = wv
-                a[k] = a[k] + wv
-        for k in range(nb_):
-            if not a[k] > 0:
-                return False
-        for d in range(len_):
-            row = d * nb_
-            for k in range(nb_):
-                wbuf[row + k] = wbuf[row + k] / a[k]
-    else:
-        # Same weights for every point: one sum and one division per weight suffice.
-        tot = 0.0
-        for d in range(len_):
-            tot = tot + tab[base + abs(d - off)]
-        if not tot > 0:
-            return False
-        for d in range(len_):
-            wn = tab[base + abs(d - off)] / tot
-            row = d * nb_
-            for k in range(nb_):
-                wbuf[row + k] = wn
-    if h > 0 and ideg > 0:
-        for d in range(len_):
-            row = d * nb_
-            for k in range(nb_):
+            row = d * npts
+            for k in range(npts):
                 m[k] = m[k] + wbuf[row + k] * (pos[k] + d)
         for d in range(len_):
-            row = d * nb_
-            for k in range(nb_):
+            row = d * npts
+            for k in range(npts):
                 e = (pos[k] + d) - m[k]
                 c[k] = c[k] + wbuf[row + k] * (e * e)
         lim = 0.001 * rng
-        for k in range(nb_):
-            # No slope correction leaves b = 0: the factor below is then exactly 1.0.
-            b[k] = ((xs0 + k) - m[k]) / c[k] if math.sqrt(c[k]) > lim else 0.0
+        for k in range(npts):
+            # Without the slope correction b stays 0 and the factor below is exactly 1.0,
+            # as in the reference, which leaves the weights untouched.
+            if hpos[k] > 0 and math.sqrt(c[k]) > lim:
+                b[k] = (acc[6, k] - m[k]) / c[k]
     for d in range(len_):
-        row = d * nb_
-        for k in range(nb_):
-            s[k] = s[k] + (wbuf[row + k] * (b[k] * ((pos[k] + d) - m[k]) + 1.0)) * y[j0 + d + k]
-    for k in range(nb_):
-        ys[xs0 - 1 + k] = s[k]
-    return True
+        row = d * npts
+        j = jfirst + d
+        for k in range(npts):
+            s[k] = s[k] + (wbuf[row + k] * (b[k] * ((pos[k] + d) - m[k]) + 1.0)) * y[
+                j + shift * k]
+    for k in range(npts):
+        ys_out[out0 + k] = s[k] if a[k] > 0 else np.nan
 
 
 @nb.njit(**_JIT)
-def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, tab, toff, blocked):
+def _loess_shift(y, n, len_, ideg, xs0, nleft0, npts, userw, rw, tab, toff, ys, wbuf, acc,
+                 hpos):
+    """`_est` at points ``xs0 + k`` with windows ``[nleft0 + k, nleft0 + k + len_ - 1]``.
+
+    Consecutive shifts of one window: all points share the half-width and tricube row.
+    Writes ``ys[xs0-1 : xs0-1+npts]`` (NaN where a point has no positive weight).
+    """
+    h = max(xs0 - nleft0, nleft0 + len_ - 1 - xs0)
+    base = toff[h]
+    off = xs0 - nleft0
+    j0 = nleft0 - 1
+    a = acc[0]
+    for k in range(npts):
+        a[k] = 0.0
+        hpos[k] = h
+        acc[6, k] = float(xs0 + k)
+    hpos[npts] = len_
+    if userw:
+        for d in range(len_):
+            t = tab[base + abs(d - off)]
+            for k in range(npts):
+                a[k] = a[k] + t * rw[j0 + d + k]
+        for d in range(len_):
+            t = tab[base + abs(d - off)]
+            row = d * npts
+            for k in range(npts):
+                wbuf[row + k] = (t * rw[j0 + d + k]) / a[k]
+    else:
+        # Identical weights for every point: one sum, one division per offset.
+        tot = 0.0
+        for d in range(len_):
+            tot = tot + tab[base + abs(d - off)]
+        for d in range(len_):
+            wn = tab[base + abs(d - off)] / tot
+            row = d * npts
+            for k in range(npts):
+                wbuf[row + k] = wn
+        for k in range(npts):
+            a[k] = tot
+    _loess_finish(y, n, ideg, npts, j0, 1, ys, xs0 - 1, wbuf, acc, hpos)
+
+
+@nb.njit(**_JIT)
+def _loess_fixed(y, n, len_, ideg, xs0, npts, nleft, nright, userw, rw, tab, toff, ys,
+                 wbuf, acc, hpos):
+    """`_est` at points ``xs0 + k`` that all use the window ``[nleft, nright]``.
+
+    Each point has its own half-width (end points of a series, or a span longer than
+    the series). Writes ``ys[xs0-1 : xs0-1+npts]`` (NaN where no positive weight).
+    """
+    width = nright - nleft + 1
+    a = acc[0]
+    for k in range(npts):
+        xs = xs0 + k
+        h = max(xs - nleft, nright - xs)
+        if len_ > n:
+            h += (len_ - n) // 2
+        hpos[k] = h
+        acc[6, k] = float(xs)
+        a[k] = 0.0
+    hpos[npts] = width
+    for d in range(width):
+        j = nleft - 1 + d
+        rwj = rw[j] if userw else 1.0
+        row = d * npts
+        for k in range(npts):
+            t = tab[toff[hpos[k]] + abs(j + 1 - xs0 - k)]
+            if userw:
+                t = t * rwj
+            wbuf[row + k] = t
+            a[k] = a[k] + t
+    for d in range(width):
+        row = d * npts
+        for k in range(npts):
+            wbuf[row + k] = wbuf[row + k] / a[k]
+    _loess_finish(y, n, ideg, npts, nleft - 1, 0, ys, xs0 - 1, wbuf, acc, hpos)
+
+
+@nb.njit(**_JIT)
+def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff, blocked):
     """LOESS smooth of ``y[:n]`` into ``ys[:n]`` (statsmodels' ``_ess``)."""
     if n < 2:
         ys[0] = y[0]
@@ -241,6 +290,26 @@ def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, tab, toff, block
     newnj = min(njump, n - 1)
     nleft = 1
     nright = n
+    if len_ >= n and newnj == 1 and blocked:
+        _loess_fixed(y, n, len_, ideg, 1, n, 1, n, userw, rw, tab, toff, ys, blk, acc, hpos)
+        for i in range(n):
+            if np.isnan(ys[i]):
+                ys[i] = y[i]
+        return
+    if len_ < n and newnj == 1 and blocked:
+        nsh = (len_ + 2) // 2
+        ninner = n - len_
+        _loess_fixed(y, n, len_, ideg, 1, nsh, 1, len_, userw, rw, tab, toff, ys, blk, acc,
+                     hpos)
+        _loess_shift(y, n, len_, ideg, nsh + 1, 2, ninner, userw, rw, tab, toff, ys, blk,
+                     acc, hpos)
+        i = nsh + ninner
+        _loess_fixed(y, n, len_, ideg, i + 1, n - i, n - len_ + 1, n, userw, rw, tab, toff,
+                     ys, blk, acc, hpos)
+        for i in range(n):
+            if np.isnan(ys[i]):
+                ys[i] = y[i]
+        return
     if len_ >= n:
         nleft = 1
         nright = n
@@ -257,15 +326,6 @@ def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, tab, toff, block
         i = 0
         while i < n:
             if (i + 1) > nsh and nright != n:
-                # Sliding part: the next nb_ points all shift their window by one.
-                nb_ = min(_BLOCK, n - len_ + nsh - i)
-                if blocked and nb_ > 1:
-                    if _est_block(y, n, len_, ideg, i + 1, nleft + 1, nb_, userw, rw, tab,
-                                  toff, ys, blk, acc):
-                        nleft += nb_
-                        nright += nb_
-                        i += nb_
-                        continue
                 nleft = nleft + 1
                 nright = nright + 1
             ys[i] = _est(y, n, len_, ideg, i + 1, nleft, nright, res, userw, rw, tab, toff)
@@ -327,7 +387,7 @@ def _ma(x, n, len_, ave):
 
 
 @nb.njit(**_JIT)
-def _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season_out, blk, acc, tab, toff,
+def _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season_out, blk, acc, hpos, tab, toff,
         blocked):
     """Cycle-subseries smoothing of ``work[0]`` into ``work[1]`` (n + 2*np values)."""
     y = work[0]
@@ -343,8 +403,8 @@ def _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season_out, blk, acc, tab, t
         if userw:
             for i in range(k):
                 work3[i] = rw[i * np_ + j]
-        _ess(work1, k, ns, isdeg, nsjump, userw, work3, work2[1:], work4, blk, acc, tab,
-             toff, blocked)
+        _ess(work1, k, ns, isdeg, nsjump, userw, work3, work2[1:], work4, blk, acc, hpos,
+             tab, toff, blocked)
         nright = min(ns, k)
         work2[0] = _est(work1, k, ns, isdeg, 0, 1, nright, work4, userw, work3, tab, toff)
         if np.isnan(work2[0]):
@@ -424,7 +484,7 @@ def _rwts(y, n, fit, rw, buf):
 
 @nb.njit(**_JIT)
 def _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni, no,
-              season, trend, rw, work, blk, acc, tab, toff, blocked):
+              season, trend, rw, work, blk, acc, hpos, tab, toff, blocked):
     """Full STL fit of ``y`` into ``season``, ``trend``, ``rw`` (statsmodels' ``fit``).
 
     ``work`` is (7, n + 2*np) scratch; ``blk`` and ``acc`` come from `_block_scratch`.
@@ -440,20 +500,20 @@ def _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, n
         for _ in range(ni):
             for i in range(n):
                 work[0, i] = y[i] - trend[i]
-            _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season, blk, acc, tab, toff,
-                blocked)
+            _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season, blk, acc, hpos, tab,
+                toff, blocked)
             # _fts: three moving averages of work[1] -> work[2]
             m = n + 2 * np_
             _ma(work[1], m, np_, work[2])
             _ma(work[2], m - np_ + 1, np_, work[0])
             _ma(work[0], m - 2 * np_ + 2, 3, work[2])
             _ess(work[2], n, nl, ildeg, nljump, False, work[3], work[0], work[4], blk, acc,
-                 tab, toff, blocked)
+                 hpos, tab, toff, blocked)
             for i in range(n):
                 season[i] = work[1, np_ + i] - work[0, i]
                 work[0, i] = y[i] - season[i]
-            _ess(work[0], n, nt, itdeg, ntjump, userw, rw, trend, work[2], blk, acc, tab,
-                 toff, blocked)
+            _ess(work[0], n, nt, itdeg, ntjump, userw, rw, trend, work[2], blk, acc, hpos,
+                 tab, toff, blocked)
         k += 1
         if k > no:
             break
@@ -464,9 +524,10 @@ def _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, n
 
 
 @nb.njit(**_JIT)
-def _block_scratch(ns, nt, nl):
+def _block_scratch(ns, nt, nl, n):
+    """Scratch of the vectorised LOESS for series of up to n points."""
     span = max(ns, nt, nl) + 1
-    return np.empty(_BLOCK * span), np.zeros((6, _BLOCK))
+    return np.empty(span * n), np.zeros((7, n)), np.zeros(n + 1, dtype=np.int64)
 
 
 @nb.njit(**_JIT)
@@ -477,9 +538,9 @@ def _stl_one(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni
     trend = np.empty(n)
     rw = np.empty(n)
     work = np.zeros((7, n + 2 * np_))
-    blk, acc = _block_scratch(ns, nt, nl)
+    blk, acc, hpos = _block_scratch(ns, nt, nl, n)
     _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni, no,
-              season, trend, rw, work, blk, acc, tab, toff, blocked)
+              season, trend, rw, work, blk, acc, hpos, tab, toff, blocked)
     return season, trend, rw
 
 
@@ -495,9 +556,9 @@ def _stl_windows(y, ends, window, np_, ns, nt, nl, ni, no, tab, toff):
         seg = y[e - window + 1 : e + 1]
         rw = np.empty(window)
         work = np.zeros((7, window + 2 * np_))
-        blk, acc = _block_scratch(ns, nt, nl)
+        blk, acc, hpos = _block_scratch(ns, nt, nl, window)
         _stl_into(seg, np_, ns, nt, nl, 1, 1, 1, 1, 1, 1, ni, no,
-                  season_out[w], trend_out[w], rw, work, blk, acc, tab, toff, True)
+                  season_out[w], trend_out[w], rw, work, blk, acc, hpos, tab, toff, True)
         for i in range(window):
             resid_out[w, i] = seg[i] - season_out[w, i] - trend_out[w, i]
     return trend_out, season_out, resid_out
@@ -512,9 +573,9 @@ def _stl_rows(ys, np_, ns, nt, nl, ni, no, tab, toff):
     for r in nb.prange(nr):
         rw = np.empty(n)
         work = np.zeros((7, n + 2 * np_))
-        blk, acc = _block_scratch(ns, nt, nl)
+        blk, acc, hpos = _block_scratch(ns, nt, nl, n)
         _stl_into(ys[r], np_, ns, nt, nl, 1, 1, 1, 1, 1, 1, ni, no,
-                  season_out[r], trend_out[r], rw, work, blk, acc, tab, toff, True)
+                  season_out[r], trend_out[r], rw, work, blk, acc, hpos, tab, toff, True)
     return trend_out, season_out
 
 
@@ -737,7 +798,6 @@ class LinearSmoother(NamedTuple):
         return self.trend + self.seasonal
 
 
-@functools.lru_cache(maxsize=16)
 def linear_smoother(
     window: int, period: int, seasonal: int, trend: int = 0, weekly: bool = False
 ) -> LinearSmoother:
@@ -754,7 +814,15 @@ def linear_smoother(
     LinearSmoother
         ``(trend, seasonal)`` matrices of shape (window, window).
     """
-    window = int(window)
+    if weekly:
+        return _smoother(int(window), int(period), 0, 0, True)
+    nt, _ = stl_config(period, seasonal, trend or None)
+    return _smoother(int(window), int(period), int(seasonal), nt, False)
+
+
+@functools.lru_cache(maxsize=16)
+def _smoother(window: int, period: int, seasonal: int, trend: int, weekly: bool
+              ) -> LinearSmoother:
     eye = np.eye(window)
     if weekly:
         per, win = _mstl_settings(window, (int(period), 7 * int(period)), None)
