@@ -18,6 +18,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
+from calibrate import stl_kernel
 from calibrate.settings import DetectorSettings
 
 MIN_FENCE_VALUES = 4  # fewer usable remainders in a fence window: no score
@@ -52,7 +53,8 @@ def _fill_window(window: np.ndarray) -> np.ndarray | None:
 
 
 def _seasonal_periods(s: DetectorSettings) -> tuple[int, ...]:
-    return (s.period_hours, 7 * s.period_hours) if s.weekly_period else (s.period_hours,)
+    # with a weekly component the summed seasonal repeats weekly
+    return (7 * s.period_hours,) if s.weekly_period else (s.period_hours,)
 
 
 def _fit_windows(windows: np.ndarray, s: DetectorSettings, tail: int):
@@ -194,51 +196,42 @@ def fence_scores(remainder: np.ndarray, q1: np.ndarray, q3: np.ndarray, sides: s
 
 
 def _fit_one(y: np.ndarray, s: DetectorSettings):
-    """One fit: trend, list of seasonal components, remainder (statsmodels semantics)."""
-    from statsmodels.tsa.seasonal import MSTL, STL
-
-    trend = None if s.trend_span == 0 else s.trend_span
+    """One fit with the compiled kernel: trend, [seasonal], remainder."""
     if s.weekly_period:
-        res = MSTL(
-            y,
-            periods=_seasonal_periods(s),
-            windows=(s.seasonal_span, s.seasonal_span + 4),
-            stl_kwargs={"robust": s.robust, "trend": trend},
-        ).fit()
-        seas = np.asarray(res.seasonal)
-        return np.asarray(res.trend), [seas[:, 0], seas[:, 1]], np.asarray(res.resid)
-    res = STL(
-        y, period=s.period_hours, seasonal=s.seasonal_span, trend=trend, robust=s.robust
-    ).fit()
-    return np.asarray(res.trend), [np.asarray(res.seasonal)], np.asarray(res.resid)
+        trend, seas, resid = stl_kernel.mstl_fit(
+            y, periods=(s.period_hours, 7 * s.period_hours), robust=s.robust
+        )
+        seas = np.asarray(seas)
+        total = seas.sum(axis=1) if seas.ndim == 2 else seas
+        return trend, [total], resid
+    trend, seas, resid = stl_kernel.stl_fit(
+        y, s.period_hours, s.seasonal_span, s.trend_span, s.robust
+    )
+    return trend, [seas], resid
 
 
 def _fit_many(windows: np.ndarray, s: DetectorSettings):
     n, L = windows.shape
-    k = 2 if s.weekly_period else 1
+    if not s.weekly_period:
+        # all windows laid end to end: one compiled call, no copies
+        flat = np.ascontiguousarray(windows).reshape(-1)
+        ends = np.arange(L - 1, n * L, L, dtype=np.int64)
+        trend, seas, resid = stl_kernel.stl_fit_windows(
+            flat, ends, L, s.period_hours, s.seasonal_span, s.trend_span, 0, s.robust
+        )
+        return trend, [seas], resid
     trend = np.empty((n, L))
-    seas = [np.empty((n, L)) for _ in range(k)]
+    seas = np.empty((n, L))
     resid = np.empty((n, L))
     for i in range(n):
         t, sc, r = _fit_one(windows[i], s)
-        trend[i] = t
-        resid[i] = r
-        for j in range(k):
-            seas[j][i] = sc[j]
-    return trend, seas, resid
-
-
-_LINEAR_CACHE: dict[tuple, tuple[np.ndarray, list[np.ndarray]]] = {}
+        trend[i], seas[i], resid[i] = t, sc[0], r
+    return trend, [seas], resid
 
 
 def _linear_parts(L: int, s: DetectorSettings) -> tuple[np.ndarray, list[np.ndarray]]:
-    """Matrices T, S_k with trend = T @ y and seasonal_k = S_k @ y for a window y."""
-    key = (L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period)
-    if key not in _LINEAR_CACHE:
-        trend, seas, _ = _fit_many(np.eye(L), s)
-        # row i of the fits of unit vector e_j is column j of the smoother matrix
-        _LINEAR_CACHE[key] = (
-            np.ascontiguousarray(trend.T),
-            [np.ascontiguousarray(m.T) for m in seas],
-        )
-    return _LINEAR_CACHE[key]
+    """Matrices T, S with trend = T @ y and seasonal = S @ y for a window y (cached)."""
+    sm = stl_kernel.linear_smoother(
+        L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period
+    )
+    return sm.trend, [sm.seasonal]

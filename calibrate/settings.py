@@ -126,8 +126,10 @@ class DetectorSettings:
             self.trend_span % 2 == 0 or self.trend_span <= self.period_hours
         ):
             raise bad("trend_span", "must be 0 (library default) or odd and above period_hours")
+        # MSTL drops a period unless the window holds more than two of it
         cycles = 3 if not self.weekly_period else 2
         need = cycles * self.period_hours * (7 if self.weekly_period else 1)
+        need += 1 if self.weekly_period else 0
         if self.decomposition_window_hours < need:
             raise bad(
                 "decomposition_window_hours",

@@ -12,7 +12,7 @@ import math
 
 import numpy as np
 import pytest
-from statsmodels.tsa.seasonal import STL
+from statsmodels.tsa.seasonal import MSTL, STL
 
 from calibrate.decompose import MIN_FENCE_VALUES, fence_scores, remainder_stream
 from calibrate.settings import DetectorSettings
@@ -33,14 +33,21 @@ def reference_loop(y, s: DetectorSettings, W: int, k: float):
             ok = ~np.isnan(win)
             x = np.arange(L)
             win[~ok] = np.interp(x[~ok], x[ok], win[ok])
-            fit = STL(
-                win, period=P, seasonal=s.seasonal_span, trend=trend_arg, robust=s.robust
-            ).fit()
+            if s.weekly_period:
+                fit = MSTL(win, periods=(P, 7 * P), stl_kwargs={"robust": s.robust}).fit()
+            else:
+                fit = STL(
+                    win, period=P, seasonal=s.seasonal_span, trend=trend_arg, robust=s.robust
+                ).fit()
         trend, seas, resid = fit.trend, fit.seasonal, fit.resid
+        if seas.ndim == 2:
+            seas = seas.sum(axis=1)
+        # with a weekly component the summed seasonal repeats weekly
+        R = 7 * P if s.weekly_period else P
         if t == t0:
             e = trend[L - 1] + seas[L - 1]
         else:
-            e = trend[L - 1] + seas[L - 1 + (t - t0) - P * math.ceil((t - t0) / P)]
+            e = trend[L - 1] + seas[L - 1 + (t - t0) - R * math.ceil((t - t0) / R)]
         out_exp[t] = e
         rem[t] = y[t] - e if valid[t] else np.nan
         stream = []
@@ -106,4 +113,22 @@ def test_stream_matches_reference_loop(case, kind):
     assert np.array_equal(np.isinf(rs), np.isinf(ours))
     np.testing.assert_allclose(ours[finite], rs[finite], rtol=0, atol=1e-9)
     flags = np.nan_to_num(ours, nan=-1.0) > 1.5
+    assert flags.tolist() == [ref_flag[t] for t in hours]
+
+
+@pytest.mark.parametrize("h", [1, 6])
+def test_weekly_stream_matches_mstl_reference(h):
+    # statsmodels MSTL (default windows 11, 15) is the reference for the weekly option
+    s = DetectorSettings(
+        decomposition_window_hours=360, fence_window_hours=48, weekly_period=True,
+        refit_every_hours=h, fence_multiplier=1.5,
+    )
+    y = _series(360 + 30, seed=5)
+    ref_exp, ref_score, ref_flag = reference_loop(y, s, 48, 1.5)
+    st = remainder_stream(y, s, (48,))
+    score = fence_scores(st.remainder, st.q1[48], st.q3[48], "both")
+    hours = sorted(ref_exp)
+    np.testing.assert_allclose(st.expected[hours], [ref_exp[t] for t in hours], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(score[hours], [ref_score[t] for t in hours], rtol=0, atol=1e-9)
+    flags = np.nan_to_num(score[hours], nan=-1.0) > 1.5
     assert flags.tolist() == [ref_flag[t] for t in hours]
