@@ -15,6 +15,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
@@ -124,12 +125,15 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     fit_of = (hours - (L - 1)) // h
     offset = hours - refits[fit_of]  # hours since the last refit
     # in-sample part: hour i = t - wmax + c <= t0  -> resid column tail-1-(t0-i)
-    for c in range(wmax):
-        i = hours - wmax + c
-        insample = i <= refits[fit_of]
-        col = tail - 1 - (refits[fit_of] - i)
-        sel = insample & (col >= 0)
-        stream[sel, c] = resid[fit_of[sel], col[sel]]
+    if h == 1:
+        stream[:] = resid[:, :wmax]
+    else:
+        i = hours[:, None] - wmax + np.arange(wmax)[None, :]
+        t0 = refits[fit_of][:, None]
+        col = tail - 1 - (t0 - i)
+        sel = (i <= t0) & (col >= 0)
+        rows = np.broadcast_to(fit_of[:, None], sel.shape)
+        stream[sel] = resid[rows[sel], col[sel]]
     # expected values: refit hours from the fit, others extrapolated
     exp = trend_last[fit_of].copy()
     for p, sc in zip(periods, seas, strict=True):
@@ -141,10 +145,9 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     remainder[hours] = np.where(valid[hours], y[hours] - exp, np.nan)
     if h > 1:
         # out-of-sample part: hours t0 < i < t use remainder_i
-        for c in range(wmax):
-            i = hours - wmax + c
-            outs = i > refits[fit_of]
-            stream[outs, c] = remainder[i[outs]]
+        i = hours[:, None] - wmax + np.arange(wmax)[None, :]
+        outs = i > refits[fit_of][:, None]
+        stream[outs] = remainder[i[outs]]
     # masked hours leave the fence windows
     idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
     stream[~valid[np.clip(idx, 0, n - 1)]] = np.nan
@@ -158,7 +161,14 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
 
 
 def _quartiles(block: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
-    """Q1, Q3 of each row's non-NaN values, exactly as numpy.percentile gives them."""
+    """Q1, Q3 of each row's non-NaN values, exactly as numpy.percentile gives them.
+
+    Rows with fewer than `MIN_FENCE_VALUES` values get NaN. The default `linear`
+    method runs in a compiled kernel that repeats numpy's arithmetic (same bits);
+    other methods go through numpy itself.
+    """
+    if method == "linear":
+        return _quartiles_linear(np.ascontiguousarray(block), MIN_FENCE_VALUES)
     nan = np.isnan(block)
     counts = block.shape[1] - nan.sum(axis=1)
     q = np.full((2, block.shape[0]), np.nan)
@@ -170,6 +180,42 @@ def _quartiles(block: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
         row = block[r]
         q[:, r] = np.percentile(row[~np.isnan(row)], [25.0, 75.0], method=method)
     return q[0], q[1]
+
+
+@numba.njit(cache=True)
+def _lerp_quantile(buf, m, q):
+    # numpy's "linear" method: virtual index (m-1)*q, then its _lerp
+    v = (m - 1) * q
+    prev = int(np.floor(v))
+    nxt = min(prev + 1, m - 1)
+    g = v - prev
+    a = buf[prev]
+    b = buf[nxt]
+    d = b - a
+    if g >= 0.5:
+        return b - d * (1 - g)
+    return a + d * g
+
+
+@numba.njit(cache=True)
+def _quartiles_linear(block, min_count):
+    n, w = block.shape
+    q1 = np.full(n, np.nan)
+    q3 = np.full(n, np.nan)
+    buf = np.empty(w)
+    for r in range(n):
+        m = 0
+        for c in range(w):
+            x = block[r, c]
+            if not np.isnan(x):
+                buf[m] = x
+                m += 1
+        if m < min_count:
+            continue
+        srt = np.sort(buf[:m])
+        q1[r] = _lerp_quantile(srt, m, 0.25)
+        q3[r] = _lerp_quantile(srt, m, 0.75)
+    return q1, q3
 
 
 def fence_scores(remainder: np.ndarray, q1: np.ndarray, q3: np.ndarray, sides: str) -> np.ndarray:

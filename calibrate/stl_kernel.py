@@ -192,12 +192,18 @@ def _loess_finish(y, n, ideg, npts, jfirst, shift, ys_out, out0, wbuf, acc, hpos
             # as in the reference, which leaves the weights untouched.
             if hpos[k] > 0 and math.sqrt(c[k]) > lim:
                 b[k] = (acc[6, k] - m[k]) / c[k]
-    for d in range(len_):
-        row = d * npts
-        j = jfirst + d
-        for k in range(npts):
-            s[k] = s[k] + (wbuf[row + k] * (b[k] * ((pos[k] + d) - m[k]) + 1.0)) * y[
-                j + shift * k]
+    if shift == 1:
+        for d in range(len_):
+            row = d * npts
+            j = jfirst + d
+            for k in range(npts):
+                s[k] = s[k] + (wbuf[row + k] * (b[k] * ((pos[k] + d) - m[k]) + 1.0)) * y[j + k]
+    else:
+        for d in range(len_):
+            row = d * npts
+            yj = y[jfirst + d]
+            for k in range(npts):
+                s[k] = s[k] + (wbuf[row + k] * (b[k] * ((pos[k] + d) - m[k]) + 1.0)) * yj
     for k in range(npts):
         ys_out[out0 + k] = s[k] if a[k] > 0 else np.nan
 

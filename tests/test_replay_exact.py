@@ -132,3 +132,22 @@ def test_weekly_stream_matches_mstl_reference(h):
     np.testing.assert_allclose(score[hours], [ref_score[t] for t in hours], rtol=0, atol=1e-9)
     flags = np.nan_to_num(score[hours], nan=-1.0) > 1.5
     assert flags.tolist() == [ref_flag[t] for t in hours]
+
+
+@pytest.mark.parametrize("w", [4, 5, 48, 167])
+def test_compiled_quartiles_bitwise_equal_numpy(w):
+    # numpy.percentile(method="linear") is the reference; NaNs are skipped per row
+    from calibrate.decompose import _quartiles
+
+    rng = np.random.default_rng(w)
+    block = rng.normal(size=(300, w)) * rng.choice([1e-3, 1.0, 1e6], size=(300, 1))
+    block[rng.random(block.shape) < 0.1] = np.nan
+    block[::7] = np.round(block[::7])  # ties
+    q1, q3 = _quartiles(block, "linear")
+    for r in range(len(block)):
+        row = block[r][~np.isnan(block[r])]
+        if len(row) < MIN_FENCE_VALUES:
+            assert np.isnan(q1[r]) and np.isnan(q3[r])
+            continue
+        ref = np.percentile(row, [25, 75])
+        assert q1[r] == ref[0] and q3[r] == ref[1]

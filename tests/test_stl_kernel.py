@@ -316,3 +316,35 @@ def test_linear_smoother_weekly_matches_mstl() -> None:
     np.testing.assert_allclose(sm.trend @ y, ref.trend, rtol=0, atol=1e-10 * scale)
     np.testing.assert_allclose(sm.seasonal @ y, ref.seasonal.sum(axis=1), rtol=0,
                                atol=1e-10 * scale)
+
+
+def test_many_zero_weights_bit_identical() -> None:
+    # A 5-day level shift: about 120 robustness weights are exactly 0.
+    y = _hourly(672, seed=12)
+    y[300:420] += 5000.0
+    ref = _sm_stl(y, 24, 7, robust=True)
+    assert (np.asarray(ref.weights) == 0).sum() >= 50
+    _assert_same(stl_fit(y, 24, 7, robust=True), ref)
+    _assert_same(stl_fit(y, 24, 7, robust=True, blocked=False), ref)
+
+
+def test_all_zero_weight_window_keeps_input() -> None:
+    # statsmodels' _ess: a LOESS window whose weights are all 0 gives NaN and the input
+    # value is kept. Checked on the kernel's LOESS directly (plain port vs vectorised).
+    from calibrate import stl_kernel as k
+
+    n, span = 200, 25
+    y = np.random.default_rng(0).normal(size=n)
+    rw = np.ones(n)
+    rw[80:140] = 0.0
+    tab, toff = k._weight_table(span + 1)
+    out = {}
+    for blocked in (False, True):
+        blk, acc, hpos = k._block_scratch(7, span, span, n)
+        ys = np.empty(n)
+        k._ess(y, n, span, 1, 1, True, rw, ys, np.empty(n), blk, acc, hpos, tab, toff,
+               blocked)
+        out[blocked] = ys
+    np.testing.assert_array_equal(out[True], out[False])
+    np.testing.assert_array_equal(out[True][100:120], y[100:120])
+    assert not np.array_equal(out[True][:60], y[:60])
