@@ -13,6 +13,7 @@ one matrix product) and the compiled STL kernel (robust fits).
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numba
@@ -62,6 +63,12 @@ def _fit_windows(windows: np.ndarray, s: DetectorSettings, tail: int):
     """Fit each row of `windows`; return trend at the last point, seasonal tails
     (one array per seasonal component, last `tail` points) and remainder tails."""
     L = windows.shape[1]
+    if not s.robust and s.refit_every_hours == 1:
+        # every hour is a refit: only the fitted values (trend + seasonal) are needed
+        fitted_m = _linear_fitted(L, s)
+        fitted_tail = windows @ fitted_m[L - tail :].T
+        resid = windows[:, L - tail :] - fitted_tail
+        return fitted_tail[:, -1], [np.zeros((len(windows), tail))], resid
     if not s.robust:
         trend_m, seas_ms = _linear_parts(L, s)
         trend_last = windows @ trend_m[L - 1]
@@ -183,14 +190,55 @@ def _quartiles(block: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 @numba.njit(cache=True)
-def _lerp_quantile(buf, m, q):
-    # numpy's "linear" method: virtual index (m-1)*q, then its _lerp
+def _select(a, lo, hi, k):
+    """Partially order a[lo:hi] so that a[k] is its k-th smallest (quickselect)."""
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        # median of three as pivot
+        x, y, z = a[lo], a[mid], a[hi - 1]
+        if x > y:
+            x, y = y, x
+        if y > z:
+            y = z
+            if x > y:
+                y = x
+        pivot = y
+        i, j = lo, hi - 1
+        while i <= j:
+            while a[i] < pivot:
+                i += 1
+            while a[j] > pivot:
+                j -= 1
+            if i <= j:
+                a[i], a[j] = a[j], a[i]
+                i += 1
+                j -= 1
+        if k <= j:
+            hi = j + 1
+        elif k >= i:
+            lo = i
+        else:
+            return
+
+
+@numba.njit(cache=True)
+def _order_pair(a, m, q, lo):
+    """Values at the floor and next index of numpy's virtual index (m-1)*q."""
     v = (m - 1) * q
     prev = int(np.floor(v))
-    nxt = min(prev + 1, m - 1)
-    g = v - prev
-    a = buf[prev]
-    b = buf[nxt]
+    _select(a, lo, m, prev)
+    b = a[prev]
+    if prev + 1 < m:
+        b = a[prev + 1]
+        for i in range(prev + 2, m):
+            if a[i] < b:
+                b = a[i]
+    return prev, a[prev], b, v - prev
+
+
+@numba.njit(cache=True)
+def _lerp(a, b, g):
+    # numpy's _lerp, same operations
     d = b - a
     if g >= 0.5:
         return b - d * (1 - g)
@@ -212,9 +260,11 @@ def _quartiles_linear(block, min_count):
                 m += 1
         if m < min_count:
             continue
-        srt = np.sort(buf[:m])
-        q1[r] = _lerp_quantile(srt, m, 0.25)
-        q3[r] = _lerp_quantile(srt, m, 0.75)
+        p1, a1, b1, g1 = _order_pair(buf, m, 0.25, 0)
+        q1[r] = _lerp(a1, b1, g1)
+        # everything from p1 on is >= the Q1 order statistic: select Q3 there
+        _p3, a3, b3, g3 = _order_pair(buf, m, 0.75, p1)
+        q3[r] = _lerp(a3, b3, g3)
     return q1, q3
 
 
@@ -281,3 +331,15 @@ def _linear_parts(L: int, s: DetectorSettings) -> tuple[np.ndarray, list[np.ndar
         L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period
     )
     return sm.trend, [sm.seasonal]
+
+
+def _linear_fitted(L: int, s: DetectorSettings) -> np.ndarray:
+    """Matrix F with trend + seasonal = F @ y for a window y (cached)."""
+    return _fitted_matrix(L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period)
+
+
+@functools.lru_cache(maxsize=16)
+def _fitted_matrix(L: int, period: int, seasonal: int, trend: int, weekly: bool) -> np.ndarray:
+    return np.ascontiguousarray(
+        stl_kernel.linear_smoother(L, period, seasonal, trend, weekly).fitted
+    )

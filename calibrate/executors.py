@@ -3,7 +3,8 @@
 An executor runs `fn(shared, task)` for many small tasks, where `shared` is data
 every task reads (the history arrays) and is handed to each worker only once.
 `SerialExecutor` runs in this process; `LocalExecutor` uses processes on this
-machine (forked, so the shared arrays are inherited, not copied per task);
+machine (started through a fork server, which is safe with the compiled kernels'
+threads, and handed the shared arrays once per worker, not once per task);
 `DaskExecutor` sends the shared data to a dask.distributed cluster once
 (`Client.scatter(broadcast=True)`) and submits tasks against it.
 """
@@ -23,6 +24,20 @@ _SHARED: dict[int, Any] = {}
 
 def _init_worker(token: int, shared: Any) -> None:
     _SHARED[token] = shared
+    single_thread_worker()
+
+
+def single_thread_worker() -> None:
+    """One thread per worker process: the processes already use every core, and
+    BLAS or numba threads on top would only oversubscribe them."""
+    try:
+        import numba
+        from threadpoolctl import threadpool_limits
+
+        threadpool_limits(1)
+        numba.set_num_threads(1)
+    except ImportError:  # pragma: no cover - both come with the dependencies
+        pass
 
 
 def _run_task(token: int, fn: Callable, index: int, task: Any) -> tuple[int, Any]:
@@ -69,7 +84,7 @@ class LocalExecutor(Executor):
             self.close()
             self._pool = ProcessPoolExecutor(
                 max_workers=self.workers,
-                mp_context=get_context("fork"),
+                mp_context=get_context("forkserver"),
                 initializer=_init_worker,
                 initargs=(token, shared),
             )
