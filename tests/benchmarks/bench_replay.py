@@ -127,7 +127,8 @@ def main() -> None:
               f" {per_ours * 1e6:.1f} us per series-hour;"
               f" reference loop {per_ref * 1e3:.2f} ms per series-hour"
               f" ({ref_count} hours timed); ratio {per_ref / per_ours:.0f}x"
-              f" (target {'200' if not robust else '40'}x), with start-up {per_ref * series_hours / cold:.0f}x;"
+              f" (target {'200' if not robust else '40'}x),"
+              f" with start-up {per_ref * series_hours / cold:.0f}x;"
               f" flags identical: {agree}")
     if not args.skip_memory:
         before = peak_rss_mb()
