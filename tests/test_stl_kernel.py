@@ -348,3 +348,67 @@ def test_all_zero_weight_window_keeps_input() -> None:
     np.testing.assert_array_equal(out[True], out[False])
     np.testing.assert_array_equal(out[True][100:120], y[100:120])
     assert not np.array_equal(out[True][:60], y[:60])
+
+
+# ----------------------------------------------------------------------------- weight reuse
+
+@pytest.mark.parametrize("window", [168, 336, 672])
+@pytest.mark.parametrize("seasonal", [7, 11])
+def test_windows_degenerate_robust_match_statsmodels(window: int, seasonal: int) -> None:
+    # Degenerate robust windows (6*median|R| near 0, bisquare weights on a knife edge),
+    # laid end to end as calibrate/decompose.py does. Reference: statsmodels' STL.
+    kinds = ["zeros", "spikes", "periodic", "constant", "night_zero"]
+    wins = [_degenerate(kind, window) for kind in kinds]
+    flat = np.concatenate(wins)
+    ends = np.arange(window - 1, len(kinds) * window, window, dtype=np.int64)
+    fast = stl_fit_windows(flat, ends, window, 24, seasonal, 0, 0, True)
+    slow = stl_fit_windows(flat, ends, window, 24, seasonal, 0, 0, True,
+                           reuse_weights=False)
+    for i, seg in enumerate(wins):
+        ref = _sm_stl(seg, 24, seasonal, robust=True)
+        scale = max(np.abs(seg).max(), 1.0)
+        for ours, other, want in zip(fast, slow, (ref.trend, ref.seasonal, ref.resid),
+                                     strict=True):
+            np.testing.assert_allclose(ours[i], want, rtol=0, atol=1e-9 * scale)
+            np.testing.assert_array_equal(ours[i], np.asarray(want))  # the claim: same bits
+            np.testing.assert_array_equal(ours[i], other[i])
+
+
+@pytest.mark.parametrize("n", [168, 336, 672, 100, 61])
+def test_reuse_weights_same_bits_as_blocked(n: int) -> None:
+    # 100 and 61 points: partial last cycle (two subseries lengths) at periods 24 and 12.
+    period = 24 if n % 12 else 12
+    y = _hourly(n, seed=n + 1)
+    for seasonal, trend in ((7, 0), (11, 35)):
+        for robust in (False, True):
+            a = stl_fit(y, period, seasonal, trend=trend, robust=robust)
+            b = stl_fit(y, period, seasonal, trend=trend, robust=robust, reuse_weights=False)
+            ref = _sm_stl(y, period, seasonal, trend=trend, robust=robust)
+            _assert_same(a, ref)
+            for u, v in zip(a, b, strict=True):
+                np.testing.assert_array_equal(u, v)
+
+
+def test_reuse_weights_zero_weight_window_keeps_input() -> None:
+    # Prepared weights of a window with all robustness weights 0 are NaN; the LOESS then
+    # keeps the input, as statsmodels' _ess does. Compared with the plain port's _ess.
+    from calibrate import stl_kernel as k
+
+    n, span = 200, 25
+    y = np.random.default_rng(0).normal(size=n)
+    rw = np.ones(n)
+    rw[80:140] = 0.0
+    tab, toff = k._weight_table(span + 1)
+    blk, acc, hpos = k._block_scratch(7, span, span, n)
+    want = np.empty(n)
+    k._ess(y, n, span, 1, 1, True, rw, want, np.empty(n), blk, acc, hpos, tab, toff, False)
+    blocks: list = []
+    k._series_blocks(blocks, n, span, tab, toff)
+    plan = k._pack(blocks, 1)
+    w = np.empty(plan.tw.shape[0])
+    k._plan_weights(*k._plan_args(plan), rw, w, np.empty((4, n)))
+    got = np.empty(n)
+    k._plan_apply(plan.info, plan.base, w, y, got, np.empty(n))
+    np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(got[100:120], y[100:120])
+    assert np.isnan(w).any()

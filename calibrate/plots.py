@@ -1,0 +1,230 @@
+"""PNG plots of the calibration report (matplotlib, Agg backend, CPU only).
+
+Every function takes plain data from `calibrate.report.ReportData` (no session,
+no replay) and returns PNG bytes, so the report's content is computed and tested
+first and rendered afterwards.
+"""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Sequence
+from typing import TYPE_CHECKING
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+import matplotlib.pyplot as plt  # noqa: E402
+import numpy as np  # noqa: E402
+
+if TYPE_CHECKING:
+    from calibrate.report import CurveData, SeriesPanel, TradeoffData, VolumeData
+
+# Our own palette: colour-blind friendly, distinct in greyscale print too.
+INK = "#222222"
+GRID = "#d9d9d9"
+CHOSEN = "#c0392b"
+FEASIBLE = "#1f77b4"
+INFEASIBLE = "#b0b0b0"
+FRONT = "#2c3e50"
+BUDGET = "#e67e22"
+TARGET = "#27ae60"
+TEAM_COLOURS = ("#1f77b4", "#e69f00", "#009e73", "#cc79a7", "#56b4e9", "#d55e00", "#7f7f7f")
+DPI = 110
+
+
+def _style(ax: plt.Axes) -> None:
+    ax.grid(True, color=GRID, linewidth=0.6)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.tick_params(labelsize=8)
+
+
+def _hour(iso: str) -> np.datetime64:
+    """ISO-8601 UTC text ('...Z') as a naive numpy hour (the axis is in UTC)."""
+    return np.datetime64(iso.rstrip("Z"), "h")
+
+
+def _png(fig: plt.Figure) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=DPI, bbox_inches="tight", facecolor="white")
+    plt.close(fig)
+    return buf.getvalue()
+
+
+def tradeoff_png(data: TradeoffData) -> bytes:
+    """Recall against alerts per analyst per day: trials, Pareto front, chosen point."""
+    fig, ax = plt.subplots(figsize=(7.0, 4.2))
+    _style(ax)
+    if data.curve_x:
+        ax.plot(data.curve_x, data.curve_y, color=CHOSEN, linewidth=1.2, alpha=0.6,
+                linestyle=":", label="chosen settings, other multipliers")
+    x, y, ok = np.asarray(data.x), np.asarray(data.y), np.asarray(data.feasible, dtype=bool)
+    if len(x):
+        ax.scatter(x[~ok], y[~ok], s=18, color=INFEASIBLE, label="trial, misses the goal")
+        ax.scatter(x[ok], y[ok], s=22, color=FEASIBLE, label="trial, meets the goal")
+        front = np.asarray(data.pareto, dtype=bool)
+        if front.any():
+            order = np.argsort(x[front])
+            ax.step(x[front][order], y[front][order], where="post", color=FRONT,
+                    linewidth=1.4, label="best trade-offs (Pareto front)")
+    if data.chosen_x is not None and data.chosen_y is not None:
+        ax.scatter([data.chosen_x], [data.chosen_y], s=120, marker="*", color=CHOSEN,
+                   zorder=5, label="chosen settings")
+    if data.budget is not None and np.isfinite(data.budget):
+        ax.axvline(data.budget, color=BUDGET, linestyle="--", linewidth=1.2,
+                   label=f"alert budget ({data.budget:g})")
+    ax.axhline(data.target_recall, color=TARGET, linestyle="--", linewidth=1.2,
+               label=f"recall target ({100 * data.target_recall:.0f}%)")
+    ax.set_xlabel(data.x_label, fontsize=9)
+    ax.set_ylabel("recall (share of incidents caught)", fontsize=9)
+    ax.set_ylim(-0.03, 1.05)
+    ax.set_xlim(left=0)
+    ax.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
+    ax.legend(fontsize=7.5, loc="lower right", framealpha=0.9)
+    ax.set_title("Recall against alert load (tuning weeks)", fontsize=10, loc="left")
+    return _png(fig)
+
+
+def multiplier_png(data: CurveData) -> bytes:
+    """Recall (top) and alerts per analyst per day per team (bottom) against k."""
+    fig, (top, bottom) = plt.subplots(2, 1, figsize=(7.0, 5.0), sharex=True,
+                                      gridspec_kw={"height_ratios": [1, 1.2]})
+    for ax in (top, bottom):
+        _style(ax)
+        if data.chosen_k is not None:
+            ax.axvline(data.chosen_k, color=CHOSEN, linewidth=1.2, linestyle="-", alpha=0.8)
+    ks = np.asarray(data.ks)
+    top.fill_between(ks, data.recall_low, data.recall_high, step="post", color=FEASIBLE,
+                     alpha=0.15, linewidth=0, label="95% interval")
+    top.step(ks, data.recall, where="post", color=FEASIBLE, linewidth=1.6, label="recall")
+    top.axhline(data.target_recall, color=TARGET, linestyle="--", linewidth=1.2,
+                label=f"target ({100 * data.target_recall:.0f}%)")
+    top.set_ylim(-0.03, 1.05)
+    top.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
+    top.set_ylabel("recall", fontsize=9)
+    top.legend(fontsize=7.5, loc="lower left", framealpha=0.9)
+    chosen = "" if data.chosen_k is None else f" (chosen k = {data.chosen_k:.3g}, red line)"
+    top.set_title(f"Moving the fence multiplier k{chosen}", fontsize=10, loc="left")
+    for j, team in enumerate(data.teams):
+        bottom.step(ks, data.team_rate[j], where="post", linewidth=1.4,
+                    color=TEAM_COLOURS[j % len(TEAM_COLOURS)], label=team)
+    budgets = sorted({b for b in data.budgets if b is not None and np.isfinite(b)})
+    for b in budgets:
+        bottom.axhline(b, color=BUDGET, linestyle="--", linewidth=1.2)
+    if budgets:
+        bottom.plot([], [], color=BUDGET, linestyle="--", label="budget")
+    bottom.set_ylabel("alerts per analyst per day", fontsize=9)
+    bottom.set_xlabel("fence multiplier k (fences at Q1 - k*IQR and Q3 + k*IQR)", fontsize=9)
+    bottom.set_ylim(bottom=0)
+    bottom.legend(fontsize=7.5, loc="upper right", framealpha=0.9)
+    fig.tight_layout()
+    return _png(fig)
+
+
+def volume_png(data: VolumeData) -> bytes:
+    """Alerts per analyst per day, per team and ISO week, against each team's budget."""
+    weeks, teams = list(data.weeks), list(data.teams)
+    fig, ax = plt.subplots(figsize=(7.0, 3.6))
+    _style(ax)
+    width = 0.8 / max(len(teams), 1)
+    xs = np.arange(len(weeks))
+    for j, team in enumerate(teams):
+        colour = TEAM_COLOURS[j % len(TEAM_COLOURS)]
+        rates = np.asarray(data.rate[j], dtype=float)
+        ax.bar(xs - 0.4 + width * (j + 0.5), np.nan_to_num(rates), width, color=colour,
+               label=team, edgecolor="white", linewidth=0.5)
+        b = data.budgets[j]
+        if b is not None and np.isfinite(b):
+            ax.hlines(b, -0.5, len(weeks) - 0.5, colors=colour, linestyles="--", linewidth=1.0)
+    if data.first_holdout_week is not None:
+        ax.axvline(data.first_holdout_week - 0.5, color=INK, linewidth=0.9)
+        ax.annotate("held-out weeks →", (data.first_holdout_week - 0.45, 0.98),
+                    xycoords=("data", "axes fraction"), fontsize=7.5, va="top",
+                    bbox={"facecolor": "white", "edgecolor": "none", "pad": 1})
+    ax.set_xticks(xs, weeks, rotation=0, fontsize=8)
+    ax.set_ylabel("alerts per analyst per day", fontsize=9)
+    ax.plot([], [], color=INK, linestyle="--", linewidth=1.0, label="budget (team colour)")
+    ax.legend(fontsize=7.5, loc="upper left", bbox_to_anchor=(1.0, 1.0), framealpha=0.9)
+    ax.set_title("Alert load per team and week (chosen settings)", fontsize=10, loc="left")
+    return _png(fig)
+
+
+def delay_png(delays: Sequence[float], early_hours: int, late_hours: int) -> bytes:
+    """Histogram of detection delays (hours from incident start to first alert)."""
+    fig, ax = plt.subplots(figsize=(7.0, 2.8))
+    _style(ax)
+    d = np.asarray([v for v in delays if v is not None and np.isfinite(v)], dtype=float)
+    if len(d):
+        lo, hi = int(np.floor(d.min())), int(np.ceil(d.max()))
+        bins = np.arange(min(lo, 0) - 0.5, max(hi, 1) + 1.5, 1.0)
+        ax.hist(d, bins=bins, color=FEASIBLE, edgecolor="white")
+        med = float(np.median(d))
+        ax.axvline(med, color=CHOSEN, linewidth=1.2, label=f"median {med:.1f} h")
+        ax.legend(fontsize=7.5, loc="upper right")
+        ax.yaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+        ax.set_xlim(min(-early_hours, lo) - 1.5, max(hi, 12) + 1.5)
+    else:
+        ax.text(0.5, 0.5, "no incident was caught", ha="center", va="center",
+                transform=ax.transAxes, fontsize=9)
+    ax.set_xlabel(f"hours from incident start to first alert (matching allows {early_hours} h "
+                  f"early, {late_hours} h after the end)", fontsize=8.5)
+    ax.set_ylabel("incidents", fontsize=9)
+    ax.set_title("Detection delay of caught incidents", fontsize=10, loc="left")
+    return _png(fig)
+
+
+def series_png(panel: SeriesPanel) -> bytes:
+    """Value, expected value and fences of one series, incident and alert spans shaded."""
+    fig, ax = plt.subplots(figsize=(7.0, 2.9))
+    _style(ax)
+    t = np.array([_hour(x) for x in panel.times])
+    ax.fill_between(t, panel.lower, panel.upper, color=FEASIBLE, alpha=0.15, linewidth=0,
+                    label=f"fences (k = {panel.k:.3g})", step="mid")
+    ax.plot(t, panel.expected, color=FEASIBLE, linewidth=1.0, linestyle="--", label="expected")
+    ax.plot(t, panel.value, color=INK, linewidth=1.1, label="value")
+    first = True
+    for s, e in panel.incident_spans:
+        ax.axvspan(_hour(s), _hour(e), color=TARGET, alpha=0.22,
+                   linewidth=0, label="incident window" if first else None)
+        first = False
+    first = True
+    for s, e in panel.alert_spans:
+        ax.axvspan(_hour(s), _hour(e), ymin=0.0, ymax=0.06,
+                   color=CHOSEN, linewidth=0, label="alert raised" if first else None)
+        first = False
+    ax.set_title(panel.title, fontsize=9.5, loc="left")
+    ax.set_ylabel(panel.metric, fontsize=9)
+    ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.0, 1.0), framealpha=0.9)
+    fig.autofmt_xdate(rotation=0, ha="center")
+    ax.xaxis.set_major_formatter(matplotlib.dates.DateFormatter("%b %d"))
+    return _png(fig)
+
+
+def comparison_png(
+    teams: Sequence[str],
+    old: Sequence[float | None],
+    new: Sequence[float | None],
+    budgets: Sequence[float | None],
+) -> bytes:
+    """Alerts per analyst per day per team: previous settings next to the new ones."""
+    fig, ax = plt.subplots(figsize=(6.0, 3.0))
+    _style(ax)
+    xs = np.arange(len(teams))
+
+    def vals(v: Sequence[float | None]) -> np.ndarray:
+        return np.array([np.nan if x is None else x for x in v], dtype=float)
+
+    ax.bar(xs - 0.2, np.nan_to_num(vals(old)), 0.4, color=INFEASIBLE, label="previous")
+    ax.bar(xs + 0.2, np.nan_to_num(vals(new)), 0.4, color=FEASIBLE, label="new")
+    for x, b in zip(xs, budgets, strict=True):
+        if b is not None and np.isfinite(b):
+            ax.hlines(b, x - 0.45, x + 0.45, colors=BUDGET, linestyles="--", linewidth=1.2)
+    ax.plot([], [], color=BUDGET, linestyle="--", label="budget")
+    ax.set_xticks(xs, list(teams), fontsize=8)
+    ax.set_ylabel("alerts per analyst per day", fontsize=9)
+    ax.legend(fontsize=7.5, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    ax.set_title("Alert load per team, same history", fontsize=10, loc="left")
+    return _png(fig)

@@ -1,0 +1,1175 @@
+"""The calibration report: what a team lead reads before approving a rollout.
+
+Two steps, kept apart (see STYLE.md):
+
+1. `build_report_data` computes a `ReportData` record from one replay of the
+   chosen settings (plus, optionally, a replay of the current settings and the
+   trials of a study). It is pure computation over arrays and is what the tests
+   check; every figure in it comes from `calibrate.api.score_episodes`,
+   `calibrate.scoring.multiplier_curve` and `calibrate.api.alert_volume`.
+2. `render_html`, `render_markdown`, `summary_dict` and `calibrate.plots` turn
+   the record into ``index.html`` (self-contained, images embedded), ``report.md``
+   (images beside it), ``summary.json`` and PNG files.
+
+`write_report(ses, result, out_dir)` writes the report of a `TuneResult`;
+`write_config_report(ses, config, out_dir)` that of any config
+(`calibrate report --config`).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from calibrate import api
+from calibrate.errors import CalibrationError
+from calibrate.incidents import ANY_METRIC
+from calibrate.replay import MetricScores, ReplayResult, sweep
+from calibrate.scoring import match, multiplier_curve, period_filter
+from calibrate.settings import DetectorConfig
+
+CAUTION = (
+    "A tuned configuration is only as good as the incident labels it was tuned on: "
+    "incidents nobody labelled count as false alerts, and labelled incidents that were "
+    "never real pull the fences too tight. Check the settings on held-out weeks (below) "
+    "and with the analysts who will receive the alerts before rollout."
+)
+MAX_MISSED_PANELS = 20
+FALSE_ALERT_PANELS = 3
+PANEL_BEFORE_HOURS = 72
+PANEL_AFTER_HOURS = 48
+CURVE_POINTS = 80
+
+
+# --------------------------------------------------------------------------- records
+
+
+@dataclass
+class PeriodData:
+    """Figures of the chosen (and current) settings over one period."""
+
+    name: str
+    start_hour: int
+    end_hour: int
+    start: str
+    end: str
+    figures: dict[str, Any]
+    goal_met: bool
+    verdict: str
+    current_figures: dict[str, Any] | None = None
+
+
+@dataclass
+class SettingRow:
+    """One detector setting, current value next to the chosen one."""
+
+    name: str
+    current: Any
+    chosen: Any
+
+    @property
+    def changed(self) -> bool:
+        return self.current != self.chosen
+
+
+@dataclass
+class TradeoffData:
+    """Points of the recall / alert-load trade-off plot (tuning weeks)."""
+
+    x: list[float]
+    y: list[float]
+    feasible: list[bool]
+    pareto: list[bool]
+    chosen_x: float | None
+    chosen_y: float | None
+    budget: float | None
+    target_recall: float
+    x_label: str
+    curve_x: list[float] = field(default_factory=list)
+    curve_y: list[float] = field(default_factory=list)
+
+
+@dataclass
+class CurveData:
+    """Recall and alert load of the chosen settings over a multiplier grid."""
+
+    ks: list[float]
+    recall: list[float]
+    recall_low: list[float]
+    recall_high: list[float]
+    alerts: list[int]
+    teams: list[str]
+    team_rate: list[list[float]]
+    budgets: list[float | None]
+    target_recall: float
+    chosen_k: float | None
+
+
+@dataclass
+class VolumeData:
+    """Alerts per analyst per day per team and ISO week (chosen settings)."""
+
+    weeks: list[str]
+    teams: list[str]
+    rate: list[list[float]]
+    alerts: list[list[int]]
+    budgets: list[float | None]
+    first_holdout_week: int | None
+    table: list[dict[str, Any]]
+
+
+@dataclass
+class SeriesPanel:
+    """One series around a missed incident or a run of false alerts."""
+
+    kind: str  # "missed incident" or "false alerts"
+    title: str
+    level: str
+    label: str
+    metric: str
+    times: list[str]
+    value: list[float]
+    expected: list[float]
+    lower: list[float]
+    upper: list[float]
+    k: float
+    incident_spans: list[tuple[str, str]]
+    alert_spans: list[tuple[str, str]]
+    note: str = ""
+
+
+@dataclass
+class ReportData:
+    """Everything the report shows, as plain data (rendered afterwards)."""
+
+    title: str
+    generated: str
+    workspace: str
+    source: str
+    goal: dict[str, Any]
+    feasible: bool | None
+    reason: str
+    holdout_warning: str
+    periods: list[PeriodData]
+    settings: list[SettingRow]
+    tradeoff: TradeoffData
+    curve: CurveData
+    volume: VolumeData
+    delays: list[float]
+    early_hours: int
+    late_hours: int
+    panels: list[SeriesPanel]
+    panels_left_out: int
+    incidents: list[dict[str, Any]]
+    caution: str = CAUTION
+    provenance: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def changed(self) -> list[str]:
+        return [r.name for r in self.settings if r.changed]
+
+
+# --------------------------------------------------------------------------- build
+
+
+def build_report_data(
+    ses: api.Session,
+    chosen: ReplayResult,
+    *,
+    current: ReplayResult | DetectorConfig | None = None,
+    first_hour: int | None = None,
+    split_hour: int | None = None,
+    trials: pd.DataFrame | None = None,
+    feasible: bool | None = None,
+    reason: str = "",
+    holdout_warning: str = "",
+    provenance: Mapping[str, Any] | None = None,
+    title: str = "Calibration report",
+    source: str = "",
+) -> ReportData:
+    """Compute the report's content from a replay of the chosen settings.
+
+    Parameters
+    ----------
+    ses : Session
+        With incidents loaded.
+    chosen : ReplayResult
+        Replay of the settings the report is about.
+    current : ReplayResult or DetectorConfig, optional
+        Today's settings: a replay adds their figures beside the chosen ones;
+        a config only fills the settings table (default: the workspace's).
+    first_hour, split_hour : int, optional
+        First scored hour (default: the chosen settings' first replayed hour) and
+        first held-out hour (None: one period, no held-out weeks).
+    trials : DataFrame, optional
+        Trials of a study (columns miss_rate, feasible, alerts_per_analyst_day...).
+    feasible, reason, holdout_warning : optional
+        What the search said.
+    """
+    ws, hist = ses.ws, ses.history
+    n = hist.n_hours
+    config = chosen.config
+    first = api.first_scored_hour(config, ws) if first_hour is None else int(first_hour)
+    split = None if split_hour is None or not first < split_hour < n else int(split_hour)
+    bounds = [("tuning weeks", first, split), ("held-out weeks", split, n)] if split else [
+        ("replayed weeks", first, n)
+    ]
+    cur_replay = current if isinstance(current, ReplayResult) else None
+    cur_config = cur_replay.config if cur_replay else (current or ws.detector)
+    goal = ws.goal
+    teams = list(dict.fromkeys([*ses.analysts, *sorted(set(chosen.episodes.team.tolist()))]))
+    budgets = {t: goal.budget(t) for t in teams}
+
+    periods = []
+    for name, a, b in bounds:
+        figs = api.score_episodes(ses, chosen.episodes, a, b).to_json_dict()
+        cur = None
+        if cur_replay is not None:
+            cur = api.score_episodes(ses, cur_replay.episodes, a, b).to_json_dict()
+        met, verdict = goal_verdict(figs, goal.max_miss_rate, ses.analysts)
+        periods.append(
+            PeriodData(name, a, b, _iso(hist.hours, a), _iso(hist.hours, b), figs, met,
+                       verdict, cur)
+        )
+    tune_a, tune_b = bounds[0][1], bounds[0][2]
+    curve = curve_data(ses, chosen, tune_a, tune_b, teams, budgets)
+    tuning = periods[0].figures
+    tradeoff = tradeoff_data(trials, tuning, ses.analysts, budgets, goal.max_miss_rate, curve)
+    volume = volume_data(ses, chosen, first, split)
+    incidents, delays = incident_rows(periods, hist.hours)
+    panels, left_out = series_panels(ses, chosen, first, n, incidents)
+    return ReportData(
+        title=title,
+        generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"),
+        workspace=str(ws.file),
+        source=source,
+        goal={
+            "max_miss_rate": goal.max_miss_rate,
+            "target_recall": 1.0 - goal.max_miss_rate,
+            "max_alerts_per_analyst_day": {t: _finite(b) for t, b in budgets.items()},
+        },
+        feasible=feasible,
+        reason=reason,
+        holdout_warning=holdout_warning,
+        periods=periods,
+        settings=settings_rows(cur_config, config),
+        tradeoff=tradeoff,
+        curve=curve,
+        volume=volume,
+        delays=delays,
+        early_hours=ws.incidents.early_hours,
+        late_hours=ws.incidents.late_hours,
+        panels=panels,
+        panels_left_out=left_out,
+        incidents=incidents,
+        provenance=dict(provenance or {}),
+    )
+
+
+def goal_verdict(
+    figs: Mapping[str, Any], max_miss_rate: float, analysts: Mapping[str, int]
+) -> tuple[bool, str]:
+    """Whether one period's figures meet the goal, and a plain sentence saying so."""
+    parts = []
+    miss = figs["miss_rate"]
+    n = figs["incidents"]
+    if n == 0:
+        miss_ok = True
+        parts.append("no labelled incidents in this period, so recall cannot be judged")
+    else:
+        miss_ok = miss <= max_miss_rate
+        parts.append(
+            f"{figs['caught']} of {n} incidents caught: miss rate {_pct(miss)} "
+            f"(95% interval {_pct(figs['miss_rate_low'])} to {_pct(figs['miss_rate_high'])}), "
+            f"goal at most {_pct(max_miss_rate)}"
+        )
+        high = figs["miss_rate_high"]
+        if miss_ok and high is not None and high > max_miss_rate:
+            parts.append("the interval reaches past the goal, so with this few incidents "
+                         "the result could be luck")
+    over = []
+    for team, row in sorted(figs.get("per_team", {}).items()):
+        if analysts.get(team, 0) <= 0:
+            continue
+        rate, budget = row.get("alerts_per_analyst_day"), row.get("budget")
+        if rate is not None and budget is not None and rate > budget:
+            over.append(f"{team} {rate:.2f} > {budget:g}")
+    if over:
+        parts.append("over the alert budget: " + ", ".join(over))
+    else:
+        parts.append("every team within its alert budget")
+    met = miss_ok and not over
+    return met, ("Met" if met else "Not met") + ": " + "; ".join(parts) + "."
+
+
+def settings_rows(current: DetectorConfig, chosen: DetectorConfig) -> list[SettingRow]:
+    """Current and chosen settings side by side (base table, then each group's keys)."""
+    cur, new = _flat(current.to_table()), _flat(chosen.to_table())
+    names = list(dict.fromkeys([*cur, *new]))
+    return [SettingRow(k, cur.get(k, "(not set)"), new.get(k, "(not set)")) for k in names]
+
+
+def _flat(table: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
+    out: dict[str, Any] = {}
+    for k, v in table.items():
+        if isinstance(v, Mapping):
+            out.update(_flat(v, f"{prefix}{k}."))
+        else:
+            out[f"{prefix}{k}"] = list(v) if isinstance(v, tuple) else v
+    return out
+
+
+def _load_axis(
+    rates: Mapping[str, float], budgets: Mapping[str, float], analysts: Mapping[str, int]
+) -> tuple[float, float | None, str]:
+    """Alert load on one axis: the busiest team's rate (or its share of its budget)."""
+    checked = [t for t in rates if analysts.get(t, 0) > 0]
+    finite = {budgets.get(t, math.inf) for t in checked}
+    if len(finite) <= 1:
+        b = next(iter(finite), math.inf)
+        x = max((rates[t] for t in checked if rates[t] == rates[t]), default=math.nan)
+        return x, (b if math.isfinite(b) else None), "alerts per analyst per day (busiest team)"
+    x = max(rates[t] / budgets[t] for t in checked if math.isfinite(budgets.get(t, math.inf)))
+    return x, 1.0, "alert load of the busiest team, as a share of its budget"
+
+
+def tradeoff_data(
+    trials: pd.DataFrame | None,
+    tuning: Mapping[str, Any],
+    analysts: Mapping[str, int],
+    budgets: Mapping[str, float],
+    max_miss_rate: float,
+    curve: CurveData,
+) -> TradeoffData:
+    """Trade-off points: trials (when a study ran), the chosen point, the k curve."""
+    chosen_rates = {
+        t: (row.get("alerts_per_analyst_day") if row.get("alerts_per_analyst_day") is not None
+            else math.nan)
+        for t, row in tuning.get("per_team", {}).items()
+    }
+    cx, budget, label = _load_axis(chosen_rates, budgets, analysts)
+    cy = tuning["recall"]
+    xs: list[float] = []
+    ys: list[float] = []
+    ok: list[bool] = []
+    if trials is not None and len(trials) and "miss_rate" in trials.columns:
+        df = trials
+        if "state" in df.columns:
+            df = df[df["state"].astype(str).str.upper().str.endswith("COMPLETE")]
+        cols = _team_rate_columns(df.columns, list(analysts))
+        for _, row in df.iterrows():
+            if row["miss_rate"] is None or not np.isfinite(float(row["miss_rate"])):
+                continue
+            if cols:
+                rates = {t: float(row[c]) for t, c in cols.items()}
+            else:
+                total = max(sum(analysts.values()), 1)
+                rates = {t: float(row.get("alerts", math.nan)) / total for t in analysts}
+            x, _, _ = _load_axis(rates, budgets, analysts)
+            xs.append(float(x))
+            ys.append(1.0 - float(row["miss_rate"]))
+            ok.append(bool(row.get("feasible", False)))
+    curve_x, curve_y = [], []
+    for i in range(len(curve.ks)):
+        rates = {t: curve.team_rate[j][i] for j, t in enumerate(curve.teams)}
+        x, _, _ = _load_axis(rates, budgets, analysts)
+        if x == x:
+            curve_x.append(float(x))
+            curve_y.append(float(curve.recall[i]))
+    return TradeoffData(
+        x=xs,
+        y=ys,
+        feasible=ok,
+        pareto=pareto_front(xs, ys),
+        chosen_x=None if cx != cx else float(cx),
+        chosen_y=cy,
+        budget=budget,
+        target_recall=1.0 - max_miss_rate,
+        x_label=label,
+        curve_x=curve_x,
+        curve_y=curve_y,
+    )
+
+
+def _team_rate_columns(columns: Sequence[str], teams: list[str]) -> dict[str, str]:
+    out = {}
+    for t in teams:
+        for c in columns:
+            c = str(c)
+            if "alerts_per_analyst_day" in c and "false" not in c and c.endswith(
+                (t, f"[{t}]", f"{t})")
+            ):
+                out[t] = c
+                break
+    return out if len(out) == len(teams) else {}
+
+
+def pareto_front(x: Sequence[float], y: Sequence[float]) -> list[bool]:
+    """Points no other point beats on both axes (lower x, higher y)."""
+    xa, ya = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    out = []
+    for i in range(len(xa)):
+        dominated = (xa <= xa[i]) & (ya >= ya[i]) & ((xa < xa[i]) | (ya > ya[i]))
+        out.append(bool(np.isfinite(xa[i]) and not dominated.any()))
+    return out
+
+
+def curve_data(
+    ses: api.Session,
+    chosen: ReplayResult,
+    start: int,
+    end: int,
+    teams: list[str],
+    budgets: Mapping[str, float],
+) -> CurveData:
+    """Recall and alerts per analyst per day for a grid of multipliers (one sweep)."""
+    s = ses.ws.search
+    k0 = chosen.config.base.fence_multiplier
+    lo, hi = min(s.multiplier_low, k0), max(s.multiplier_high, k0)
+    ks = np.unique(np.r_[np.geomspace(max(lo, 1e-3), hi, CURVE_POINTS), k0])
+    eps = period_filter(sweep(chosen.scores, ks, chosen.routes), start, end)
+    inc = period_filter(ses.incidents, start, end)
+    c = multiplier_curve(eps, ks, inc, ses.ws.incidents.early_hours,
+                         ses.ws.incidents.late_hours, ses.analysts, max(end - start, 1) / 24.0)
+    pos = {t: j for j, t in enumerate(c.teams)}
+    shown = [t for t in teams if ses.analysts.get(t, 0) > 0]
+    recall = 1.0 - c.miss_rate
+    return CurveData(
+        ks=ks.tolist(),
+        recall=_floats(recall),
+        recall_low=_floats(1.0 - c.miss_rate_high),
+        recall_high=_floats(1.0 - c.miss_rate_low),
+        alerts=c.alerts.tolist(),
+        teams=shown,
+        team_rate=[_floats(c.alerts_per_analyst_day[:, pos[t]]) for t in shown],
+        budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
+        target_recall=1.0 - ses.ws.goal.max_miss_rate,
+        chosen_k=k0,
+    )
+
+
+def volume_data(
+    ses: api.Session, chosen: ReplayResult, first: int, split: int | None
+) -> VolumeData:
+    """Alerts per team and week over the scored period, from `api.alert_volume`."""
+    n = ses.history.n_hours
+    vol = api.alert_volume(ses, chosen.episodes, first, n)
+    weeks = list(dict.fromkeys(vol["week"].tolist()))
+    teams = list(dict.fromkeys(vol["team"].tolist()))
+    rate, alerts = [], []
+    for t in teams:
+        sub = vol[vol["team"] == t].set_index("week")
+        rate.append(_floats(sub["alerts_per_analyst_day"].reindex(weeks).to_numpy()))
+        alerts.append([int(v) for v in sub["alerts"].reindex(weeks).fillna(0)])
+    hold = None
+    if split is not None:
+        iso = pd.DatetimeIndex([ses.history.hours[split]]).isocalendar()
+        label = f"{int(iso['year'].iloc[0])}-W{int(iso['week'].iloc[0]):02d}"
+        hold = weeks.index(label) if label in weeks else None
+    table = [
+        {k: _plain(v) for k, v in row.items()} for row in vol.to_dict(orient="records")
+    ]
+    return VolumeData(
+        weeks=weeks,
+        teams=teams,
+        rate=rate,
+        alerts=alerts,
+        budgets=[_finite(ses.ws.goal.budget(t)) for t in teams],
+        first_holdout_week=hold,
+        table=table,
+    )
+
+
+def incident_rows(
+    periods: list[PeriodData], hours: pd.DatetimeIndex
+) -> tuple[list[dict[str, Any]], list[float]]:
+    """The per-incident table (every period) and the delays of caught incidents."""
+    rows, delays = [], []
+    for p in periods:
+        for r in p.figures.get("per_incident", []):
+            row = {"period": p.name, **r}
+            rows.append(row)
+            if r.get("caught") and r.get("delay_hours") is not None:
+                delays.append(float(r["delay_hours"]))
+    return rows, delays
+
+
+def series_panels(
+    ses: api.Session,
+    chosen: ReplayResult,
+    first: int,
+    end: int,
+    incidents: list[dict[str, Any]],
+) -> tuple[list[SeriesPanel], int]:
+    """Panels for every missed incident (up to a cap) and the worst false-alert series."""
+    hist = ses.history
+    panels: list[SeriesPanel] = []
+    missed = [r for r in incidents if not r.get("caught")]
+    for r in missed[:MAX_MISSED_PANELS]:
+        lv, s = r["level"], int(r["series"])
+        metric = r["metric"]
+        a, b = int(r["start_hour"]), int(r["end_hour"])
+        lo, hi = max(first, a - PANEL_BEFORE_HOURS), min(end, b + PANEL_AFTER_HOURS)
+        if metric in ("", "(any)") or (lv, metric) not in chosen.scores:
+            metric = _loudest_metric(chosen.scores, lv, s, a, b)
+            if metric is None:
+                continue
+        ms = chosen.scores[(lv, metric)]
+        peak = np.nanmax(ms.score[s, a:b]) if np.isfinite(ms.score[s, a:b]).any() else math.nan
+        note = (f"highest fence score inside the window {peak:.2f}, the fence needs more "
+                f"than k = {ms.settings.fence_multiplier:.3g}" if peak == peak else
+                "no fence score inside the window (undefined values or warm-up)")
+        panels.append(_panel(
+            "missed incident",
+            f"Missed {r['incident_id']}: {lv} {r['series_label']}, {metric} ({r['period']})",
+            ses, chosen, lv, s, metric, lo, hi, note))
+    left_out = max(len(missed) - MAX_MISSED_PANELS, 0)
+
+    eps = period_filter(chosen.episodes, first, end)
+    inc = period_filter(ses.incidents, first, end)
+    m = match(eps, inc, ses.ws.incidents.early_hours, ses.ws.incidents.late_hours,
+              related=hist)
+    false_idx = np.flatnonzero(~m.alert_true)
+    groups: dict[tuple[str, int, str], list[int]] = {}
+    for i in false_idx:
+        groups.setdefault((eps.level[i], int(eps.series[i]), eps.metric[i]), []).append(int(i))
+    worst = sorted(groups.items(), key=lambda kv: (-len(kv[1]), kv[0]))[:FALSE_ALERT_PANELS]
+    for (lv, s, metric), idx in worst:
+        scores = np.nan_to_num(eps.peak_score[idx], nan=-1.0, posinf=1e300)
+        centre = int(eps.start[idx[int(np.argmax(scores))]])
+        lo = max(first, centre - 84)
+        hi = min(end, lo + 168)
+        label = " / ".join(str(v) for v in hist.levels[lv].keys.iloc[s].tolist())
+        shown = sum(1 for i in idx if lo <= eps.start[i] < hi)
+        related = int(m.alert_related[idx].sum())
+        note = (f"The week around the highest-scoring of them (peak fence score "
+                f"{float(np.max(eps.peak_score[idx])):.2f}).")
+        if related:
+            note += (f" {related} of the {len(idx)} meet an incident labelled on a parent or "
+                     "child series: if the problem was visible here too, label it here and "
+                     "they stop counting as false.")
+        panels.append(_panel(
+            "false alerts",
+            f"Most false alerts: {lv} {label}, {metric} ({len(idx)} false alerts, "
+            f"{shown} in this week)",
+            ses, chosen, lv, s, metric, lo, hi, note))
+    return panels, left_out
+
+
+def _loudest_metric(
+    scores: Mapping[tuple[str, str], MetricScores], lv: str, s: int, a: int, b: int
+) -> str | None:
+    best, best_score = None, -math.inf
+    for (level, metric), ms in scores.items():
+        if level != lv:
+            continue
+        window = ms.score[s, a:b]
+        val = np.nanmax(window) if np.isfinite(window).any() else -math.inf
+        if best is None or val > best_score:
+            best, best_score = metric, val
+    return best
+
+
+def _panel(
+    kind: str,
+    title: str,
+    ses: api.Session,
+    chosen: ReplayResult,
+    lv: str,
+    s: int,
+    metric: str,
+    lo: int,
+    hi: int,
+    note: str,
+) -> SeriesPanel:
+    hist = ses.history
+    ms = chosen.scores[(lv, metric)]
+    k = ms.settings.fence_multiplier
+    sl = slice(lo, hi)
+    iqr = ms.q3[s, sl] - ms.q1[s, sl]
+    expected = ms.expected[s, sl]
+    # the fences are on the remainder; drawn around the expected value to share its axis
+    lower = expected + ms.q1[s, sl] - k * iqr
+    upper = expected + ms.q3[s, sl] + k * iqr
+    times = [_iso(hist.hours, t) for t in range(lo, hi)]
+    inc = ses.incidents
+    sel = (inc.level == lv) & (inc.series == s) & ((inc.metric == metric) |
+                                                   (inc.metric == ANY_METRIC))
+    sel &= (inc.end > lo) & (inc.start < hi)
+    inc_spans = [(_iso(hist.hours, max(int(a), lo)), _iso(hist.hours, min(int(b), hi)))
+                 for a, b in zip(inc.start[sel], inc.end[sel], strict=True)]
+    ep = chosen.episodes
+    esel = (ep.level == lv) & (ep.series == s) & (ep.metric == metric)
+    esel &= (ep.end > lo) & (ep.start < hi)
+    al_spans = [(_iso(hist.hours, max(int(a), lo)), _iso(hist.hours, min(int(b), hi)))
+                for a, b in zip(ep.start[esel], ep.end[esel], strict=True)]
+    label = " / ".join(str(v) for v in hist.levels[lv].keys.iloc[s].tolist())
+    return SeriesPanel(
+        kind=kind, title=title, level=lv, label=label, metric=metric, times=times,
+        value=_floats(ms.value[s, sl]), expected=_floats(expected), lower=_floats(lower),
+        upper=_floats(upper), k=float(k), incident_spans=inc_spans, alert_spans=al_spans,
+        note=note,
+    )
+
+
+# --------------------------------------------------------------------------- summary
+
+
+def summary_dict(data: ReportData) -> dict[str, Any]:
+    """The JSON summary: figures exactly as `Figures.to_json_dict` gave them."""
+    out: dict[str, Any] = {
+        "title": data.title,
+        "generated": data.generated,
+        "workspace": data.workspace,
+        "source": data.source,
+        "goal": data.goal,
+        "feasible": data.feasible,
+        "reason": data.reason,
+        "holdout_warning": data.holdout_warning,
+        "periods": [
+            {
+                "name": p.name,
+                "start_hour": p.start_hour,
+                "end_hour": p.end_hour,
+                "start": p.start,
+                "end": p.end,
+                "goal_met": p.goal_met,
+                "verdict": p.verdict,
+            }
+            for p in data.periods
+        ],
+        "settings": {
+            "current": {r.name: r.current for r in data.settings},
+            "chosen": {r.name: r.chosen for r in data.settings},
+            "changed": data.changed,
+        },
+        "volume": data.volume.table,
+        "caution": data.caution,
+        "provenance": data.provenance,
+    }
+    names = {"tuning weeks": "tuning", "held-out weeks": "holdout", "replayed weeks": "replayed"}
+    for p in data.periods:
+        out[names[p.name]] = p.figures
+        if p.current_figures is not None:
+            out[f"{names[p.name]}_current"] = p.current_figures
+    return out
+
+
+# --------------------------------------------------------------------------- render
+
+
+PLOT_FILES = ("tradeoff.png", "multiplier.png", "volume.png", "delay.png")
+
+
+def render_plots(data: ReportData) -> dict[str, bytes]:
+    """Every PNG of the report, by file name."""
+    from calibrate import plots
+
+    out = {
+        "tradeoff.png": plots.tradeoff_png(data.tradeoff),
+        "multiplier.png": plots.multiplier_png(data.curve),
+        "volume.png": plots.volume_png(data.volume),
+        "delay.png": plots.delay_png(data.delays, data.early_hours, data.late_hours),
+    }
+    for i, panel in enumerate(data.panels):
+        out[_panel_file(i, panel)] = plots.series_png(panel)
+    return out
+
+
+def _panel_file(i: int, panel: SeriesPanel) -> str:
+    kind = "missed" if panel.kind == "missed incident" else "false"
+    return f"series-{i + 1:02d}-{kind}.png"
+
+
+CSS = """
+body { font-family: system-ui, -apple-system, "Segoe UI", Roboto, sans-serif; color: #222;
+       max-width: 62rem; margin: 1.5rem auto; padding: 0 1rem; line-height: 1.45; }
+h1 { font-size: 1.6rem; margin-bottom: .2rem; }
+h2 { font-size: 1.2rem; border-bottom: 2px solid #2c3e50; padding-bottom: .2rem;
+     margin-top: 2rem; }
+h3 { font-size: 1rem; margin-bottom: .3rem; }
+.meta { color: #555; font-size: .85rem; }
+.answer { border-left: 6px solid #2c3e50; background: #f4f6f8; padding: .6rem 1rem;
+          margin: 1rem 0; }
+.answer.met { border-color: #27ae60; } .answer.notmet { border-color: #c0392b; }
+.caution { border: 1px solid #e67e22; background: #fff8ef; padding: .6rem 1rem; }
+table { border-collapse: collapse; font-size: .85rem; margin: .5rem 0 1rem; }
+th, td { border: 1px solid #ccc; padding: .25rem .5rem; text-align: left;
+         vertical-align: top; }
+th { background: #eef1f4; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; }
+tr.changed td { background: #fff3cd; font-weight: 600; }
+tr.bad td { background: #fdecea; }
+.badge { display: inline-block; padding: 0 .4rem; border-radius: .2rem; font-size: .8rem;
+         font-weight: 700; color: #fff; }
+.badge.met { background: #1e7e45; } .badge.notmet { background: #b03a2e; }
+figure { margin: 1rem 0; } figure img { max-width: 100%; height: auto; }
+figcaption { font-size: .82rem; color: #444; }
+nav ol { columns: 2; font-size: .9rem; }
+@media print {
+  body { max-width: none; margin: 0; font-size: 10pt; }
+  nav { display: none; }
+  h2 { break-after: avoid; page-break-after: avoid; }
+  figure, table, .answer, .caution { break-inside: avoid; page-break-inside: avoid; }
+  .badge { border: 1px solid #000; color: #000; background: none !important; }
+  tr.changed td, tr.bad td, th { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+  a { color: inherit; text-decoration: none; }
+}
+"""
+
+
+def _e(x: Any) -> str:
+    return html.escape(str(x))
+
+
+def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]],
+           row_class: Sequence[str] | None = None) -> str:
+    head = "".join(f"<th>{_e(h)}</th>" for h in headers)
+    body = []
+    for i, r in enumerate(rows):
+        cls = f' class="{row_class[i]}"' if row_class and row_class[i] else ""
+        cells = "".join(
+            f'<td class="num">{_e(c)}</td>' if isinstance(c, int | float) or _numeric(c)
+            else f"<td>{_e(c)}</td>" for c in r
+        )
+        body.append(f"<tr{cls}>{cells}</tr>")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
+
+
+def _numeric(c: Any) -> bool:
+    s = str(c).rstrip("%").replace(".", "", 1).lstrip("-")
+    return s.isdigit()
+
+
+def goal_rows(data: ReportData) -> tuple[list[str], list[list[Any]]]:
+    """Goal table: one column per period (chosen settings, and current when known)."""
+    headers = ["figure"]
+    cols: list[dict[str, Any]] = []
+    for p in data.periods:
+        headers.append(f"{p.name}, chosen")
+        cols.append(p.figures)
+        if p.current_figures is not None:
+            headers.append(f"{p.name}, current")
+            cols.append(p.current_figures)
+
+    def ci(f: dict, key: str) -> str:
+        return f"{_pct(f[key])} ({_pct(f[key + '_low'])} to {_pct(f[key + '_high'])})"
+
+    rows: list[list[Any]] = [
+        ["incidents caught", *[f"{f['caught']} of {f['incidents']}" for f in cols]],
+        ["recall (95% interval)", *[ci(f, "recall") for f in cols]],
+        ["miss rate (95% interval)", *[ci(f, "miss_rate") for f in cols]],
+        ["alerts", *[f["alerts"] for f in cols]],
+        ["precision (95% interval)", *[ci(f, "precision") for f in cols]],
+        ["median detection delay", *[_hours(f["delay_median_hours"]) for f in cols]],
+        ["days", *[f"{f['n_days']:.1f}" for f in cols]],
+    ]
+    teams = sorted({t for f in cols for t in f.get("per_team", {})})
+    for t in teams:
+        rows.append([f"alerts per analyst per day, {t}", *[
+            _rate(f.get("per_team", {}).get(t, {})) for f in cols]])
+    return headers, rows
+
+
+def _rate(row: Mapping[str, Any]) -> str:
+    r, b = row.get("alerts_per_analyst_day"), row.get("budget")
+    if r is None:
+        return "n/a (no analysts)"
+    return f"{r:.2f}" + ("" if b is None else f" (budget {b:g})")
+
+
+def render_html(data: ReportData, images: Mapping[str, bytes]) -> str:
+    """A self-contained HTML page: inline CSS, images as data: URIs, no scripts."""
+
+    def img(name: str, alt: str, caption: str) -> str:
+        b64 = base64.b64encode(images[name]).decode("ascii")
+        return (f'<figure><img src="data:image/png;base64,{b64}" alt="{_e(alt)}">'
+                f"<figcaption>{_e(caption)}</figcaption></figure>")
+
+    return _document(data, img, html_page=True)
+
+
+def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: bool) -> str:
+    p0 = data.periods[0]
+    overall = all(p.goal_met for p in data.periods)
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        f"<title>{_e(data.title)}</title><style>{CSS}</style></head><body>",
+        f"<h1>{_e(data.title)}</h1>",
+        f'<p class="meta">Generated {_e(data.generated)} from {_e(data.workspace)}'
+        + (f" &middot; {_e(data.source)}" if data.source else "") + "</p>",
+        f'<div class="answer {"met" if overall else "notmet"}"><strong>In short:</strong> '
+        + _e(short_answer(data)) + "</div>",
+        f'<p class="caution"><strong>Caution.</strong> {_e(data.caution)}</p>',
+        "<nav><ol>"
+        '<li><a href="#goal">Goal and result</a></li>'
+        '<li><a href="#settings">Settings</a></li>'
+        '<li><a href="#tradeoff">Recall against alert load</a></li>'
+        '<li><a href="#multiplier">Fence multiplier</a></li>'
+        '<li><a href="#volume">Alerts per team and week</a></li>'
+        '<li><a href="#delay">Detection delay</a></li>'
+        '<li><a href="#series">Missed incidents and false alerts</a></li>'
+        '<li><a href="#incidents">Every incident</a></li>'
+        "</ol></nav>",
+        '<h2 id="goal">1. Goal and result</h2>',
+        f"<p>Goal: catch at least {_pct(data.goal['target_recall'])} of labelled incidents "
+        f"(miss rate at most {_pct(data.goal['max_miss_rate'])}) while every team stays "
+        f"within its alert budget ({_e(_budgets_text(data.goal))} alerts per analyst per "
+        "day). Intervals are 95% Wilson intervals: with few incidents they are wide.</p>",
+    ]
+    for p in data.periods:
+        cls = "met" if p.goal_met else "notmet"
+        parts.append(
+            f'<p><span class="badge {cls}">{"MET" if p.goal_met else "NOT MET"}</span> '
+            f"<strong>{_e(p.name)}</strong> ({_e(p.start[:10])} to {_e(p.end[:10])}): "
+            f"{_e(p.verdict)}</p>"
+        )
+    if data.holdout_warning:
+        parts.append(f"<p><strong>Held-out check:</strong> {_e(data.holdout_warning)}</p>")
+    if data.reason:
+        parts.append(f"<p><strong>Search:</strong> {_e(data.reason)}</p>")
+    headers, rows = goal_rows(data)
+    parts.append(_table(headers, rows))
+
+    parts.append('<h2 id="settings">2. Settings: current and chosen</h2>')
+    ch = data.changed
+    parts.append("<p>" + (f"{len(ch)} setting(s) changed (highlighted): {_e(', '.join(ch))}."
+                          if ch else "No setting changed.") + "</p>")
+    parts.append(_table(
+        ["setting", "current", "chosen"],
+        [[r.name, _show(r.current), _show(r.chosen)] for r in data.settings],
+        ["changed" if r.changed else "" for r in data.settings],
+    ))
+
+    parts.append('<h2 id="tradeoff">3. Recall against alert load</h2>')
+    t = data.tradeoff
+    what = (f"Each dot is one trial of the search ({len(t.x)} trials); blue ones meet the goal "
+            "on the tuning weeks, grey ones do not. The dark step line joins the best "
+            "trade-offs found." if t.x else
+            "No study trials are attached to this report.")
+    parts.append(img("tradeoff.png", "recall against alerts per analyst per day",
+                     f"{what} The dotted line shows the chosen settings at other fence "
+                     "multipliers; the star is the chosen point; the dashed lines are the "
+                     "alert budget and the recall target. Up and to the left is better."))
+
+    parts.append('<h2 id="multiplier">4. Moving the fence multiplier</h2>')
+    parts.append(img("multiplier.png", "recall and alert load against fence multiplier",
+                     f"Tuning weeks ({p0.start[:10]} to {p0.end[:10]}). A larger multiplier "
+                     "widens the fences: fewer alerts, and eventually missed incidents. The "
+                     "red line is the chosen multiplier. Every other setting is held at its "
+                     "chosen value (per-group multipliers are replaced by the one on the "
+                     "axis)."))
+
+    parts.append('<h2 id="volume">5. Alerts per team and week</h2>')
+    parts.append(img("volume.png", "alerts per analyst per day per team and week",
+                     "Bars: alerts per analyst per day in each ISO week (partial weeks are "
+                     "rated by the days they have). Dashed lines: each team's budget."))
+    v = data.volume
+    vrows, vcls = [], []
+    for r in v.table:
+        over = bool(r.get("over_budget"))
+        vrows.append([r["team"], r["week"], f"{r['days']:.2g}", r["alerts"], r["analysts"],
+                      _num(r["alerts_per_analyst_day"]), _show(r.get("budget", "")),
+                      "yes" if over else ""])
+        vcls.append("bad" if over else "")
+    parts.append(_table(["team", "week", "days", "alerts", "analysts",
+                         "per analyst per day", "budget", "over budget"], vrows, vcls))
+
+    parts.append('<h2 id="delay">6. Detection delay</h2>')
+    parts.append(img("delay.png", "histogram of detection delays",
+                     f"Hours from the labelled start of each caught incident to the first "
+                     f"alert that met it ({len(data.delays)} caught incidents, every scored "
+                     "period). Negative values: the alert started inside the early "
+                     "tolerance."))
+
+    parts.append('<h2 id="series">7. Missed incidents and the worst false alerts</h2>')
+    n_missed = sum(1 for p in data.panels if p.kind == "missed incident")
+    parts.append(
+        f"<p>{n_missed + data.panels_left_out} missed incident(s)"
+        + (f" ({data.panels_left_out} not drawn, see the table)" if data.panels_left_out else "")
+        + f" and the {sum(1 for p in data.panels if p.kind == 'false alerts')} series with "
+        "the most false alerts. Black: value; dashed: expected value; blue band: the "
+        "fences (Q1 - k*IQR to Q3 + k*IQR of the remainder, drawn around the expected "
+        "value); green: labelled incident window; red marks at the bottom: alerts raised.</p>"
+    )
+    for i, panel in enumerate(data.panels):
+        parts.append(img(_panel_file(i, panel), panel.title, panel.note))
+
+    parts.append('<h2 id="incidents">8. Every incident</h2>')
+    irows, icls = [], []
+    for r in data.incidents:
+        irows.append([r["period"], r["incident_id"], r["level"], r["series_label"],
+                      r["metric"], r.get("team", ""), str(r.get("start", ""))[:16],
+                      str(r.get("end", ""))[:16], "caught" if r["caught"] else "MISSED",
+                      _hours(r.get("delay_hours"))])
+        icls.append("" if r["caught"] else "bad")
+    parts.append(_table(["period", "incident", "level", "series", "metric", "team", "start",
+                         "end", "result", "delay"], irows, icls))
+    if data.provenance:
+        parts.append("<h2>Where these settings come from</h2>")
+        parts.append(_table(["item", "value"], [[k, _show(v)] for k, v in
+                                                 sorted(data.provenance.items())]))
+    parts.append("</body></html>")
+    return "\n".join(parts)
+
+
+def short_answer(data: ReportData) -> str:
+    """One or two plain sentences: is the goal met, where, and what changed."""
+    bits = []
+    for p in data.periods:
+        f = p.figures
+        bits.append(f"{p.name}: {'goal met' if p.goal_met else 'goal NOT met'} "
+                    f"({f['caught']} of {f['incidents']} incidents caught, {f['alerts']} alerts)")
+    ch = data.changed
+    changed = (f"{len(ch)} setting(s) differ from today's: {', '.join(ch)}" if ch
+               else "the settings equal today's")
+    return "; ".join(bits) + f". {changed[0].upper() + changed[1:]}."
+
+
+def render_markdown(data: ReportData) -> str:
+    """The same content as Markdown, images referenced as files beside it."""
+    lines = [f"# {data.title}", "", f"Generated {data.generated} from `{data.workspace}`"
+             + (f" ({data.source})" if data.source else "") + ".", "",
+             f"**In short:** {short_answer(data)}", "", f"> **Caution.** {data.caution}", "",
+             "## 1. Goal and result", ""]
+    for p in data.periods:
+        lines.append(f"- **{p.name}** ({p.start[:10]} to {p.end[:10]}): {p.verdict}")
+    if data.holdout_warning:
+        lines.append(f"- Held-out check: {data.holdout_warning}")
+    if data.reason:
+        lines.append(f"- Search: {data.reason}")
+    lines.append("")
+    headers, rows = goal_rows(data)
+    lines += _md_table(headers, rows)
+    lines += ["", "## 2. Settings: current and chosen", ""]
+    lines += _md_table(["setting", "current", "chosen", "changed"],
+                       [[r.name, _show(r.current), _show(r.chosen), "**yes**" if r.changed
+                         else ""] for r in data.settings])
+    lines += ["", "## 3. Recall against alert load", "", "![trade-off](tradeoff.png)", "",
+              "## 4. Moving the fence multiplier", "", "![multiplier](multiplier.png)", "",
+              "## 5. Alerts per team and week", "", "![volume](volume.png)", ""]
+    lines += _md_table(["team", "week", "alerts", "per analyst per day", "budget", "over"],
+                       [[r["team"], r["week"], r["alerts"], _num(r["alerts_per_analyst_day"]),
+                         _show(r.get("budget", "")), "yes" if r.get("over_budget") else ""]
+                        for r in data.volume.table])
+    lines += ["", "## 6. Detection delay", "", "![delay](delay.png)", "",
+              "## 7. Missed incidents and the worst false alerts", ""]
+    for i, panel in enumerate(data.panels):
+        lines += [f"### {panel.title}", "", f"![{panel.kind}]({_panel_file(i, panel)})", ""]
+        if panel.note:
+            lines += [panel.note, ""]
+    lines += ["## 8. Every incident", ""]
+    lines += _md_table(["period", "incident", "series", "metric", "team", "start", "result",
+                        "delay"],
+                       [[r["period"], r["incident_id"], f"{r['level']} {r['series_label']}",
+                         r["metric"], r.get("team", ""), str(r.get("start", ""))[:16],
+                         "caught" if r["caught"] else "**MISSED**",
+                         _hours(r.get("delay_hours"))] for r in data.incidents])
+    return "\n".join(lines) + "\n"
+
+
+def _md_table(headers: Sequence[str], rows: Sequence[Sequence[Any]]) -> list[str]:
+    def cell(x: Any) -> str:
+        return str(x).replace("|", "\\|")
+
+    out = ["| " + " | ".join(cell(h) for h in headers) + " |",
+           "|" + "---|" * len(headers)]
+    out += ["| " + " | ".join(cell(c) for c in r) + " |" for r in rows]
+    return out
+
+
+# --------------------------------------------------------------------------- write
+
+
+def write_report_data(data: ReportData, out_dir: str | Path, force: bool = True,
+                      extra: Mapping[str, bytes] | None = None) -> Path:
+    """Render `data` into `out_dir` (built in a temporary folder, then moved in place)."""
+    out = Path(out_dir)
+    if out.exists() and not force:
+        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    if out.exists() and not out.is_dir():
+        raise CalibrationError(f"{out}: exists and is not a folder")
+    images = render_plots(data)
+    files: dict[str, bytes] = dict(images)
+    files["index.html"] = render_html(data, images).encode("utf-8")
+    files["report.md"] = render_markdown(data).encode("utf-8")
+    files["summary.json"] = json.dumps(summary_dict(data), indent=2,
+                                       default=_plain).encode("utf-8")
+    files.update(extra or {})
+    return write_report_data_files(files, out, force=True)
+
+
+def write_report_data_files(files: Mapping[str, bytes], out_dir: str | Path,
+                            force: bool = False) -> Path:
+    """Write `files` into a new folder beside `out_dir`, then move it into place."""
+    out = Path(out_dir)
+    if out.exists() and not force:
+        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent))
+    try:
+        for name, content in files.items():
+            (tmp / name).write_bytes(content)
+        if out.exists():
+            old = out.with_name(f".{out.name}.old-{os.getpid()}")
+            os.replace(out, old)
+            os.replace(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+    return out
+
+
+def _review_csv(result: ReplayResult) -> bytes:
+    from calibrate.review import review_frame
+
+    return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
+
+
+def write_config_report(
+    ses: api.Session,
+    config: DetectorConfig,
+    out_dir: str | Path,
+    current: DetectorConfig | None = None,
+    split_hour: int | None = None,
+    *,
+    force: bool = True,
+    source: str = "",
+    progress: bool = False,
+    **replay_kwargs: Any,
+) -> ReportData:
+    """Replay `config` (and the current settings) and write its report to `out_dir`."""
+    current = current or ses.ws.detector
+    rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
+    try:
+        chosen = rp.replay(config)
+        cur = rp.replay(current)
+    finally:
+        rp.close()
+    first = max(api.first_scored_hour(config, ses.ws), api.first_scored_hour(current, ses.ws))
+    data = build_report_data(ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
+                             title="Calibration report", source=source)
+    write_report_data(data, out_dir, force=force,
+                      extra={"alerts-for-review.csv": _review_csv(chosen)})
+    return data
+
+
+def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: bool = True,
+                 progress: bool = False, **replay_kwargs: Any) -> ReportData:
+    """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`."""
+    rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
+    try:
+        chosen = rp.replay(result.config)
+        cur = rp.replay(result.current)
+    finally:
+        rp.close()
+    prov = dict(getattr(result, "provenance", {}) or {})
+    prov.setdefault("study_name", getattr(result, "study_name", None))
+    prov.setdefault("storage", getattr(result, "storage", None))
+    prov = {k: v for k, v in prov.items() if v is not None}
+    data = build_report_data(
+        ses, chosen, current=cur, first_hour=result.first_hour, split_hour=result.split_hour,
+        trials=result.trials, feasible=result.feasible, reason=result.reason or "",
+        holdout_warning=result.holdout_warning or "", provenance=prov,
+        title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
+    )
+    write_report_data(data, out_dir, force=force,
+                      extra={"alerts-for-review.csv": _review_csv(chosen)})
+    return data
+
+
+def cli_report(args: Any) -> int:
+    """`calibrate report WORKSPACE --config C --out DIR`."""
+    from calibrate.outputs import load_config, load_provenance
+
+    out = Path(args.out)
+    if out.exists() and not getattr(args, "force", False):
+        raise CalibrationError(f"{out}: already exists; choose a new report folder")
+    ses = api.open_session(args.workspace)
+    if ses.incidents is None:
+        raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
+    config = load_config(args.config)
+    split = load_provenance(args.config).get("split_hour")
+    write_config_report(
+        ses, config, out, split_hour=int(split) if isinstance(split, int) else None,
+        force=True, source=f"config {args.config}", engine=args.engine, workers=args.workers,
+        scheduler=args.scheduler,
+    )
+    print(f"report written to {out / 'index.html'}")
+    return 0
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _iso(hours: pd.DatetimeIndex, t: int) -> str:
+    if t >= len(hours):
+        ts = hours[-1] + pd.Timedelta(hours=t - len(hours) + 1)
+    else:
+        ts = hours[t]
+    return pd.Timestamp(ts).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _pct(x: Any) -> str:
+    return "n/a" if x is None or x != x else f"{100 * float(x):.1f}%"
+
+
+def _hours(x: Any) -> str:
+    return "" if x is None or x != x else f"{float(x):.0f} h"
+
+
+def _num(x: Any) -> str:
+    return "n/a" if x is None or x != x else f"{float(x):.2f}"
+
+
+def _show(v: Any) -> str:
+    if isinstance(v, float):
+        return "none" if math.isinf(v) else f"{v:.4g}"
+    if isinstance(v, list):
+        return ", ".join(str(x) for x in v) or "(all)"
+    return str(v)
+
+
+def _budgets_text(goal: Mapping[str, Any]) -> str:
+    b = goal["max_alerts_per_analyst_day"]
+    vals = {v for v in b.values()}
+    if len(vals) == 1:
+        v = next(iter(vals))
+        return "no limit" if v is None else f"{v:g}"
+    return ", ".join(f"{t} {'no limit' if v is None else f'{v:g}'}" for t, v in b.items())
+
+
+def _finite(x: float) -> float | None:
+    return float(x) if x is not None and math.isfinite(x) else None
+
+
+def _floats(a: Any) -> list[float]:
+    return [float(v) for v in np.asarray(a, dtype=float)]
+
+
+def _plain(v: Any) -> Any:
+    if isinstance(v, np.generic):
+        v = v.item()
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    if isinstance(v, pd.Timestamp):
+        return v.strftime("%Y-%m-%dT%H:%M:%SZ")
+    return v

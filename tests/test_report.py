@@ -1,0 +1,202 @@
+"""The calibration report: content equals the scoring functions, files are self-contained."""
+
+from __future__ import annotations
+
+import base64
+import io
+import json
+from html.parser import HTMLParser
+from pathlib import Path
+from types import SimpleNamespace
+
+import matplotlib.image
+import numpy as np
+import pandas as pd
+import pytest
+
+from calibrate import api
+from calibrate.errors import CalibrationError
+from calibrate.executors import SerialExecutor
+from calibrate.report import (
+    build_report_data,
+    goal_verdict,
+    pareto_front,
+    write_config_report,
+    write_report,
+)
+from calibrate.review import review_frame
+from tests.synthetic import make_workspace
+
+SPLIT = 600
+PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
+
+
+@pytest.fixture(scope="module")
+def ses(tmp_path_factory: pytest.TempPathFactory) -> api.Session:
+    return api.open_session(make_workspace(tmp_path_factory.mktemp("ws")))
+
+
+@pytest.fixture(scope="module")
+def chosen_config(ses: api.Session):
+    return ses.ws.detector.with_base(fence_multiplier=2.5, fence_window_hours=48)
+
+
+@pytest.fixture(scope="module")
+def config_report(ses, chosen_config, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("rep") / "report"
+    write_config_report(ses, chosen_config, out, split_hour=SPLIT, executor=SerialExecutor())
+    return out
+
+
+class _Collect(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.imgs: list[str] = []
+        self.links: list[str] = []
+        self.tags: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        self.tags.append(tag)
+        if tag == "img":
+            self.imgs.append(a.get("src") or "")
+        for key in ("href", "src"):
+            if key in a and tag != "img":
+                self.links.append(a[key] or "")
+
+
+def _decode_png(raw: bytes) -> np.ndarray:
+    assert raw.startswith(PNG_MAGIC)
+    img = matplotlib.image.imread(io.BytesIO(raw), format="png")
+    assert img.shape[0] > 50 and img.shape[1] > 50
+    assert float(img[..., :3].std()) > 0.01  # not a blank canvas
+    return img
+
+
+def _replay(ses, config):
+    return api.replay_session(ses, config, executor=SerialExecutor(), progress=False)
+
+
+def test_html_parses_and_every_image_is_embedded(config_report: Path) -> None:
+    text = (config_report / "index.html").read_text(encoding="utf-8")
+    p = _Collect()
+    p.feed(text)
+    p.close()
+    assert "table" in p.tags and "h2" in p.tags
+    assert len(p.imgs) >= 7  # 4 summary plots + 3 false-alert series
+    for src in p.imgs:
+        assert src.startswith("data:image/png;base64,"), src[:40]
+        _decode_png(base64.b64decode(src.split(",", 1)[1], validate=True))
+    # nothing to fetch: only in-page anchors
+    assert all(link.startswith("#") for link in p.links), p.links
+    assert "<script" not in text and "@import" not in text and "url(" not in text
+    assert "@media print" in text
+    assert "only as good as the incident labels" in text
+
+
+def test_markdown_images_are_files_beside_it(config_report: Path) -> None:
+    md = (config_report / "report.md").read_text(encoding="utf-8")
+    names = [line.split("](")[1].rstrip(")") for line in md.splitlines()
+             if line.startswith("![")]
+    assert {"tradeoff.png", "multiplier.png", "volume.png", "delay.png"} <= set(names)
+    for name in names:
+        _decode_png((config_report / name).read_bytes())
+
+
+def test_summary_equals_scoring_output(ses, chosen_config, config_report: Path) -> None:
+    summary = json.loads((config_report / "summary.json").read_text(encoding="utf-8"))
+    first = summary["periods"][0]["start_hour"]
+    assert first == max(api.first_scored_hour(chosen_config, ses.ws),
+                        api.first_scored_hour(ses.ws.detector, ses.ws))
+    assert [p["end_hour"] for p in summary["periods"]] == [SPLIT, ses.history.n_hours]
+    eps = _replay(ses, chosen_config).episodes
+    for name, a, b in (("tuning", first, SPLIT), ("holdout", SPLIT, ses.history.n_hours)):
+        ref = api.score_episodes(ses, eps, a, b).to_json_dict()
+        assert summary[name] == json.loads(json.dumps(ref, default=str))
+    cur = api.score_episodes(ses, _replay(ses, ses.ws.detector).episodes, first, SPLIT)
+    assert summary["tuning_current"]["alerts"] == cur.alerts
+    assert set(summary["settings"]["changed"]) == {"fence_multiplier", "fence_window_hours"}
+    vol = api.alert_volume(ses, eps, first, ses.history.n_hours)
+    assert [r["alerts"] for r in summary["volume"]] == vol["alerts"].tolist()
+
+
+def test_multiplier_curve_agrees_with_figures_at_the_chosen_k(ses, chosen_config) -> None:
+    rep = _replay(ses, chosen_config)
+    data = build_report_data(ses, rep, first_hour=200, split_hour=SPLIT)
+    j = data.curve.ks.index(chosen_config.base.fence_multiplier)
+    tuning = data.periods[0].figures
+    assert data.curve.recall[j] == pytest.approx(tuning["recall"])
+    assert data.curve.alerts[j] == tuning["alerts"]
+    # raising k never adds alerts
+    assert all(np.diff(data.curve.alerts) <= 0)
+
+
+def test_missed_incident_gets_a_panel_with_its_window(ses) -> None:
+    # a wide fence misses the subtle incident I5 (and maybe others)
+    rep = _replay(ses, ses.ws.detector.with_base(fence_multiplier=8.0))
+    data = build_report_data(ses, rep, split_hour=SPLIT)
+    missed = {r["incident_id"] for r in data.incidents if not r["caught"]}
+    assert "I5" in missed
+    titles = [p.title for p in data.panels if p.kind == "missed incident"]
+    assert len(titles) == len(missed)
+    panel = next(p for p in data.panels if "I5" in p.title)
+    assert panel.incident_spans == [("2026-02-06T12:00:00Z", "2026-02-06T16:00:00Z")]
+    hi = np.nanmax(np.asarray(panel.upper) - np.asarray(panel.lower))
+    assert hi > 0 and len(panel.value) == len(panel.times)
+
+
+def test_report_from_a_tune_result(ses, chosen_config, tmp_path: Path) -> None:
+    trials = pd.DataFrame({
+        "number": [0, 1, 2, 3], "state": ["COMPLETE"] * 3 + ["FAIL"],
+        "k": [1.0, 2.0, 3.0, 4.0], "miss_rate": [0.0, 0.2, 0.6, 0.0], "alerts": [90, 40, 10, 5],
+        "alerts_per_analyst_day[blue]": [3.5, 1.5, 0.4, 0.1],
+        "alerts_per_analyst_day[green]": [4.0, 1.0, 0.2, 0.1],
+        "feasible": [False, True, False, True],
+    })
+    result = SimpleNamespace(
+        config=chosen_config, current=ses.ws.detector, feasible=True, reason="k=2.5: met",
+        split_hour=SPLIT, first_hour=167, holdout_warning="", trials=trials,
+        pareto=trials.iloc[[1, 2]], study_name="s1", storage="mem", provenance={"seed": 0},
+    )
+    out = tmp_path / "tuned-report"
+    data = write_report(ses, result, out, executor=SerialExecutor())
+    t = data.tradeoff
+    assert t.x == [4.0, 1.5, 0.4] and t.y == pytest.approx([1.0, 0.8, 0.4])
+    assert t.feasible == [False, True, False] and t.pareto == [True, True, True]
+    assert t.budget == 3.0
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert summary["feasible"] is True and summary["provenance"]["study_name"] == "s1"
+    assert (out / "alerts-for-review.csv").is_file()
+
+
+def test_pareto_front_and_goal_verdict() -> None:
+    assert pareto_front([1, 2, 2, 3], [0.5, 0.9, 0.8, 0.9]) == [True, True, False, False]
+    figs = {"incidents": 4, "caught": 3, "miss_rate": 0.25, "miss_rate_low": 0.05,
+            "miss_rate_high": 0.7, "per_team": {"a": {"alerts_per_analyst_day": 2.0,
+                                                      "budget": 3.0}}}
+    met, text = goal_verdict(figs, 0.25, {"a": 1})
+    assert met and text.startswith("Met") and "could be luck" in text
+    figs["per_team"]["a"]["alerts_per_analyst_day"] = 3.5
+    met, text = goal_verdict(figs, 0.25, {"a": 1})
+    assert not met and "a 3.50 > 3" in text
+
+
+def test_cli_report_refuses_an_existing_folder(ses, tmp_path: Path) -> None:
+    from calibrate.report import cli_report
+
+    (tmp_path / "old").mkdir()
+    args = SimpleNamespace(workspace=str(ses.ws.file), config=str(ses.ws.file),
+                           out=str(tmp_path / "old"), engine="serial", workers=None,
+                           scheduler=None)
+    with pytest.raises(CalibrationError, match="already exists"):
+        cli_report(args)
+
+
+def test_review_frame_sorted_with_blank_verdicts(ses) -> None:
+    alerts = _replay(ses, ses.ws.detector).alerts_frame()
+    rf = review_frame(alerts)
+    assert len(rf) == len(alerts) and set(rf["alert_id"]) == set(alerts["alert_id"])
+    assert (rf["verdict"] == "").all() and (rf["comment"] == "").all()
+    keys = list(zip(rf["team"], rf["start"], strict=True))
+    assert keys == sorted(keys)
+    assert list(rf.columns[-2:]) == ["verdict", "comment"]
