@@ -1,0 +1,1021 @@
+"""Constrained search for detector settings (pipeline stage 7, `calibrate tune`).
+
+Optuna drives the structural settings (windows, spans, flatline hours, minimum
+impact, ...); the fence multiplier is never searched. For each trial the
+`Replayer` computes fence scores (cached remainder streams: only settings that
+change the decomposition refit), `sweep` turns them into the episodes of a whole
+multiplier grid at once, `multiplier_curve` scores every grid point on the tuning
+hours, and `solve_multiplier` picks the largest multiplier meeting the miss-rate
+target and every team's alert budget.
+
+Objective (minimised): alerts per analyst per day over all teams at the solved
+multiplier, i.e. ``(alerts + KNOWN_FALSE_PENALTY * known_false_alerts) /
+(analysts * days)`` on the tuning hours, where ``known_false_alerts`` are alerts
+overlapping a window analysts marked as a false alarm (``known_false``), so each
+of those counts ``1 + KNOWN_FALSE_PENALTY`` times. With no analysts configured the
+denominator is days. Constraints (Optuna's ``constraints_func``, feasible when all
+are <= 0): ``miss_rate - max_miss_rate`` and ``max over teams of
+(alerts_per_analyst_day / budget) - 1``. Infeasible trials are kept.
+
+Parameter groups (``[search] tune_by = "level"`` or ``"metric"``): every searched
+setting gets one Optuna parameter per group (``"campaign/fence_window_hours"``),
+all in one study. The groups' multipliers are then solved jointly by a greedy
+method over the groups' curves: start every group at the smallest multiplier of
+the grid (most catches); repeatedly take the single move "raise group g's
+multiplier to grid point j" that keeps the joint miss rate within the target and
+saves the most alerts per incident it loses (moves that lose nothing first,
+largest saving first); stop when no move saves alerts. Team budgets, which span
+groups, are checked on the joint result. The joint miss rate counts an incident as
+caught when any group's alerts catch it.
+
+Holdout: the last ``holdout_fraction`` of the history, rounded to whole weeks, is
+held out; objective and constraints use only ``[first_hour, split_hour)``, where
+``first_hour`` is the longest candidate decomposition window minus one, so every
+trial is scored on the same hours. Replays run over the whole history; with no
+look-ahead, hours before the split never see later data.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import importlib.metadata
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field, replace
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import optuna
+import pandas as pd
+from tqdm.auto import tqdm
+
+from calibrate import api
+from calibrate.api import Session
+from calibrate.errors import CalibrationError, InputError
+from calibrate.executors import Executor
+from calibrate.incidents import Incidents
+from calibrate.replay import MetricScores, Replayer, sweep
+from calibrate.scoring import (
+    Curve,
+    Figures,
+    _overlap_pairs,
+    multiplier_curve,
+    period_filter,
+    solve_multiplier,
+    wilson,
+)
+from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
+from calibrate.workspace import Goal, SearchParam
+
+GRID_POINTS = 80
+KNOWN_FALSE_PENALTY = 1.0
+WEEK = 168
+STUDY_FILE = ".calibrate/study.journal"
+# states that use up the trial budget; a trial interrupted mid-way ends FAIL and is
+# run again (as a new trial) by the next `tune`, so an interruption loses nothing
+BUDGET_STATES = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNED)
+INVALID = 1e9  # constraint value of a pruned (invalid) combination
+MAX_PRECOMPUTED_WINDOWS = 64
+
+
+# --------------------------------------------------------------------------- space
+
+
+@dataclass(frozen=True, kw_only=True)
+class Param:
+    """One Optuna parameter: a detector setting, optionally of one group."""
+
+    name: str  # Optuna name: "setting" or "group/setting"
+    setting: str
+    group: str | None
+    spec: SearchParam
+
+    def suggest(self, trial: optuna.Trial) -> Any:
+        s = self.spec
+        if s.kind == "choice":
+            return trial.suggest_categorical(self.name, list(s.values))
+        if s.kind == "int":
+            return trial.suggest_int(self.name, int(s.low), int(s.high), step=int(s.step))
+        return trial.suggest_float(self.name, float(s.low), float(s.high), log=s.log)
+
+
+def default_params(ses: Session, metrics: Sequence[str] | None = None) -> tuple[SearchParam, ...]:
+    """Search space used when `[search]` names no setting.
+
+    Fence window, seasonal span (odd), flatline hours and minimum impact, the
+    last from 0 to the typical hourly level of the smallest watched metric (so the
+    filter never wipes out a whole metric).
+    """
+    scale = typical_level(ses, metrics)
+    return (
+        SearchParam(name="fence_window_hours", kind="choice", values=(72, 120, 168, 240)),
+        SearchParam(name="seasonal_span", kind="choice", values=(7, 11, 15)),
+        SearchParam(name="flatline_hours", kind="choice", values=(0, 6, 10)),
+        SearchParam(name="min_impact", kind="float", low=0.0, high=float(scale)),
+    )
+
+
+def typical_level(ses: Session, metrics: Sequence[str] | None = None) -> float:
+    """Smallest, over metrics, of the median |hourly value| across series and hours."""
+    metrics = list(metrics or ses.ws.metric_names)
+    levels = []
+    for m in metrics:
+        vals = [np.abs(ls.values[m]) for ls in ses.history.levels.values() if m in ls.values]
+        if vals:
+            med = float(np.nanmedian(np.concatenate([v.ravel() for v in vals])))
+            if math.isfinite(med) and med > 0:
+                levels.append(med)
+    return min(levels) if levels else 1.0
+
+
+def _with_current(spec: SearchParam, value: Any) -> SearchParam:
+    """Make sure today's value lies in the space, so the warm start is exact."""
+    if spec.kind == "choice":
+        if any(type(v) is type(value) and v == value for v in spec.values):
+            return spec
+        return replace(spec, values=(*spec.values, value))
+    if spec.kind == "int":
+        low, high, step = int(spec.low), int(spec.high), max(int(spec.step), 1)
+        if spec.name in ("seasonal_span",) or (spec.name == "trend_span" and low > 0):
+            low, step = low | 1, step + step % 2  # odd spans by construction
+            high = high if high % 2 else high - 1
+        if (int(value) - low) % step == 0 and low <= value <= high:
+            return replace(spec, low=low, high=max(high, low), step=step)
+        return replace(spec, kind="choice", values=tuple(
+            sorted({*range(low, high + 1, step), int(value)})))
+    lo, hi = min(float(spec.low), float(value)), max(float(spec.high), float(value))
+    if spec.log and lo <= 0:
+        return replace(spec, low=lo, high=hi, log=False)
+    return replace(spec, low=lo, high=hi)
+
+
+def group_names(ses: Session, tune_by: str) -> list[str]:
+    if tune_by == "level":
+        return list(ses.history.levels)
+    if tune_by == "metric":
+        return list(ses.ws.metric_names)
+    return []
+
+
+def group_config(base: DetectorSettings, tune_by: str, names: Sequence[str],
+                 settings: dict[str, DetectorSettings]) -> DetectorConfig:
+    """A config with one group per level (or metric)."""
+    if tune_by == "all":
+        return DetectorConfig(base=settings[""])
+    groups = tuple(
+        DetectorGroup(
+            name=g,
+            levels=(g,) if tune_by == "level" else (),
+            metrics=(g,) if tune_by == "metric" else (),
+            settings=settings[g],
+        )
+        for g in names
+    )
+    return DetectorConfig(base=base, groups=groups)
+
+
+def build_space(ses: Session) -> list[Param]:
+    """Optuna parameters for the workspace's `[search]` (defaults when empty)."""
+    s = ses.ws.search
+    names = group_names(ses, s.tune_by)
+    current = ses.ws.detector
+    out: list[Param] = []
+    for g in names or [None]:
+        metrics = [g] if s.tune_by == "metric" and g else None
+        specs = s.params or default_params(ses, metrics)
+        cur = _settings_of(current, s.tune_by, g, ses)
+        for spec in specs:
+            if spec.name == "fence_multiplier":
+                continue
+            spec = _with_current(spec, getattr(cur, spec.name))
+            name = spec.name if g is None else f"{g}/{spec.name}"
+            out.append(Param(name=name, setting=spec.name, group=g, spec=spec))
+    return out
+
+
+def _settings_of(config: DetectorConfig, tune_by: str, group: str | None,
+                 ses: Session) -> DetectorSettings:
+    if group is None:
+        return config.base
+    if tune_by == "level":
+        return config.for_series(group, ses.ws.metric_names[0])
+    return config.for_series(next(iter(ses.history.levels)), group)
+
+
+def candidate_values(space: list[Param], setting: str, current: Sequence[Any]) -> list[Any] | None:
+    """Every value `setting` can take in the space (None when a float/large range)."""
+    vals = set(current)
+    for p in space:
+        if p.setting != setting:
+            continue
+        s = p.spec
+        if s.kind == "choice":
+            vals |= set(s.values)
+        elif s.kind == "int" and (s.high - s.low) / max(s.step, 1) < MAX_PRECOMPUTED_WINDOWS:
+            vals |= set(range(int(s.low), int(s.high) + 1, int(s.step)))
+        else:
+            return None
+    return sorted(vals)
+
+
+def params_of(config: DetectorConfig, space: list[Param], ses: Session) -> dict[str, Any]:
+    """Optuna parameter values that reproduce `config` (for `enqueue_trial`)."""
+    tune_by = ses.ws.search.tune_by
+    return {
+        p.name: getattr(_settings_of(config, tune_by, p.group, ses), p.setting) for p in space
+    }
+
+
+def holdout_split(n_hours: int, first_hour: int, fraction: float) -> int:
+    """First held-out hour: the last `fraction` of the history in whole weeks.
+
+    At least one week is held out when the fraction asks for any, as long as a
+    week of tuning hours remains after `first_hour`.
+    """
+    if fraction <= 0:
+        return n_hours
+    weeks = max(int(round(n_hours * fraction / WEEK)), 1)
+    while weeks > 0 and n_hours - weeks * WEEK - first_hour < WEEK:
+        weeks -= 1
+    return n_hours - weeks * WEEK
+
+
+# --------------------------------------------------------------------------- evaluate
+
+
+@dataclass
+class Evaluation:
+    """Figures of one structural setting at its solved multiplier(s), tuning hours."""
+
+    feasible: bool
+    reason: str
+    k: float
+    group_k: dict[str, float]
+    incidents: int
+    caught: int
+    miss_rate: float
+    miss_rate_high: float
+    alerts: int
+    known_false_alerts: int
+    team_rate: dict[str, float]
+    max_budget_ratio: float
+    value: float
+    constraints: list[float]
+
+    def attrs(self) -> dict[str, Any]:
+        return {k: _json_safe(v) for k, v in dataclasses.asdict(self).items()}
+
+
+@dataclass
+class Evaluator:
+    """Scores settings on the tuning hours; holds the replayer and its cache."""
+
+    ses: Session
+    replayer: Replayer
+    ks: np.ndarray
+    first_hour: int
+    split_hour: int
+    goal: Goal
+    known_false: Incidents | None = None
+    incidents: Incidents = field(init=False)
+    false_windows: Incidents | None = field(init=False)
+
+    def __post_init__(self) -> None:
+        if self.ses.incidents is None:
+            raise InputError(str(self.ses.ws.file), "no [incidents] path: nothing to tune against")
+        self.incidents = period_filter(self.ses.incidents, self.first_hour, self.split_hour)
+        self.false_windows = None
+        if self.known_false is not None and len(self.known_false):
+            self.false_windows = self.known_false
+
+    @property
+    def n_days(self) -> float:
+        return (self.split_hour - self.first_hour) / 24.0
+
+    def curve(self, scores: dict[tuple[str, str], MetricScores]) -> tuple[Curve, np.ndarray, Any]:
+        """Curve on the tuning hours, known-false alerts per k, and the episodes."""
+        eps = period_filter(sweep(scores, self.ks, self.replayer.routes),
+                            self.first_hour, self.split_hour)
+        ws = self.ses.ws
+        c = multiplier_curve(eps, self.ks, self.incidents, ws.incidents.early_hours,
+                             ws.incidents.late_hours, self.ses.analysts, self.n_days)
+        kf = np.zeros(len(self.ks), dtype=np.int64)
+        if self.false_windows is not None:
+            # alerts meeting a known-false window are that curve's "true alerts"
+            kf = multiplier_curve(eps, self.ks, self.false_windows, 0, 0, self.ses.analysts,
+                                  self.n_days).true_alerts
+        return c, kf, eps
+
+    def evaluate(self, config: DetectorConfig) -> Evaluation:
+        """Solve the multiplier(s) of `config` and return its figures."""
+        scores = self.replayer.scores(config)
+        if not config.groups:
+            c, kf, _ = self.curve(scores)
+            k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
+            j = _fallback_index(c, self.goal) if k is None else int(
+                np.flatnonzero(c.ks == k)[0])
+            return self._figures(
+                feasible=k is not None and self._budget_ratio(c, j) <= 1.0,
+                reason=reason, k=float(c.ks[j]), group_k={}, caught=int(c.caught[j]),
+                alerts=int(c.alerts[j]), kf=int(kf[j]), team_alerts=c.team_alerts[j],
+                teams=c.teams,
+            )
+        return self._evaluate_groups(config, scores)
+
+    def _evaluate_groups(self, config: DetectorConfig,
+                         scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
+        ws = self.ses.ws
+        teams = list(self.ses.analysts)
+        parts = []
+        for g in config.groups:
+            sub = {key: ms for key, ms in scores.items() if g.matches(*key)}
+            c, kf, eps = self.curve(sub)
+            caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
+            pa, pi = _overlap_pairs(eps, self.incidents, ws.incidents.early_hours,
+                                    ws.incidents.late_hours)
+            caught[np.asarray(eps.grid, dtype=np.int64)[pa], pi] = True
+            for t in c.teams:
+                if t not in teams:
+                    teams.append(t)
+            parts.append((g, c, kf, caught))
+        n_k, n_t = len(self.ks), len(teams)
+        team_alerts = []
+        for _, c, _, _ in parts:
+            ta = np.zeros((n_k, n_t), dtype=np.int64)
+            for j, t in enumerate(c.teams):
+                ta[:, teams.index(t)] = c.team_alerts[:, j]
+            team_alerts.append(ta)
+        cost = [c.alerts + KNOWN_FALSE_PENALTY * kf for _, c, kf, _ in parts]
+        idx = greedy_multipliers([p[3] for p in parts], cost, self.goal.max_miss_rate)
+        caught = np.zeros(len(self.incidents), dtype=bool)
+        for (_, _, _, cm), i in zip(parts, idx, strict=True):
+            caught |= cm[i]
+        ta = sum(t[i] for t, i in zip(team_alerts, idx, strict=True))
+        alerts = int(sum(c.alerts[i] for (_, c, _, _), i in zip(parts, idx, strict=True)))
+        kf = int(sum(k[i] for (_, _, k, _), i in zip(parts, idx, strict=True)))
+        group_k = {g.name: float(self.ks[i]) for (g, _, _, _), i in zip(parts, idx, strict=True)}
+        ev = self._figures(feasible=True, reason="", k=float(np.median(list(group_k.values()))),
+                           group_k=group_k, caught=int(caught.sum()), alerts=alerts, kf=kf,
+                           team_alerts=ta, teams=tuple(teams))
+        ev.feasible = all(v <= 0 for v in ev.constraints)
+        ev.reason = _reason(ev, self.goal)
+        return ev
+
+    def _budget_ratio(self, c: Curve, j: int) -> float:
+        return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
+                          self.goal, self.n_days)[1]
+
+    def _figures(self, *, feasible: bool, reason: str, k: float, group_k: dict[str, float],
+                 caught: int, alerts: int, kf: int, team_alerts: np.ndarray,
+                 teams: Sequence[str]) -> Evaluation:
+        n_inc = len(self.incidents)
+        miss = (n_inc - caught) / n_inc if n_inc else 0.0
+        high = float(wilson(n_inc - caught, n_inc)[1]) if n_inc else 0.0
+        rates, ratio = _max_ratio(dict(zip(teams, team_alerts, strict=True)), self.ses.analysts,
+                                  self.goal, self.n_days)
+        total_analysts = sum(self.ses.analysts.values()) or 1
+        value = (alerts + KNOWN_FALSE_PENALTY * kf) / (total_analysts * self.n_days)
+        constraints = [miss - self.goal.max_miss_rate, ratio - 1.0]
+        return Evaluation(
+            feasible=feasible, reason=reason, k=k, group_k=group_k, incidents=n_inc,
+            caught=caught, miss_rate=miss, miss_rate_high=high, alerts=alerts,
+            known_false_alerts=kf, team_rate=rates, max_budget_ratio=ratio, value=value,
+            constraints=constraints,
+        )
+
+
+def _max_ratio(team_alerts: dict[str, Any], analysts: dict[str, int], goal: Goal,
+               n_days: float) -> tuple[dict[str, float], float]:
+    """Alerts per analyst per day of each team with analysts, and the worst budget ratio."""
+    rates, worst = {}, 0.0
+    for t, n in analysts.items():
+        if n <= 0:
+            continue
+        rate = float(team_alerts.get(t, 0)) / (n * n_days)
+        rates[t] = rate
+        b = goal.budget(t)
+        worst = max(worst, rate / b if math.isfinite(b) else 0.0)
+    return rates, worst
+
+
+def _fallback_index(c: Curve, goal: Goal) -> int:
+    """Grid point reported for an infeasible setting: among multipliers meeting the
+    miss rate the one with the lowest worst budget ratio, else the lowest miss rate."""
+    miss = np.where(np.isnan(c.miss_rate), 0.0, c.miss_rate)
+    ok = np.flatnonzero(miss <= goal.max_miss_rate)
+    if len(ok):
+        budget = np.array([goal.budget(t) for t in c.teams])
+        checked = c.analysts > 0
+        load = np.where(checked[None, :], np.nan_to_num(c.alerts_per_analyst_day), 0.0)
+        ratio = np.where(np.isfinite(budget)[None, :], load / budget[None, :], 0.0).max(axis=1)
+        return int(ok[np.lexsort((-c.ks[ok], ratio[ok]))[0]])
+    return int(np.lexsort((-c.ks, miss))[0])
+
+
+def greedy_multipliers(caught: Sequence[np.ndarray], cost: Sequence[np.ndarray],
+                       max_miss_rate: float) -> list[int]:
+    """Joint multiplier grid indices for several groups (method in the module docstring).
+
+    Parameters
+    ----------
+    caught : list of (n_k, n_incidents) bool arrays, one per group
+    cost : list of (n_k,) arrays (alerts, penalised), one per group
+    max_miss_rate : float
+
+    Returns
+    -------
+    list of int
+        Grid index per group.
+    """
+    n_g = len(caught)
+    idx = [0] * n_g
+    n_inc = caught[0].shape[1] if n_g else 0
+
+    def miss(count: np.ndarray | int) -> np.ndarray:
+        return (n_inc - np.asarray(count)) / n_inc if n_inc else np.zeros(np.shape(count))
+
+    while True:
+        rows = [caught[g][idx[g]] for g in range(n_g)]
+        now = np.logical_or.reduce(rows).sum() if n_g else 0
+        if miss(now) > max_miss_rate:
+            return idx
+        best: tuple[float, float, int, int] | None = None
+        for g in range(n_g):
+            others = np.logical_or.reduce([rows[h] for h in range(n_g) if h != g]) \
+                if n_g > 1 else np.zeros(n_inc, dtype=bool)
+            counts = (caught[g] | others[None, :]).sum(axis=1)
+            saving = cost[g][idx[g]] - cost[g]
+            lost = now - counts
+            ok = (np.arange(len(counts)) > idx[g]) & (miss(counts) <= max_miss_rate) & (saving > 0)
+            for j in np.flatnonzero(ok):
+                rate = math.inf if lost[j] <= 0 else saving[j] / lost[j]
+                cand = (rate, float(saving[j]), -g, int(j))
+                if best is None or cand > best:
+                    best = cand
+        if best is None:
+            return idx
+        idx[-best[2]] = best[3]
+
+
+def _reason(ev: Evaluation, goal: Goal) -> str:
+    if ev.feasible:
+        return (f"miss rate {ev.miss_rate:.3f} <= {goal.max_miss_rate:.3f}, every team within "
+                f"its alert budget ({ev.value:.2f} alerts per analyst per day)")
+    if ev.constraints[0] > 0:
+        return (f"miss rate {ev.miss_rate:.3f} is {ev.constraints[0]:.3f} above the target "
+                f"{goal.max_miss_rate:.3f}")
+    return (f"the busiest team gets {ev.max_budget_ratio:.2f} times its alert budget "
+            f"at miss rate {ev.miss_rate:.3f}")
+
+
+# --------------------------------------------------------------------------- result
+
+
+@dataclass
+class TuneResult:
+    """What `tune` found (see the module docstring for the method).
+
+    Attributes
+    ----------
+    config : DetectorConfig
+        The chosen settings (solved multiplier(s) filled in).
+    current : DetectorConfig
+        The workspace's `[detector]` settings.
+    feasible : bool
+    reason : str
+        One line: the goal is met, or which constraint cannot be met and by how much.
+    split_hour, first_hour : int
+        First held-out hour; first scored hour.
+    tuning, holdout : Figures
+        Figures of `config` on ``[first_hour, split_hour)`` and ``[split_hour, n_hours)``.
+    holdout_warning : str
+        Set when held-out recall is below the target beyond its Wilson interval.
+    trials : DataFrame
+        One row per finished trial.
+    pareto : DataFrame
+        Completed trials no other beats on both recall and worst team load.
+    study_name, storage : str
+    provenance : dict
+    """
+
+    config: DetectorConfig
+    current: DetectorConfig
+    feasible: bool
+    reason: str
+    split_hour: int
+    first_hour: int
+    tuning: Figures
+    holdout: Figures | None
+    holdout_warning: str
+    trials: pd.DataFrame
+    pareto: pd.DataFrame
+    study_name: str
+    storage: str
+    provenance: dict[str, Any]
+
+
+def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> str:
+    """Name derived from history, incidents, search space, current settings and goal."""
+    h = hashlib.sha256()
+    h.update(ses.history.source_hash.encode())
+    h.update(str(ses.history.n_hours).encode())
+    for inc in (ses.incidents, known_false):
+        if inc is None:
+            h.update(b"none")
+            continue
+        for col in ("level", "series", "metric", "start", "end"):
+            h.update(repr(np.asarray(getattr(inc, col)).tolist()).encode())
+    h.update(repr(ses.ws.search).encode())
+    h.update(repr(ses.ws.detector).encode())
+    h.update(repr(goal).encode())
+    h.update(repr(sorted(ses.analysts.items())).encode())
+    h.update(repr(ses.ws.metric_names).encode())
+    return f"tune-{h.hexdigest()[:16]}"
+
+
+def open_storage(ses: Session, storage: str | None) -> tuple[Any, str]:
+    """Optuna storage object and how to name it (URL, or journal file path)."""
+    if storage and "://" in storage:
+        return storage, storage
+    path = Path(storage) if storage else ses.ws.root / STUDY_FILE
+    path = path.expanduser().resolve()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    backend = optuna.storages.journal.JournalFileBackend(str(path))
+    return optuna.storages.JournalStorage(backend), str(path)
+
+
+def _constraints(trial: optuna.trial.FrozenTrial) -> Sequence[float]:
+    return trial.user_attrs.get("constraints", [INVALID, INVALID])
+
+
+# Optuna 5 deprecates `constraints_func` in favour of `Trial.set_constraint`; both
+# give the sampler and `best_trial` the same feasibility rule (all values <= 0)
+SET_CONSTRAINT = hasattr(optuna.trial.Trial, "set_constraint")
+CONSTRAINT_NAMES = ("miss_rate", "budget")
+
+
+def _record_constraints(trial: optuna.Trial, values: Sequence[float]) -> None:
+    trial.set_user_attr("constraints", [float(v) for v in values])
+    if SET_CONSTRAINT:
+        for key, v in zip(CONSTRAINT_NAMES, values, strict=True):
+            trial.set_constraint(key, float(v))
+
+
+def tune(
+    ses: Session,
+    *,
+    trials: int | None = None,
+    storage: str | None = None,
+    study_name: str | None = None,
+    goal: Goal | None = None,
+    warm_start: Sequence[DetectorConfig] = (),
+    known_false: Incidents | None = None,
+    executor: Executor | None = None,
+    engine: str = "local",
+    workers: int | None = None,
+    scheduler: str | None = None,
+    progress: bool = True,
+) -> TuneResult:
+    """Search the detector settings with the least alerts meeting the goal.
+
+    Parameters
+    ----------
+    ses : Session
+        With incidents loaded.
+    trials : int, optional
+        Trial budget of the whole study (default ``[search] trials``); only the
+        trials still missing are run, so an interrupted run continues.
+    storage : str, optional
+        Optuna storage URL, or a journal file path (default
+        ``.calibrate/study.journal`` in the workspace folder).
+    study_name : str, optional
+        Default: derived from the inputs, so the same inputs continue one study.
+    goal : Goal, optional
+        Overrides the workspace's `[goal]`.
+    warm_start : sequence of DetectorConfig
+        Enqueued after the workspace's current `[detector]` settings.
+    known_false : Incidents, optional
+        Windows analysts marked as false alarms; alerts meeting them are penalised.
+    executor, engine, workers, scheduler
+        Where decompositions run (see `api.make_replayer`).
+    progress : bool
+        Progress bar over trials.
+    """
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    ws = ses.ws
+    goal = goal or ws.goal
+    budget = int(trials if trials is not None else ws.search.trials)
+    if budget < 1:
+        raise InputError("--trials", f"must be at least 1, but got {budget}")
+    if ses.incidents is None:
+        raise InputError(str(ws.file), "no [incidents] path: nothing to tune against")
+    space = build_space(ses)
+    current = ws.detector
+    starts = [current, *warm_start]
+    windows_l = candidate_values(space, "decomposition_window_hours",
+                                 [c.base.decomposition_window_hours for c in starts]
+                                 + [g.settings.decomposition_window_hours
+                                    for c in starts for g in c.groups])
+    if windows_l is None:
+        windows_l = [max(int(p.spec.high) for p in space
+                         if p.setting == "decomposition_window_hours")]
+    first_hour = max(windows_l) - 1
+    n = ses.history.n_hours
+    split = holdout_split(n, first_hour, ws.search.holdout_fraction)
+    if split - first_hour < 24:
+        raise CalibrationError(
+            f"{ws.file}: the history ({n} hours) is too short to tune: the longest "
+            f"decomposition window needs {first_hour + 1} hours before the first scored hour")
+    fence_w = candidate_values(space, "fence_window_hours",
+                               [c.base.fence_window_hours for c in starts]) or ()
+    lo, hi = ws.search.multiplier_low, ws.search.multiplier_high
+    ks = np.geomspace(lo, hi, GRID_POINTS)
+    extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
+    ks = np.unique(np.r_[ks, extra])
+
+    name = study_name or study_name_for(ses, goal, known_false)
+    store, store_name = open_storage(ses, storage)
+    rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
+                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
+    try:
+        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false)
+        study = _run_study(ses, ev, space, starts, name, store, budget, progress)
+        result = _result(ses, ev, space, study, name, store_name, current, goal)
+    finally:
+        rp.close()
+    return result
+
+
+def _config_from(params: dict[str, Any], space: list[Param], ses: Session,
+                 current: DetectorConfig) -> DetectorConfig:
+    """Config of a trial's parameters; validation errors propagate as InputError."""
+    tune_by = ses.ws.search.tune_by
+    names = group_names(ses, tune_by)
+    out: dict[str, DetectorSettings] = {}
+    for g in names or [""]:
+        cur = _settings_of(current, tune_by, g or None, ses)
+        changes = {p.setting: params[p.name] for p in space if (p.group or "") == g}
+        s = replace(cur, **changes)
+        s.validate(f"trial setting{'' if not g else ' of group ' + g}")
+        out[g] = s
+    return group_config(current.base, tune_by, names, out)
+
+
+def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[DetectorConfig],
+               name: str, store: Any, budget: int, progress: bool) -> optuna.Study:
+    existing = optuna.create_study(storage=store, study_name=name, direction="minimize",
+                                   load_if_exists=True)
+    n_before = len(existing.get_trials(deepcopy=False))
+    seed = ses.ws.search.seed + n_before  # deterministic for one process's runs
+    sampler = optuna.samplers.TPESampler(
+        seed=seed, **({} if SET_CONSTRAINT else {"constraints_func": _constraints}))
+    study = optuna.load_study(study_name=name, storage=store, sampler=sampler)
+    for cfg in starts:
+        study.enqueue_trial(params_of(cfg, space, ses), skip_if_exists=True)
+    done = len(study.get_trials(deepcopy=False, states=BUDGET_STATES))
+    remaining = budget - done
+    if remaining <= 0:
+        return study
+    current = ses.ws.detector
+
+    def objective(trial: optuna.Trial) -> float:
+        params = {p.name: p.suggest(trial) for p in space}
+        try:
+            config = _config_from(params, space, ses, current)
+        except InputError as exc:
+            _record_constraints(trial, [INVALID, INVALID])
+            trial.set_user_attr("invalid", str(exc))
+            raise optuna.TrialPruned(str(exc)) from None
+        e = ev.evaluate(config)
+        for key, val in e.attrs().items():
+            if key != "constraints":
+                trial.set_user_attr(key, val)
+        _record_constraints(trial, e.constraints)
+        return e.value
+
+    bar = tqdm(total=remaining, desc="tune", unit="trial", disable=not progress)
+
+    def show(study: optuna.Study, trial: optuna.trial.FrozenTrial) -> None:
+        bar.update(1)
+        best = _best_feasible(study.get_trials(deepcopy=False, states=BUDGET_STATES))
+        if best is not None:
+            a = best.user_attrs
+            bar.set_postfix(miss=f"{a['miss_rate']:.2f}", per_analyst_day=f"{best.value:.2f}",
+                            k=f"{a['k']:.2f}")
+        else:
+            bar.set_postfix(feasible="none yet")
+
+    try:
+        study.optimize(objective, n_trials=remaining, callbacks=[
+            optuna.study.MaxTrialsCallback(budget, states=BUDGET_STATES), show])
+    finally:
+        bar.close()
+    return study
+
+
+def _is_feasible(t: optuna.trial.FrozenTrial) -> bool:
+    return (t.state == optuna.trial.TrialState.COMPLETE
+            and all(c <= 0 for c in t.user_attrs.get("constraints", [INVALID])))
+
+
+def _best_feasible(trials: Sequence[optuna.trial.FrozenTrial]) -> optuna.trial.FrozenTrial | None:
+    ok = [t for t in trials if _is_feasible(t)]
+    return min(ok, key=lambda t: (t.value, t.number)) if ok else None
+
+
+def _least_infeasible(trials: Sequence[optuna.trial.FrozenTrial]) -> optuna.trial.FrozenTrial:
+    done = [t for t in trials if t.state == optuna.trial.TrialState.COMPLETE]
+    if not done:
+        raise CalibrationError("no trial of the study completed; nothing to choose from")
+    return min(done, key=lambda t: (max(t.user_attrs["constraints"][0], 0.0),
+                                    max(t.user_attrs["constraints"][1], 0.0), t.value))
+
+
+def trials_frame(study: optuna.Study, space: list[Param], teams: Sequence[str]) -> pd.DataFrame:
+    """One row per finished trial (columns listed on `TuneResult`)."""
+    rows = []
+    for t in study.get_trials(deepcopy=False):
+        if not t.state.is_finished():
+            continue
+        a = t.user_attrs
+        row: dict[str, Any] = {"number": t.number, "state": t.state.name}
+        for p in space:
+            row[p.name] = t.params.get(p.name)
+        row["k"] = a.get("k", math.nan)
+        for g, k in (a.get("group_k") or {}).items():
+            row[f"k[{g}]"] = k
+        for key in ("incidents", "caught", "miss_rate", "miss_rate_high", "alerts",
+                    "known_false_alerts"):
+            row[key] = a.get(key, math.nan)
+        rates = a.get("team_rate") or {}
+        for team in teams:
+            row[f"alerts_per_analyst_day[{team}]"] = rates.get(team, math.nan)
+        row["max_budget_ratio"] = a.get("max_budget_ratio", math.nan)
+        row["feasible"] = _is_feasible(t)
+        row["value"] = t.value if t.state == optuna.trial.TrialState.COMPLETE else math.nan
+        row["note"] = a.get("invalid", "")
+        rows.append(row)
+    return pd.DataFrame(rows)
+
+
+def pareto_frame(trials: pd.DataFrame, teams: Sequence[str]) -> pd.DataFrame:
+    """Completed trials not dominated on (recall up, worst team's load down)."""
+    if trials.empty:
+        return trials
+    df = trials[trials["state"] == "COMPLETE"].copy()
+    cols = [f"alerts_per_analyst_day[{t}]" for t in teams]
+    df["recall"] = 1.0 - df["miss_rate"].astype(float)
+    df["max_alerts_per_analyst_day"] = (
+        df[cols].astype(float).max(axis=1) if cols else df["alerts"].astype(float))
+    x = df["max_alerts_per_analyst_day"].to_numpy()
+    y = df["recall"].to_numpy()
+    keep = []
+    for i in range(len(df)):
+        dominated = (x <= x[i]) & (y >= y[i]) & ((x < x[i]) | (y > y[i]))
+        keep.append(not dominated.any())
+    out = df[np.array(keep, dtype=bool)]
+    out = out.drop_duplicates(subset=["recall", "max_alerts_per_analyst_day"])
+    return out.sort_values(["max_alerts_per_analyst_day", "recall"]).reset_index(drop=True)
+
+
+def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
+            store_name: str, current: DetectorConfig, goal: Goal) -> TuneResult:
+    finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
+    best = _best_feasible(finished)
+    chosen = best if best is not None else _least_infeasible(finished)
+    config = _config_from(chosen.params, space, ses, current)
+    a = chosen.user_attrs
+    if config.groups:
+        config = replace(config, groups=tuple(
+            replace(g, settings=replace(g.settings, fence_multiplier=a["group_k"][g.name]))
+            for g in config.groups))
+    else:
+        config = config.with_base(fence_multiplier=a["k"])
+    teams = list(ses.analysts)
+    trials = trials_frame(study, space, teams)
+    pareto = pareto_frame(trials, teams)
+    n = ses.history.n_hours
+    episodes = ev.replayer.replay(config).episodes
+    tuning = api.score_episodes(ses, episodes, ev.first_hour, ev.split_hour)
+    holdout = api.score_episodes(ses, episodes, ev.split_hour, n) if ev.split_hour < n else None
+    feasible = best is not None
+    if feasible:
+        reason = (f"trial {chosen.number} meets the goal on the tuning weeks: miss rate "
+                  f"{a['miss_rate']:.3f} <= {goal.max_miss_rate:.3f}, "
+                  f"{chosen.value:.2f} alerts per analyst per day, every team within budget")
+    else:
+        reason = infeasible_reason(finished, goal)
+    warning = holdout_warning(holdout, goal)
+    prov = provenance(ses, config, name, store_name, goal, tuning, holdout, ev, chosen, feasible,
+                      reason, len(finished))
+    return TuneResult(config=config, current=current, feasible=feasible, reason=reason,
+                      split_hour=ev.split_hour, first_hour=ev.first_hour, tuning=tuning,
+                      holdout=holdout, holdout_warning=warning, trials=trials, pareto=pareto,
+                      study_name=name, storage=store_name, provenance=prov)
+
+
+def infeasible_reason(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal) -> str:
+    """Which constraint no trial meets, and by how much (one line)."""
+    done = [t for t in trials if t.state == optuna.trial.TrialState.COMPLETE]
+    if not done:
+        return "no trial completed"
+    miss_ok = [t for t in done if t.user_attrs["constraints"][0] <= 0]
+    if not miss_ok:
+        b = min(done, key=lambda t: (t.user_attrs["miss_rate"], t.value))
+        return (f"no setting meets max_miss_rate {goal.max_miss_rate:.2f}: best miss rate "
+                f"{b.user_attrs['miss_rate']:.2f} at {b.value:.2f} alerts per analyst per day "
+                f"(trial {b.number})")
+    b = min(miss_ok, key=lambda t: t.user_attrs["max_budget_ratio"])
+    rates = b.user_attrs["team_rate"]
+    worst = max(rates, key=lambda t: rates[t] / goal.budget(t) if goal.budget(t) else 0.0)
+    return (f"no setting meeting max_miss_rate {goal.max_miss_rate:.2f} keeps every team "
+            f"within its alert budget: at best team '{worst}' gets {rates[worst]:.2f} alerts "
+            f"per analyst per day, {rates[worst] - goal.budget(worst):.2f} over its budget "
+            f"{goal.budget(worst):g} (trial {b.number})")
+
+
+def holdout_warning(holdout: Figures | None, goal: Goal) -> str:
+    """Warn when held-out recall's Wilson upper bound is below the target recall."""
+    if holdout is None or holdout.incidents == 0:
+        return ""
+    target = 1.0 - goal.max_miss_rate
+    if holdout.recall_high < target:
+        return (f"held-out recall {holdout.recall:.2f} (95% interval {holdout.recall_low:.2f} "
+                f"to {holdout.recall_high:.2f}) is below the target {target:.2f} beyond its "
+                f"interval: the tuned settings do not hold on the held-out weeks")
+    return ""
+
+
+def _key_figures(f: Figures | None) -> dict[str, Any] | None:
+    if f is None:
+        return None
+    keys = ("incidents", "caught", "miss_rate", "miss_rate_low", "miss_rate_high", "alerts",
+            "false_alerts", "precision", "n_days")
+    out = {k: _json_safe(getattr(f, k)) for k in keys}
+    if "alerts_per_analyst_day" in f.per_team.columns:
+        out["alerts_per_analyst_day"] = {
+            str(t): _json_safe(v) for t, v in f.per_team["alerts_per_analyst_day"].items()}
+    return out
+
+
+def provenance(ses: Session, config: DetectorConfig, name: str, store: str, goal: Goal,
+               tuning: Figures, holdout: Figures | None, ev: Evaluator,
+               chosen: optuna.trial.FrozenTrial, feasible: bool, reason: str,
+               n_trials: int) -> dict[str, Any]:
+    """What the tuned config was derived from (written as `[provenance]`)."""
+    try:
+        version = importlib.metadata.version("calibrate")
+    except importlib.metadata.PackageNotFoundError:
+        version = "unknown"
+    hours = ses.history.hours
+    inc_path = ses.ws.incidents.path
+    inc_hash = (hashlib.sha256(Path(inc_path).read_bytes()).hexdigest()
+                if inc_path is not None and Path(inc_path).is_file() else "")
+    iso = "%Y-%m-%dT%H:%M:%SZ"
+    return {
+        "tool": "calibrate tune",
+        "tool_version": version,
+        "date": datetime.now(UTC).strftime(iso),
+        "workspace": str(ses.ws.file),
+        "history_first_hour": hours[0].strftime(iso),
+        "history_last_hour": hours[-1].strftime(iso),
+        "history_sha256": ses.history.source_hash,
+        "incidents_file": str(inc_path) if inc_path else "",
+        "incidents_sha256": inc_hash,
+        "study_name": name,
+        "storage": store,
+        "trials": n_trials,
+        "chosen_trial": chosen.number,
+        "goal": {"max_miss_rate": goal.max_miss_rate,
+                 "max_alerts_per_analyst_day": goal.max_alerts_per_analyst_day},
+        "feasible": feasible,
+        "reason": reason,
+        "first_hour": ev.first_hour,
+        "split_hour": ev.split_hour,
+        "split_time": hours[ev.split_hour].strftime(iso) if ev.split_hour < len(hours) else "",
+        "fence_multiplier": config.base.fence_multiplier,
+        "group_fence_multipliers": {g.name: g.settings.fence_multiplier
+                                    for g in config.groups} or None,
+        "tuning": _key_figures(tuning),
+        "holdout": _key_figures(holdout),
+    }
+
+
+def _json_safe(v: Any) -> Any:
+    if isinstance(v, dict):
+        return {str(k): _json_safe(x) for k, x in v.items()}
+    if isinstance(v, list | tuple):
+        return [_json_safe(x) for x in v]
+    if isinstance(v, np.generic):
+        v = v.item()
+    if isinstance(v, float) and not math.isfinite(v):
+        return None if math.isnan(v) else (1e300 if v > 0 else -1e300)
+    return v
+
+
+# --------------------------------------------------------------------------- CLI
+
+
+def _pct(x: float | None) -> str:
+    return "n/a" if x is None or x != x else f"{100 * x:.1f}%"
+
+
+def side_by_side(result: TuneResult) -> list[str]:
+    """Tuning and held-out figures side by side, with 95% intervals."""
+    cols = [("tuning weeks", result.tuning), ("held-out weeks", result.holdout)]
+    lines = [f"{'':<28}" + "".join(f"{n:>28}" for n, _ in cols)]
+
+    def cell(f: Figures | None, what: str) -> str:
+        if f is None:
+            return "none held out"
+        if what == "incidents":
+            return f"{f.caught} of {f.incidents} caught"
+        if what == "recall":
+            return f"{_pct(f.recall)} ({_pct(f.recall_low)}-{_pct(f.recall_high)})"
+        if what == "miss":
+            return f"{_pct(f.miss_rate)} ({_pct(f.miss_rate_low)}-{_pct(f.miss_rate_high)})"
+        if what == "alerts":
+            return f"{f.alerts} ({f.false_alerts} false)"
+        if what == "precision":
+            return f"{_pct(f.precision)} ({_pct(f.precision_low)}-{_pct(f.precision_high)})"
+        team = what.split(":", 1)[1]
+        if team in f.per_team.index and "alerts_per_analyst_day" in f.per_team.columns:
+            return f"{f.per_team.loc[team, 'alerts_per_analyst_day']:.2f}"
+        return "n/a"
+
+    rows = [("incidents", "incidents"), ("recall (95% interval)", "recall"),
+            ("miss rate (95% interval)", "miss"), ("alerts", "alerts"),
+            ("precision (95% interval)", "precision")]
+    teams = [t for t, n in sorted(result.tuning.per_team.get("analysts", pd.Series()).items())
+             if n > 0] if "analysts" in result.tuning.per_team.columns else []
+    rows += [(f"{t}: per analyst-day", f"team:{t}") for t in teams]
+    for label, what in rows:
+        lines.append(f"{label:<28}" + "".join(f"{cell(f, what):>28}" for _, f in cols))
+    return lines
+
+
+def pareto_lines(result: TuneResult, limit: int = 10) -> list[str]:
+    """The best trade-offs (Pareto front), one line each."""
+    lines = ["best trade-offs (recall against the busiest team's alerts per analyst per day):"]
+    for row in result.pareto.head(limit).itertuples(index=False):
+        d = row._asdict()
+        lines.append(f"  trial {d['number']}: recall {_pct(d['recall'])}, "
+                     f"{d['max_alerts_per_analyst_day']:.2f} per analyst-day, k={d['k']:.3g}")
+    return lines
+
+
+def cli_tune(args: Any) -> int:
+    """`calibrate tune WORKSPACE --out tuned.toml [--report DIR] [--trials N] ...`.
+
+    Exit 0 with the config written; 2 when no setting meets the goal (nothing
+    written, the best trade-offs printed).
+    """
+    from calibrate.outputs import write_config
+
+    out = Path(args.out)
+    force = bool(getattr(args, "force", False))
+    if out.exists() and not force:
+        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    ses = api.open_session(args.workspace)
+    goal = ses.ws.goal
+    mm = getattr(args, "max_miss_rate", None)
+    mb = getattr(args, "max_alerts_per_analyst_day", None)
+    if mm is not None:
+        if not 0.0 <= mm <= 1.0:
+            raise InputError("--max-miss-rate", f"must be between 0 and 1, but got {mm!r}")
+        goal = replace(goal, max_miss_rate=float(mm))
+    if mb is not None:
+        if not mb > 0:
+            raise InputError("--max-alerts-per-analyst-day", f"must be positive, but got {mb!r}")
+        goal = replace(goal, max_alerts_per_analyst_day=float(mb))
+    result = tune(ses, trials=args.trials, storage=args.storage,
+                  study_name=getattr(args, "study", None), goal=goal,
+                  engine=getattr(args, "engine", "local"), workers=getattr(args, "workers", None),
+                  scheduler=getattr(args, "scheduler", None), progress=True)
+    print(f"study {result.study_name} ({len(result.trials)} trials) in {result.storage}")
+    for line in side_by_side(result):
+        print(line)
+    if result.holdout_warning:
+        print(f"warning: {result.holdout_warning}")
+    if not result.feasible:
+        print(f"no setting meets the goal: {result.reason}")
+        for line in pareto_lines(result):
+            print(line)
+        print(f"nothing written to {out}")
+        return 2
+    print(result.reason)
+    write_config(out, result.config, result.provenance, force=force)
+    print(f"tuned config written to {out}")
+    if getattr(args, "report", None):
+        try:
+            from calibrate.report import write_report
+        except ImportError:
+            print("note: the report module is not available; no report written")
+        else:
+            write_report(ses, result, Path(args.report), engine=args.engine,
+                         workers=args.workers, scheduler=args.scheduler)
+            print(f"report written to {args.report}")
+    return 0

@@ -1,0 +1,144 @@
+"""Benchmark: `search.tune` versus a plain search, same process, same search space.
+
+The plain reference replays every trial from scratch (a new `Replayer` per trial,
+so no cached remainder streams) and searches the fence multiplier as one more
+Optuna parameter (log-uniform over the workspace's multiplier range), scoring each
+trial with `api.score_episodes` on the same tuning hours and with the same
+objective and constraints. Printed: the time ratio and both searches' best
+feasible result (miss rate and alerts per analyst per day). Target: >= 50x faster
+and no worse.
+
+When the plain search is too slow to run all N trials, it runs `--plain-trials`
+of them and its time is extrapolated per trial (said so in the output); its result
+is then that of the trials it ran.
+
+    python tests/benchmarks/bench_search.py [--trials 100] [--plain-trials 8] [--engine local]
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import optuna
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+
+from calibrate import api, search  # noqa: E402
+from calibrate.errors import InputError  # noqa: E402
+
+
+def workspace(tmp: Path) -> Path:
+    sample = ROOT / "sample_data" / "workspace.toml"
+    if sample.is_file():
+        return sample
+    from tests.synthetic import make_workspace
+
+    print("sample_data/workspace.toml missing: using the synthetic workspace")
+    return make_workspace(tmp / "ws", search="fence_window_hours = [48, 72, 120]\n"
+                          "seasonal_span = [7, 11, 15]\nflatline_hours = [0, 6]")
+
+
+def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: int):
+    """The reference: replay from scratch, multiplier searched, figures from a replay."""
+    space = search.build_space(ses)
+    goal = ses.ws.goal
+    s = ses.ws.search
+    total_analysts = sum(ses.analysts.values()) or 1
+    days = (split - first) / 24.0
+    current = ses.ws.detector
+
+    def objective(trial: optuna.Trial) -> float:
+        params = {p.name: p.suggest(trial) for p in space}
+        k = trial.suggest_float("fence_multiplier", s.multiplier_low, s.multiplier_high,
+                                log=True)
+        try:
+            config = search._config_from(params, space, ses, current)
+        except InputError as exc:
+            trial.set_constraint("miss_rate", search.INVALID)
+            trial.set_constraint("budget", search.INVALID)
+            raise optuna.TrialPruned(str(exc)) from None
+        config = config.with_base(fence_multiplier=k)
+        rp = api.make_replayer(ses, engine=engine, progress=False)
+        try:
+            eps = rp.replay(config).episodes
+        finally:
+            rp.close()
+        f = api.score_episodes(ses, eps, first, split)
+        pt = f.per_team[f.per_team["analysts"] > 0]
+        ratio = max([r / goal.budget(t) for t, r in pt["alerts_per_analyst_day"].items()],
+                    default=0.0)
+        trial.set_user_attr("miss_rate", f.miss_rate)
+        trial.set_user_attr("alerts", f.alerts)
+        trial.set_constraint("miss_rate", f.miss_rate - goal.max_miss_rate)
+        trial.set_constraint("budget", ratio - 1.0)
+        return f.alerts / (total_analysts * days)
+
+    study = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=seed))
+    study.enqueue_trial({**search.params_of(current, space, ses),
+                         "fence_multiplier": min(max(current.base.fence_multiplier,
+                                                     s.multiplier_low), s.multiplier_high)})
+    study.optimize(objective, n_trials=trials)
+    ok = [t for t in study.trials if t.state == optuna.trial.TrialState.COMPLETE
+          and all(c <= 0 for c in t.constraints.values())]
+    return min(ok, key=lambda t: t.value) if ok else None
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--trials", type=int, default=100)
+    ap.add_argument("--plain-trials", type=int, default=8,
+                    help="trials the plain search runs (time extrapolated to --trials)")
+    ap.add_argument("--engine", default="local", choices=("local", "serial"))
+    args = ap.parse_args()
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    with tempfile.TemporaryDirectory() as tmp:
+        ses = api.open_session(workspace(Path(tmp)))
+        n_series = sum(ls.n_series for ls in ses.history.levels.values())
+        print(f"workspace {ses.ws.file}: {n_series} series x {len(ses.ws.metric_names)} "
+              f"metrics x {ses.history.n_hours} hours, {len(ses.incidents)} incidents")
+        t0 = time.perf_counter()
+        res = search.tune(ses, trials=args.trials, storage=str(Path(tmp) / "bench.journal"),
+                          engine=args.engine, progress=False)
+        fast = time.perf_counter() - t0
+        done = res.trials[res.trials["state"] == "COMPLETE"]
+        best = res.trials[res.trials["feasible"]]
+        print(f"tune: {args.trials} trials in {fast:.1f} s ({fast / args.trials:.2f} s/trial)")
+        n_plain = min(args.plain_trials, args.trials)
+        t0 = time.perf_counter()
+        ref = plain_search(ses, n_plain, args.engine, res.first_hour, res.split_hour,
+                           ses.ws.search.seed)
+        plain = time.perf_counter() - t0
+        per = plain / n_plain
+        plain_full = per * args.trials
+        note = "" if n_plain == args.trials else (
+            f" (ran {n_plain} trials, {per:.1f} s/trial, extrapolated to {args.trials})")
+        print(f"plain search: {plain_full:.1f} s for {args.trials} trials{note}")
+        print(f"time ratio (plain / tune): {plain_full / fast:.1f}x (target >= 50x)")
+        if len(best):
+            b = best.loc[best["value"].idxmin()]
+            print(f"tune best feasible: miss rate {b['miss_rate']:.3f}, "
+                  f"{b['value']:.3f} alerts per analyst per day, {int(b['alerts'])} alerts, "
+                  f"k={b['k']:.3f}")
+        else:
+            print(f"tune: no feasible trial of {len(done)}: {res.reason}")
+        if ref is not None:
+            print(f"plain best feasible ({n_plain} trials): miss rate "
+                  f"{ref.user_attrs['miss_rate']:.3f}, {ref.value:.3f} alerts per analyst per "
+                  f"day, {ref.user_attrs['alerts']} alerts, k={ref.params['fence_multiplier']:.3f}")
+            if len(best):
+                verdict = "no worse" if b["value"] <= ref.value + 1e-12 else "WORSE"
+                print(f"tune versus plain at the same miss-rate target: {verdict}")
+        else:
+            print(f"plain search: no feasible trial in {n_plain}")
+        print(f"held-out: miss rate {res.holdout.miss_rate:.3f} "
+              f"({res.holdout.caught} of {res.holdout.incidents}), "
+              f"warning: {res.holdout_warning or 'none'}" if res.holdout else "no holdout")
+
+
+if __name__ == "__main__":
+    main()

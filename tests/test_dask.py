@@ -1,0 +1,163 @@
+"""The Dask engine against the serial engine on the small invented workspace.
+
+Reference: the serial engine's own output, computed in each test. A LocalCluster
+of 2 single-threaded worker processes (loopback only, no dashboard) is started
+once for the module and always closed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from calibrate import api
+from calibrate import replay as replay_mod
+from calibrate.cli import main
+from calibrate.executors import DaskExecutor, SerialExecutor, dask_batch_size
+from calibrate.settings import DetectorConfig
+from tests.synthetic import make_workspace
+
+ARRAYS = ("value", "expected", "remainder", "q1", "q3", "score", "flat")
+
+
+@pytest.fixture(scope="module")
+def dask_ex() -> Iterator[DaskExecutor]:
+    ex = DaskExecutor(None, workers=2)  # the LocalCluster path of --engine dask
+    try:
+        yield ex
+    finally:
+        ex.close()
+
+
+@pytest.fixture(scope="module")
+def ses(tmp_path_factory) -> api.Session:
+    return api.open_session(make_workspace(tmp_path_factory.mktemp("dask") / "ws"))
+
+
+def _replay(ses: api.Session, executor, config: DetectorConfig | None = None):
+    rp = api.make_replayer(ses, executor=executor, progress=False)
+    return rp, rp.replay(config or ses.ws.detector)
+
+
+def _square(shared: dict, task: int) -> int:
+    return shared["offset"] + task * task
+
+
+def test_local_cluster_matches_serial(ses, dask_ex):
+    _, ref = _replay(ses, SerialExecutor())
+    _, got = _replay(ses, dask_ex)
+    assert dask_ex.workers == 2
+    ref_alerts = ref.alerts_frame()
+    assert len(ref_alerts) > 0  # the comparison is not vacuous
+    pd.testing.assert_frame_equal(got.alerts_frame(), ref_alerts)
+    assert set(got.scores) == set(ref.scores)
+    for key, ms in ref.scores.items():
+        for name in ARRAYS:
+            np.testing.assert_array_equal(getattr(got.scores[key], name), getattr(ms, name),
+                                          err_msg=f"{key} {name}")
+        assert np.isfinite(ms.score).any()
+
+
+def test_history_is_shipped_once(ses, dask_ex):
+    rp, _ = _replay(ses, dask_ex)
+    key = dask_ex.shared_key
+    base = ses.ws.detector.base
+    # a second replay that must refit (other seasonal span) reuses the scattered data
+    refit = DetectorConfig(base=dataclasses.replace(base, seasonal_span=base.seasonal_span + 2))
+    fits = rp.fits
+    rp.replay(refit)
+    assert rp.fits > fits  # it did run tasks on the cluster
+    assert dask_ex.shared_key == key
+    client = dask_ex._client
+    workers = set(client.scheduler_info()["workers"])
+    holders = client.who_has(dask_ex._shared_future)
+    assert set(holders[key]) == workers  # on every worker (broadcast)
+
+    def fetched(dask_worker) -> list:
+        log = getattr(dask_worker, "transfer_incoming_log", None)
+        if log is None:
+            log = dask_worker.state.transfer_incoming_log
+        return [str(k) for entry in log for k in entry.get("keys", ())]
+
+    # no worker ever fetched the history from another worker: tasks ran where it was
+    for keys in client.run(fetched).values():
+        assert str(key) not in keys
+
+
+def test_every_task_runs_once(dask_ex):
+    tasks = list(range(203))  # several batches, the last one short
+    assert dask_batch_size(len(tasks), dask_ex.workers) > 1
+    got = dict(dask_ex.run(_square, {"offset": 7}, tasks))
+    assert got == {i: 7 + t * t for i, t in enumerate(tasks)}
+    assert list(dask_ex.run(_square, {"offset": 7}, [])) == []
+
+
+class _Bar:
+    """Stands in for tqdm: records the total and every update."""
+
+    made: list[_Bar] = []
+
+    def __init__(self, total: int, **kwargs):
+        self.total, self.done, self.closed = total, 0, False
+        _Bar.made.append(self)
+
+    def update(self, n: int) -> None:
+        self.done += n
+
+    def close(self) -> None:
+        self.closed = True
+
+
+def test_progress_counts_every_task(ses, dask_ex, monkeypatch):
+    monkeypatch.setattr(replay_mod, "tqdm", _Bar)
+    _Bar.made.clear()
+    rp = api.make_replayer(ses, executor=dask_ex, progress=True)
+    rp.replay(ses.ws.detector)
+    [bar] = _Bar.made
+    assert bar.total > 1 and bar.done == bar.total and bar.closed
+
+
+def test_batch_size_bounds():
+    assert dask_batch_size(1, 4) == 1
+    assert dask_batch_size(64, 2) == 4  # 8 batches per worker
+    assert dask_batch_size(10**6, 2) == 16  # capped: bounded result size per batch
+    assert dask_batch_size(10**6, 10**6) == 1
+
+
+def test_cli_replay_dask_engine(ses, dask_ex, tmp_path, capsys):
+    ws = str(ses.ws.file)
+    ref, out = tmp_path / "serial.csv", tmp_path / "dask.csv"
+    assert main(["replay", ws, "--out", str(ref), "--engine", "serial"]) == 0
+    address = dask_ex._cluster.scheduler_address
+    assert main(["replay", ws, "--out", str(out), "--engine", "dask",
+                 "--scheduler", address]) == 0
+    assert "alerts written" in capsys.readouterr().out
+    expected = pd.read_csv(ref, keep_default_na=False)
+    assert len(expected) > 0
+    pd.testing.assert_frame_equal(pd.read_csv(out, keep_default_na=False), expected)
+    # the CLI's client closed; the cluster it connected to is still serving
+    assert dask_ex._client.submit(sum, [1, 2]).result() == 3
+
+
+@pytest.mark.parametrize(
+    "address, message",
+    [
+        ("tcp://127.0.0.1:1", "cannot reach the Dask scheduler at tcp://127.0.0.1:1"),
+        ("tcp://127.0.0.1", "bad Dask scheduler address"),
+    ],
+)
+def test_unreachable_scheduler_is_one_line(ses, tmp_path, capsys, address, message):
+    out = tmp_path / "alerts.csv"
+    code = main(["replay", str(ses.ws.file), "--out", str(out), "--engine", "dask",
+                 "--scheduler", address])
+    err = capsys.readouterr().err
+    assert code == 1
+    assert len(err.strip().splitlines()) == 1, err
+    assert err.startswith("calibrate replay: ") and message in err
+    assert "Traceback" not in err
+    assert not Path(out).exists()

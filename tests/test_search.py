@@ -1,0 +1,250 @@
+"""`calibrate tune`: constrained search, exact multiplier solve, resumable study.
+
+References used here (each test names its own):
+- brute force in the test: replay every grid multiplier through `Replayer.replay`
+  (the detector's own fence_multiplier, no sweep) and score it with
+  `api.score_episodes`, the path `calibrate replay` + `calibrate score` take;
+- Optuna's documented behaviour (REFERENCES.md, Optuna 5): a trial is feasible when
+  every constraint value is <= 0; `enqueue_trial` runs the given parameters first;
+  a study in a JournalStorage file keeps its trials across processes.
+"""
+
+from __future__ import annotations
+
+import itertools
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import optuna
+import pytest
+
+from calibrate import api, search
+from calibrate.cli import main
+from calibrate.episodes import Episodes
+from calibrate.executors import SerialExecutor
+from calibrate.incidents import Incidents
+from calibrate.outputs import load_config, load_provenance
+from calibrate.replay import Replayer
+from calibrate.scoring import match, period_filter
+from calibrate.workspace import Goal
+from tests.synthetic import make_workspace
+
+SEARCH = "fence_window_hours = [48, 72]\nseasonal_span = [7, 11]\ntrials = 4"
+
+
+@pytest.fixture
+def ses(tmp_path: Path) -> api.Session:
+    return api.open_session(make_workspace(tmp_path / "ws", search=SEARCH))
+
+
+def _tune(ses: api.Session, tmp_path: Path, trials: int = 4, **kw) -> search.TuneResult:
+    kw.setdefault("storage", str(tmp_path / "study.journal"))
+    return search.tune(ses, trials=trials, engine="serial", progress=False, **kw)
+
+
+def _brute_force_k(ses, config, ks, first, split, goal):
+    """Largest grid k whose replay meets the miss rate and every team's budget."""
+    rp = Replayer(ses.history, metrics=list(ses.ws.metric_names), executor=SerialExecutor(),
+                  routes=ses.routes, progress=False)
+    best = None
+    for k in ks:
+        eps = rp.replay(config.with_base(fence_multiplier=float(k))).episodes
+        f = api.score_episodes(ses, eps, first, split)
+        miss_ok = f.miss_rate <= goal.max_miss_rate
+        teams = f.per_team[f.per_team["analysts"] > 0]
+        within = all(
+            r <= goal.budget(t) for t, r in teams["alerts_per_analyst_day"].items()
+        )
+        if miss_ok and within:
+            best = (float(k), f)
+    return best
+
+
+def test_tune_finds_a_feasible_setting_no_worse_than_today(ses, tmp_path):
+    res = _tune(ses, tmp_path)
+    assert res.feasible, res.reason
+    goal = ses.ws.goal
+    assert res.tuning.miss_rate <= goal.max_miss_rate
+    per_team = res.tuning.per_team
+    for team, rate in per_team.loc[per_team["analysts"] > 0, "alerts_per_analyst_day"].items():
+        assert rate <= goal.budget(team)
+    # Optuna: enqueue_trial makes today's settings trial 0
+    t0 = res.trials.set_index("number").loc[0]
+    cur = ses.ws.detector.base
+    assert (t0["fence_window_hours"], t0["seasonal_span"]) == (
+        cur.fence_window_hours, cur.seasonal_span)
+    if t0["feasible"]:
+        chosen = res.trials[res.trials["feasible"]]["value"].min()
+        assert chosen <= t0["value"]
+    assert res.split_hour == ses.history.n_hours - 168  # 25% of 5 weeks -> 1 whole week
+    assert res.first_hour == 167
+    assert len(res.pareto) >= 1
+
+
+def test_solved_multiplier_equals_brute_force(ses, tmp_path):
+    first, split = 167, ses.history.n_hours - 168
+    goal = ses.ws.goal
+    config = ses.ws.detector
+    ks = np.geomspace(ses.ws.search.multiplier_low, ses.ws.search.multiplier_high, 40)
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    ev = search.Evaluator(ses, rp, ks, first, split, goal).evaluate(config)
+    ref = _brute_force_k(ses, config, ks, first, split, goal)
+    assert ref is not None and ev.feasible
+    k, f = ref
+    assert ev.k == k
+    assert (ev.caught, ev.alerts) == (f.caught, f.alerts)
+    assert ev.miss_rate == pytest.approx(f.miss_rate)
+
+
+def test_known_false_alerts_are_counted_and_penalised(ses):
+    first, split = 167, ses.history.n_hours - 168
+    config = ses.ws.detector
+    ks = np.array([2.0, 4.0])
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    eps = rp.replay(config.with_base(fence_multiplier=4.0)).episodes
+    tuned_eps = period_filter(eps, first, split)
+    assert len(tuned_eps) >= 2
+    # mark the windows of the first two alerts as known false alarms
+    kf = Incidents.make(level=tuned_eps.level[:2], series=tuned_eps.series[:2],
+                        start=tuned_eps.start[:2], end=tuned_eps.end[:2],
+                        metric=tuned_eps.metric[:2])
+    goal = Goal(max_miss_rate=1.0, max_alerts_per_analyst_day=1e6)  # k = 4 is solved
+    plain = search.Evaluator(ses, rp, ks, first, split, goal).evaluate(config)
+    marked = search.Evaluator(ses, rp, ks, first, split, goal, kf).evaluate(config)
+    # reference: `match` of the k = 4 replay against the false windows (no tolerance)
+    expected = int(match(tuned_eps, kf, 0, 0).alert_true.sum())
+    assert marked.k == plain.k == 4.0
+    assert marked.known_false_alerts == expected >= 2
+    assert marked.value == pytest.approx(
+        plain.value * (plain.alerts + search.KNOWN_FALSE_PENALTY * expected) / plain.alerts)
+
+
+def test_impossible_goal_says_which_constraint_and_by_how_much(ses, tmp_path):
+    res = _tune(ses, tmp_path, trials=3,
+                goal=Goal(max_miss_rate=0.0, max_alerts_per_analyst_day=0.01))
+    assert not res.feasible
+    assert "alert budget" in res.reason and "over its budget 0.01" in res.reason
+    assert not res.trials["feasible"].any()
+    assert len(res.pareto) >= 1
+
+
+def test_unreachable_miss_rate_reports_best_miss_rate(tmp_path):
+    # a multiplier range far above every incident's fence score catches nothing
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + "\nfence_multiplier = {low = 500.0, "
+                        "high = 600.0}")
+    ses = api.open_session(ws)
+    res = _tune(ses, tmp_path, trials=2)
+    assert not res.feasible
+    best = res.trials["miss_rate"].min()
+    assert res.reason.startswith(f"no setting meets max_miss_rate 0.25: best miss rate {best:.2f}")
+
+
+def test_interrupt_and_resume_loses_no_trial(ses, tmp_path):
+    storage = str(tmp_path / "resume.journal")
+    first = _tune(ses, tmp_path, trials=3, storage=storage).trials
+    second = _tune(ses, tmp_path, trials=6, storage=storage).trials
+    assert first["number"].tolist() == [0, 1, 2]
+    assert second["number"].tolist() == list(range(6))
+    assert (second["state"] == "COMPLETE").all()
+    cols = ["number", "fence_window_hours", "seasonal_span", "k", "value"]
+    assert second[cols].head(3).equals(first[cols])
+    # the study on disk, loaded with Optuna itself
+    backend = optuna.storages.journal.JournalFileBackend(storage)
+    study = optuna.load_study(study_name=search.study_name_for(ses, ses.ws.goal, None),
+                              storage=optuna.storages.JournalStorage(backend))
+    assert len(study.get_trials(states=(optuna.trial.TrialState.COMPLETE,))) == 6
+    # a third run with the same budget runs nothing more
+    third = _tune(ses, tmp_path, trials=6, storage=storage).trials
+    assert len(third) == 6
+
+
+@pytest.mark.parametrize("tune_by", ["all", "level"])
+def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"')
+    ses = api.open_session(ws)
+    res = _tune(ses, tmp_path, trials=3)
+    assert res.feasible
+    if tune_by == "level":
+        assert [g.name for g in res.config.groups] == list(ses.history.levels)
+    from calibrate.outputs import write_config
+
+    out = write_config(tmp_path / "tuned.toml", res.config, res.provenance)
+    config = load_config(out)
+    assert config == res.config
+    fresh = api.replay_session(api.open_session(ws), config, engine="serial", progress=False)
+    tuning = api.score_episodes(ses, fresh.episodes, res.first_hour, res.split_hour)
+    holdout = api.score_episodes(ses, fresh.episodes, res.split_hour, ses.history.n_hours)
+    assert tuning.to_json_dict() == res.tuning.to_json_dict()
+    assert holdout.to_json_dict() == res.holdout.to_json_dict()
+    prov = load_provenance(out)
+    assert prov["split_hour"] == res.split_hour
+    assert prov["tuning"]["alerts"] == tuning.alerts
+    assert prov["history_sha256"] == ses.history.source_hash
+
+
+def test_greedy_group_multipliers_stop_at_a_local_optimum():
+    """Brute force over every single-group move: none keeps the miss target and saves."""
+    rng = np.random.default_rng(3)
+    n_k, n_inc, n_g = 6, 5, 3
+    caught, cost = [], []
+    for _ in range(n_g):
+        # raising k never adds catches or alerts here (as without min_impact)
+        c = np.sort(rng.random((n_k, n_inc)) < 0.8, axis=0)[::-1]
+        caught.append(c)
+        cost.append(np.sort(rng.integers(0, 50, n_k))[::-1].astype(float))
+    for target in (0.0, 0.2, 0.4, 1.0):
+        idx = search.greedy_multipliers(caught, cost, target)
+
+        def miss(ix):
+            got = np.logical_or.reduce([caught[g][ix[g]] for g in range(n_g)])
+            return 1 - got.sum() / n_inc
+
+        assert miss(idx) <= target or idx == [0] * n_g
+        total = sum(cost[g][idx[g]] for g in range(n_g))
+        for g, j in itertools.product(range(n_g), range(n_k)):
+            if j <= idx[g]:
+                continue
+            moved = list(idx)
+            moved[g] = j
+            if miss(moved) <= target:
+                assert sum(cost[h][moved[h]] for h in range(n_g)) >= total
+
+
+def test_invalid_combinations_are_pruned_not_crashed(tmp_path):
+    # fence window 200 is not below the 168-hour decomposition window
+    ws = make_workspace(tmp_path / "ws", search="fence_window_hours = [72, 200]\ntrials = 6")
+    res = _tune(api.open_session(ws), tmp_path, trials=6)
+    pruned = res.trials[res.trials["state"] == "PRUNED"]
+    assert (pruned["fence_window_hours"] == 200).all()
+    assert res.feasible and res.config.base.fence_window_hours == 72
+
+
+def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
+    ws = make_workspace(tmp_path / "ws", search=SEARCH)
+    out = tmp_path / "tuned.toml"
+    argv = ["tune", str(ws), "--out", str(out), "--trials", "3", "--engine", "serial",
+            "--storage", str(tmp_path / "cli.journal")]
+    assert main(argv) == 0
+    text = capsys.readouterr().out
+    assert "tuning weeks" in text and "held-out weeks" in text
+    assert load_config(out).base.fence_multiplier > 0
+    before = out.read_bytes()
+    assert main(argv) == 1
+    assert "already exists; pass --force" in capsys.readouterr().err
+    assert out.read_bytes() == before
+    assert main([*argv, "--force"]) == 0
+    # impossible goal: exit 2, nothing written
+    other = tmp_path / "never.toml"
+    argv2 = [a if a != str(out) else str(other) for a in argv]
+    assert main([*argv2, "--max-miss-rate", "0", "--max-alerts-per-analyst-day", "0.01"]) == 2
+    assert "best trade-offs" in capsys.readouterr().out
+    assert not other.exists()
+
+
+def test_holdout_warning_uses_the_wilson_upper_bound(ses):
+    # Wilson (1927) via statsmodels: 0 caught of 30 -> recall interval (0, 0.1135)
+    figs = replace(api.score_episodes(ses, Episodes.empty()), incidents=30, caught=0,
+                   recall=0.0, recall_low=0.0, recall_high=0.1135134)
+    assert search.holdout_warning(figs, Goal(max_miss_rate=0.85)) != ""  # target 0.15 > 0.1135
+    assert search.holdout_warning(figs, Goal(max_miss_rate=0.9)) == ""  # target 0.10 < 0.1135
