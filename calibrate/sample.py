@@ -155,10 +155,13 @@ late_hours = 6
 owners = "owners.csv"
 analysts = {{ "team-river" = 2, "team-harbor" = 3, "team-summit" = 2 }}
 
-# What a tuned configuration must achieve.
+# What a tuned configuration must achieve. Hourly revenue here arrives per conversion and
+# is sparse, so no setting of this detector stays within 4 alerts per analyst per day at
+# this miss rate; try `calibrate tune ... --max-alerts-per-analyst-day 4` to see the
+# tool say so and show the best trade-offs instead.
 [goal]
 max_miss_rate = 0.25
-max_alerts_per_analyst_day = 4.0
+max_alerts_per_analyst_day = 15.0
 
 # Today's detector settings: deliberately too tight, so tuning has something to improve.
 [detector]
