@@ -666,14 +666,20 @@ def _config_from(params: dict[str, Any], space: list[Param], ses: Session,
 
 def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[DetectorConfig],
                name: str, store: Any, budget: int, progress: bool) -> optuna.Study:
-    existing = optuna.create_study(storage=store, study_name=name, direction="minimize",
-                                   load_if_exists=True)
+    try:
+        existing = optuna.create_study(storage=store, study_name=name, direction="minimize")
+        created = True
+    except optuna.exceptions.DuplicatedStudyError:
+        existing = optuna.load_study(study_name=name, storage=store)
+        created = False
     n_before = len(existing.get_trials(deepcopy=False))
     seed = ses.ws.search.seed + n_before  # deterministic for one process's runs
     sampler = optuna.samplers.TPESampler(
         seed=seed, **({} if SET_CONSTRAINT else {"constraints_func": _constraints}))
     study = optuna.load_study(study_name=name, storage=store, sampler=sampler)
-    for cfg in starts:
+    # only the process that created the study queues today's settings: two processes
+    # starting together would otherwise both queue them (skip_if_exists races)
+    for cfg in starts if created else starts[1:]:
         study.enqueue_trial(params_of(cfg, space, ses), skip_if_exists=True)
     done = len(study.get_trials(deepcopy=False, states=BUDGET_STATES))
     remaining = budget - done

@@ -71,5 +71,8 @@ def test_two_processes_share_one_study(tmp_path):
     numbers = [t.number for t in trials]
     assert sorted(numbers) == list(range(len(trials)))  # distinct, none missing
     assert len({t._trial_id for t in trials}) == len(trials)
+    # today's settings are queued once, by the process that created the study
+    warm = [t for t in trials if t.system_attrs.get("fixed_params")]
+    assert len(warm) == 1, [t.params for t in warm]
     for i in range(PROCESSES):
         assert (tmp_path / f"tuned-{i}.toml").is_file()
