@@ -531,7 +531,8 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
     }
     written.append(write_report_data_files(files, report, force=True))
     if all(hasattr(res.tune, a) for a in ("trials", "split_hour", "first_hour", "current")):
-        written.append(write_report(res.session, res.tune, report / "calibration"))
+        write_report(res.session, res.tune, report / "calibration")
+        written.append(report / "calibration")
     return written
 
 
