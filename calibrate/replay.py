@@ -303,7 +303,7 @@ def sweep(
             )
         )
     eps = Episodes.concat(parts)
-    if len(eps):
+    if len(eps) and ks is None:  # a grid sweep feeds counts only: no order needed
         # integer codes: sorting object arrays of text is the slow part of a sweep
         names = sorted(scores)
         code = {key: i for i, key in enumerate(names)}

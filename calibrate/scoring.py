@@ -681,8 +681,7 @@ def multiplier_curve(
     true_alerts = np.bincount(grid[alert_true], minlength=n_k).astype(np.int64)
 
     teams = tuple(dict.fromkeys([*teams_analysts, *sorted(set(ep.team.tolist()))]))
-    team_pos = {t: j for j, t in enumerate(teams)}
-    tp = np.fromiter((team_pos[t] for t in ep.team), dtype=np.int64, count=len(ep))
+    tp = pd.Index(teams).get_indexer(ep.team.astype(object)).astype(np.int64)
     cell = grid * len(teams) + tp
     size = n_k * len(teams)
     team_alerts = np.bincount(cell, minlength=size).reshape(n_k, len(teams))
