@@ -54,32 +54,34 @@ def _fill_window(window: np.ndarray) -> np.ndarray | None:
     return out
 
 
-def _seasonal_periods(s: DetectorSettings) -> tuple[int, ...]:
-    # with a weekly component the summed seasonal repeats weekly
-    return (7 * s.period_hours,) if s.weekly_period else (s.period_hours,)
+def _repeat_period(s: DetectorSettings) -> int:
+    """Period the seasonal is repeated at between refits (the summed seasonal of a
+    weekly fit repeats weekly)."""
+    return 7 * s.period_hours if s.weekly_period else s.period_hours
 
 
 def _fit_windows(windows: np.ndarray, s: DetectorSettings, tail: int):
-    """Fit each row of `windows`; return trend at the last point, seasonal tails
-    (one array per seasonal component, last `tail` points) and remainder tails."""
+    """Fit each row of `windows`.
+
+    Returns the level at the last point, the seasonal tails to repeat between
+    refits as (period, last `tail` points) pairs, and the remainder tails; the
+    expected value `o` hours after a refit is the level plus each seasonal tail
+    one period-multiple back.
+    """
     L = windows.shape[1]
+    period = _repeat_period(s)
     if not s.robust and s.refit_every_hours == 1:
-        # every hour is a refit: only the fitted values (trend + seasonal) are needed
-        fitted_m = _linear_fitted(L, s)
-        fitted_tail = windows @ fitted_m[L - tail :].T
-        resid = windows[:, L - tail :] - fitted_tail
-        return fitted_tail[:, -1], [np.zeros((len(windows), tail))], resid
+        # every hour is a refit: the level is trend + seasonal, nothing is repeated
+        fitted_tail = windows @ _linear_fitted(L, s)[L - tail :].T
+        return fitted_tail[:, -1], [], windows[:, L - tail :] - fitted_tail
     if not s.robust:
         trend_m, seas_ms = _linear_parts(L, s)
-        trend_last = windows @ trend_m[L - 1]
         seas = [windows @ m[L - tail :].T for m in seas_ms]
-        fitted_tail = windows @ trend_m[L - tail :].T
-        for sc in seas:
-            fitted_tail = fitted_tail + sc
+        fitted_tail = windows @ trend_m[L - tail :].T + sum(seas)
         resid = windows[:, L - tail :] - fitted_tail
-        return trend_last, seas, resid
+        return windows @ trend_m[L - 1], [(period, sc) for sc in seas], resid
     trend, seasonal, resid = _fit_many(windows, s)
-    seas = [c[:, L - tail :] for c in seasonal]
+    seas = [(period, c[:, L - tail :]) for c in seasonal]
     return trend[:, L - 1], seas, resid[:, L - tail :]
 
 
@@ -99,8 +101,7 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     n = len(y)
     L, h = s.decomposition_window_hours, s.refit_every_hours
     wmax = max(fence_windows)
-    periods = _seasonal_periods(s)
-    tail = max(wmax + 1, max(periods)) if h > 1 else wmax + 1
+    tail = max(wmax + 1, _repeat_period(s)) if h > 1 else wmax + 1
     tail = min(tail, L)
     expected = np.full(n, np.nan)
     remainder = np.full(n, np.nan)
@@ -131,19 +132,20 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     stream = np.full((n_rep, wmax), np.nan)
     fit_of = (hours - (L - 1)) // h
     offset = hours - refits[fit_of]  # hours since the last refit
-    # in-sample part: hour i = t - wmax + c <= t0  -> resid column tail-1-(t0-i)
+    # idx[j, c]: the hour whose remainder sits at stream[j, c]
+    idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
+    # in-sample part: hour i <= t0 -> resid column tail-1-(t0-i)
     if h == 1:
         stream[:] = resid[:, :wmax]
     else:
-        i = hours[:, None] - wmax + np.arange(wmax)[None, :]
         t0 = refits[fit_of][:, None]
-        col = tail - 1 - (t0 - i)
-        sel = (i <= t0) & (col >= 0)
+        col = tail - 1 - (t0 - idx)
+        sel = (idx <= t0) & (col >= 0)
         rows = np.broadcast_to(fit_of[:, None], sel.shape)
         stream[sel] = resid[rows[sel], col[sel]]
     # expected values: refit hours from the fit, others extrapolated
     exp = trend_last[fit_of].copy()
-    for p, sc in zip(periods, seas, strict=True):
+    for p, sc in seas:
         lag = p * np.ceil(offset / p).astype(np.int64)
         col = tail - 1 + offset - lag
         exp = exp + sc[fit_of, col]
@@ -152,11 +154,9 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     remainder[hours] = np.where(valid[hours], y[hours] - exp, np.nan)
     if h > 1:
         # out-of-sample part: hours t0 < i < t use remainder_i
-        i = hours[:, None] - wmax + np.arange(wmax)[None, :]
-        outs = i > refits[fit_of][:, None]
-        stream[outs] = remainder[i[outs]]
+        outs = idx > refits[fit_of][:, None]
+        stream[outs] = remainder[idx[outs]]
     # masked hours leave the fence windows
-    idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
     stream[~valid[np.clip(idx, 0, n - 1)]] = np.nan
     stream[~usable[fit_of]] = np.nan
     for w in fence_windows:

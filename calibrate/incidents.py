@@ -199,15 +199,7 @@ def incidents_from_frame(
 
     level, series, label = resolve_series(rows, history)
     metric = resolve_metrics(rows, ws, allow_any=True)
-    start = resolve_hours(rows, "start", history.hours, is_end=False)
-    end = resolve_hours(rows, "end", history.hours, is_end=True)
-    bad = np.flatnonzero(end <= start)
-    if len(bad):
-        p = bad[0]
-        raise InputError(
-            rows.at(p, "end"),
-            f"end {rows.text('end')[p]} must be after start {rows.text('start')[p]}",
-        )
+    start, end = resolve_span(rows, history.hours)
     check_overlaps(rows, level, series, metric, start, end)
     note = rows.text("note") if "note" in rows.columns else np.full(n, "", dtype=object)
     return Incidents(
@@ -380,6 +372,20 @@ def resolve_hours(
         )
     idx[blank] = -1
     return idx
+
+
+def resolve_span(rows: FrameRows, hours: pd.DatetimeIndex) -> tuple[np.ndarray, np.ndarray]:
+    """Hour indices of the `start` and `end` (exclusive) columns; end must follow start."""
+    start = resolve_hours(rows, "start", hours, is_end=False)
+    end = resolve_hours(rows, "end", hours, is_end=True)
+    bad = np.flatnonzero(end <= start)
+    if len(bad):
+        p = bad[0]
+        raise InputError(
+            rows.at(p, "end"),
+            f"end {rows.text('end')[p]} must be after start {rows.text('start')[p]}",
+        )
+    return start, end
 
 
 def check_overlaps(

@@ -273,7 +273,8 @@ def sweep(
     Episodes
         With `grid` the index into `ks`.
     """
-    parts = []
+    parts, codes = [], []
+    code = {key: i for i, key in enumerate(sorted(scores))}  # (level, metric) order
     for (lv, m), ms in scores.items():
         grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
         ints, floats = episodes_grid(
@@ -283,6 +284,7 @@ def sweep(
             keep = np.abs(floats[:, 1] - floats[:, 2]) >= ms.settings.min_impact
             ints, floats = ints[keep], floats[keep]
         k = len(ints)
+        codes.append(np.full(k, code[(lv, m)], dtype=np.int64))
         team = np.full(k, "", dtype=object)
         if routes and lv in routes:
             team = np.asarray(routes[lv], dtype=object)[ints[:, 1]]
@@ -305,11 +307,7 @@ def sweep(
     eps = Episodes.concat(parts)
     if len(eps) and ks is None:  # a grid sweep feeds counts only: no order needed
         # integer codes: sorting object arrays of text is the slow part of a sweep
-        names = sorted(scores)
-        code = {key: i for i, key in enumerate(names)}
-        sizes = [len(p) for p in parts]
-        keys = [key for key, p in zip(scores, parts, strict=True) if len(p)]
-        part_code = np.repeat([code[k] for k in keys], [n for n in sizes if n])
+        part_code = np.concatenate(codes)
         order = np.lexsort((eps.series, part_code, eps.start, eps.grid))
         eps = eps.take(order)
     return eps

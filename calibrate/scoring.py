@@ -36,6 +36,7 @@ from calibrate.incidents import (
     resolve_hours,
     resolve_metrics,
     resolve_series,
+    resolve_span,
 )
 from calibrate.workspace import Goal, Workspace
 
@@ -794,11 +795,7 @@ def episodes_from_alerts_frame(
     n = len(rows)
     level, series, _ = resolve_series(rows, history)
     metric = resolve_metrics(rows, ws, allow_any=False)
-    start = resolve_hours(rows, "start", history.hours, is_end=False)
-    end = resolve_hours(rows, "end", history.hours, is_end=True)
-    bad = np.flatnonzero(end <= start)
-    if len(bad):
-        raise InputError(rows.at(bad[0], "end"), "end must be after start")
+    start, end = resolve_span(rows, history.hours)
     peak = start.copy()
     if "peak_hour" in rows.columns:
         given = resolve_hours(rows, "peak_hour", history.hours, is_end=False, optional=True)
