@@ -9,7 +9,11 @@ same machine. Two changes keep the bits and remove the cost:
   ``pow`` (including statsmodels' 0.001/0.999 thresholds);
 - in the sliding part of each LOESS pass, four neighbouring output points are computed
   together. Each point keeps its own sums in statsmodels' order, so the bits do not
-  change; the four independent chains just let the CPU overlap them.
+  change; the four independent chains just let the CPU overlap them;
+- in the prepared-weights kernel, the normalisation ``w / a`` of every weight of one
+  output point divides by the same ``a``: it is computed from ``y = 1/a`` (one true
+  division per point) with two fused multiply-add corrections, which returns the
+  correctly rounded quotient, i.e. the same bits as the division (`exact_div`).
 
 Public API: `stl_config`, `stl_fit`, `stl_fit_windows`, `mstl_fit`, `linear_smoother`,
 `trend_matrix`, `seasonal_matrix`.
@@ -25,6 +29,8 @@ from typing import NamedTuple
 
 import numba as nb
 import numpy as np
+from numba import types
+from numba.extending import intrinsic
 
 __all__ = [
     "LinearSmoother",
@@ -38,6 +44,37 @@ __all__ = [
 ]
 
 _JIT = dict(cache=True, nogil=True, error_model="numpy")
+
+
+@intrinsic
+def _fma(typingctx, a, b, c):
+    """``a*b + c`` with one rounding (LLVM's fma; a vector instruction where the CPU has it)."""
+    sig = types.float64(types.float64, types.float64, types.float64)
+
+    def codegen(context, builder, signature, args):
+        return builder.fma(*args)
+
+    return sig, codegen
+
+
+@nb.njit(inline="always", **_JIT)
+def exact_div(x, a, y):
+    """``x / a`` correctly rounded, from ``y = 1.0 / a`` without a division.
+
+    ``q0 = x*y`` is within 1.5 ulp of ``x/a``; one correction ``q1 = q0 + (x - a*q0)*y``
+    makes it faithful (within 1 ulp), and a second one then gives the correctly rounded
+    quotient by Markstein's theorem (P. Markstein, IBM J. Res. Dev. 34(1), 1990; also in
+    Muller et al., *Handbook of Floating-Point Arithmetic*, ch. on division -- cited from
+    memory): if ``q`` is faithful and ``y`` is ``1/a`` within relative error 2**-53, then
+    ``RN(q + RN(x - a*q)*y) = RN(x/a)``. Needs no underflow or overflow: here ``x`` is a
+    product of a tricube and a robustness weight (0 or at least about 1e-13) and ``a`` a
+    sum of them; ``0/0`` still gives NaN. Tested against ``/`` in tests/test_stl_kernel.py.
+    """
+    q = x * y
+    r = _fma(-q, a, x)
+    q = _fma(r, y, q)
+    r = _fma(-q, a, x)
+    return _fma(r, y, q)
 
 
 # --------------------------------------------------------------------------- settings
@@ -730,6 +767,8 @@ _CHUNK = 256  # lanes per pass group: a chunk's weight rows stay in the L1 cache
 def _plan_weights(info, base, tw, pl, xs, hf, lim, ideg, rw, wout, scr):
     """Final LOESS weights of every block for robustness weights `rw` into `wout`.
 
+    `scr` is scratch of at least 5 rows of the longest block's lane count.
+
     Per lane, statsmodels' ``_est`` order: a = sum(t*rw); w = t*rw/a; m = sum(w*j);
     c = sum(w*(j-m)**2); b = (xs-m)/c if h > 0 and sqrt(c) > lim; w *= b*(j-m) + 1.
     Rows are taken as slices so that every inner loop is a plain unit-stride loop
@@ -777,6 +816,9 @@ def _weights_chunk(info, bi, l0, l1, base, tw, pl, xs, hf, lim, ideg, rw, wout, 
                 a[lane] = a[lane] + t[lane] * r0
     # One written array per loop keeps the compiler's overlap checks few enough for it
     # to vectorise each loop.
+    inv = scr[4, :nc]
+    for lane in range(nc):
+        inv[lane] = 1.0 / a[lane]
     for d in range(nd):
         t = tw[woff + d * nlan : woff + d * nlan + nc]
         wr = wout[woff + d * nlan : woff + d * nlan + nc]
@@ -784,11 +826,11 @@ def _weights_chunk(info, bi, l0, l1, base, tw, pl, xs, hf, lim, ideg, rw, wout, 
         if ls == 1:
             r = rw[src : src + nc]
             for lane in range(nc):
-                wr[lane] = (t[lane] * r[lane]) / a[lane]
+                wr[lane] = exact_div(t[lane] * r[lane], a[lane], inv[lane])
         else:
             r0 = rw[src]
             for lane in range(nc):
-                wr[lane] = (t[lane] * r0) / a[lane]
+                wr[lane] = exact_div(t[lane] * r0, a[lane], inv[lane])
         fd = float(d)
         for lane in range(nc):
             m[lane] = m[lane] + wr[lane] * (pll[lane] + fd)

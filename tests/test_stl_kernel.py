@@ -10,6 +10,7 @@ import importlib.util
 import warnings
 from pathlib import Path
 
+import numba as nb
 import numpy as np
 import pandas as pd
 import pytest
@@ -17,6 +18,7 @@ from statsmodels.datasets import co2
 from statsmodels.tsa.seasonal import MSTL, STL
 
 from calibrate.stl_kernel import (
+    exact_div,
     linear_smoother,
     mstl_fit,
     seasonal_matrix,
@@ -406,9 +408,37 @@ def test_reuse_weights_zero_weight_window_keeps_input() -> None:
     k._series_blocks(blocks, n, span, tab, toff)
     plan = k._pack(blocks, 1)
     w = np.empty(plan.tw.shape[0])
-    k._plan_weights(*k._plan_args(plan), rw, w, np.empty((4, n)))
+    k._plan_weights(*k._plan_args(plan), rw, w, np.empty((5, n)))  # 5 scratch rows
     got = np.empty(n)
     k._plan_apply(plan.info, plan.base, w, y, got, np.empty(n))
     np.testing.assert_array_equal(got, want)
     np.testing.assert_array_equal(got[100:120], y[100:120])
     assert np.isnan(w).any()
+
+
+@nb.njit(error_model="numpy")  # IEEE 0/0 = NaN, as in the kernel
+def _exact_div_all(x: np.ndarray, a: np.ndarray, out: np.ndarray) -> None:
+    for i in range(x.shape[0]):
+        out[i] = exact_div(x[i], a[i], 1.0 / a[i])
+
+
+def test_exact_div_equals_ieee_division() -> None:
+    # Reference: numpy's `/` (IEEE 754 correctly rounded division). The FMA-corrected
+    # quotient must give the same bits on the kernel's operand range (weights in
+    # [1e-13, 1] over their sums) and on hard cases: divisors with all-ones significands
+    # and dividends just above a power of two (where q0 = x*(1/a) can be 1.5 ulp off).
+    rng = np.random.default_rng(11)
+    n = 400_000
+    a = rng.uniform(1.0, 60.0, n)
+    x = a * rng.uniform(0.0, 1.0, n) ** 3
+    a2 = np.nextafter(2.0 ** rng.integers(-8, 8, n), 0.0) * (1 - rng.integers(0, 8, n) * 2.0**-52)
+    x2 = np.nextafter(2.0 ** rng.integers(-30, 0, n), np.inf) * a2
+    tiny = np.array([1e-13, 2.7e-8 * 4e-6, 1.0, 0.5, 0.0])
+    xs = np.concatenate([x, x2, tiny])
+    as_ = np.concatenate([a, a2, np.array([1e-13, 1.0, 3.0, 47.0, 5.0])])
+    out = np.empty_like(xs)
+    _exact_div_all(xs, as_, out)
+    assert np.array_equal(out.view(np.int64), (xs / as_).view(np.int64))
+    nan = np.empty(1)
+    _exact_div_all(np.zeros(1), np.zeros(1), nan)
+    assert np.isnan(nan[0])  # an all-zero-weight window still gives NaN, as 0/0 does

@@ -9,13 +9,21 @@ from __future__ import annotations
 
 import os
 import platform
+import sys
 import time
 from collections.abc import Callable
 
 import numpy as np
 from statsmodels.tsa.seasonal import MSTL, STL
 
-from calibrate.stl_kernel import linear_smoother, mstl_fit, stl_fit, stl_fit_windows
+sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
+
+from calibrate.stl_kernel import (  # noqa: E402
+    linear_smoother,
+    mstl_fit,
+    stl_fit,
+    stl_fit_windows,
+)
 
 
 def _per_call(fn: Callable[[], object], min_time: float = 0.3, repeats: int = 5) -> float:
