@@ -111,38 +111,40 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
         return Stream(expected, remainder, q1, q3)
     valid = ~np.isnan(y)
     refits = np.arange(L - 1, n, h)
-    windows = sliding_window_view(y, L)[refits - (L - 1)]
-    bad = np.isnan(windows).any(axis=1)
+    starts = refits - (L - 1)
+    # fancy indexing copies: `windows` is a fresh C-contiguous array, safe to fill in place
+    windows = sliding_window_view(y, L)[starts]
+    missing = np.concatenate(([0], np.cumsum(~valid)))
+    bad = missing[starts + L] > missing[starts]
     usable = np.ones(len(refits), dtype=bool)
-    if bad.any():
-        windows = windows.copy()
-        for i in np.flatnonzero(bad):
-            filled = _fill_window(windows[i])
-            if filled is None:
-                usable[i] = False
-                windows[i] = 0.0
-            else:
-                windows[i] = filled
-    else:
-        windows = np.ascontiguousarray(windows)
+    for i in np.flatnonzero(bad):
+        filled = _fill_window(windows[i])
+        if filled is None:
+            usable[i] = False
+            windows[i] = 0.0
+        else:
+            windows[i] = filled
     trend_last, seas, resid = _fit_windows(windows, s, tail)
     # stream[j, c]: the remainder the detector holds for hour t_j - wmax + c
     hours = np.arange(L - 1, n)
     n_rep = len(hours)
-    stream = np.full((n_rep, wmax), np.nan)
     fit_of = (hours - (L - 1)) // h
     offset = hours - refits[fit_of]  # hours since the last refit
-    # idx[j, c]: the hour whose remainder sits at stream[j, c]
-    idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
-    # in-sample part: hour i <= t0 -> resid column tail-1-(t0-i)
     if h == 1:
-        stream[:] = resid[:, :wmax]
+        # every hour is a refit: the stream is the fit's own in-sample remainders
+        stream = resid[:, :wmax]
+        bad_hours = np.flatnonzero(~valid)
+        if bad_hours.size:
+            # a masked hour i sits at column c = i - t_j + wmax of rows with t_j in (i, i+wmax]
+            c = np.arange(wmax)
+            rows = bad_hours[:, None] + wmax - c[None, :] - (L - 1)
+            cols = np.broadcast_to(c, rows.shape)
+            keep = (rows >= 0) & (rows < n_rep)
+            stream[rows[keep], cols[keep]] = np.nan
+        stream[~usable] = np.nan
     else:
-        t0 = refits[fit_of][:, None]
-        col = tail - 1 - (t0 - idx)
-        sel = (idx <= t0) & (col >= 0)
-        rows = np.broadcast_to(fit_of[:, None], sel.shape)
-        stream[sel] = resid[rows[sel], col[sel]]
+        stream = _stream_refit_every(resid, refits, fit_of, hours, valid, usable, L, h, tail,
+                                     wmax)
     # expected values: refit hours from the fit, others extrapolated
     exp = trend_last[fit_of].copy()
     for p, sc in seas:
@@ -153,12 +155,12 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     expected[hours] = exp
     remainder[hours] = np.where(valid[hours], y[hours] - exp, np.nan)
     if h > 1:
-        # out-of-sample part: hours t0 < i < t use remainder_i
+        # out-of-sample part: hours t0 < i < t use remainder_i (known only now)
+        idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
         outs = idx > refits[fit_of][:, None]
         stream[outs] = remainder[idx[outs]]
-    # masked hours leave the fence windows
-    stream[~valid[np.clip(idx, 0, n - 1)]] = np.nan
-    stream[~usable[fit_of]] = np.nan
+        stream[~valid[np.clip(idx, 0, n - 1)]] = np.nan
+        stream[~usable[fit_of]] = np.nan
     for w in fence_windows:
         block = stream[:, wmax - w :]
         a, b = _quartiles(block, s.quartile_method)
@@ -167,15 +169,32 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     return Stream(expected, remainder, q1, q3)
 
 
+def _stream_refit_every(resid, refits, fit_of, hours, valid, usable, L, h, tail, wmax):
+    """In-sample part of the fence stream when refitting every h > 1 hours."""
+    n_rep = len(hours)
+    stream = np.full((n_rep, wmax), np.nan)
+    # idx[j, c]: the hour whose remainder sits at stream[j, c]
+    idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
+    # in-sample part: hour i <= t0 -> resid column tail-1-(t0-i)
+    t0 = refits[fit_of][:, None]
+    col = tail - 1 - (t0 - idx)
+    sel = (idx <= t0) & (col >= 0)
+    rows = np.broadcast_to(fit_of[:, None], sel.shape)
+    stream[sel] = resid[rows[sel], col[sel]]
+    return stream
+
+
 def _quartiles(block: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
     """Q1, Q3 of each row's non-NaN values, exactly as numpy.percentile gives them.
 
     Rows with fewer than `MIN_FENCE_VALUES` values get NaN. The default `linear`
-    method runs in a compiled kernel that repeats numpy's arithmetic (same bits);
+    method sorts the rows with `numpy.sort` (vectorised; NaN sort last) and reads
+    numpy's linear interpolation from the sorted values in a compiled loop (same
+    order statistics, same arithmetic, so the same values as numpy.percentile);
     other methods go through numpy itself.
     """
     if method == "linear":
-        return _quartiles_linear(np.ascontiguousarray(block), MIN_FENCE_VALUES)
+        return _quartiles_sorted(np.sort(block, axis=1), MIN_FENCE_VALUES)
     nan = np.isnan(block)
     counts = block.shape[1] - nan.sum(axis=1)
     q = np.full((2, block.shape[0]), np.nan)
@@ -190,53 +209,6 @@ def _quartiles(block: np.ndarray, method: str) -> tuple[np.ndarray, np.ndarray]:
 
 
 @numba.njit(cache=True)
-def _select(a, lo, hi, k):
-    """Partially order a[lo:hi] so that a[k] is its k-th smallest (quickselect)."""
-    while hi - lo > 1:
-        mid = (lo + hi) // 2
-        # median of three as pivot
-        x, y, z = a[lo], a[mid], a[hi - 1]
-        if x > y:
-            x, y = y, x
-        if y > z:
-            y = z
-            if x > y:
-                y = x
-        pivot = y
-        i, j = lo, hi - 1
-        while i <= j:
-            while a[i] < pivot:
-                i += 1
-            while a[j] > pivot:
-                j -= 1
-            if i <= j:
-                a[i], a[j] = a[j], a[i]
-                i += 1
-                j -= 1
-        if k <= j:
-            hi = j + 1
-        elif k >= i:
-            lo = i
-        else:
-            return
-
-
-@numba.njit(cache=True)
-def _order_pair(a, m, q, lo):
-    """Values at the floor and next index of numpy's virtual index (m-1)*q."""
-    v = (m - 1) * q
-    prev = int(np.floor(v))
-    _select(a, lo, m, prev)
-    b = a[prev]
-    if prev + 1 < m:
-        b = a[prev + 1]
-        for i in range(prev + 2, m):
-            if a[i] < b:
-                b = a[i]
-    return prev, a[prev], b, v - prev
-
-
-@numba.njit(cache=True)
 def _lerp(a, b, g):
     # numpy's _lerp, same operations
     d = b - a
@@ -246,25 +218,29 @@ def _lerp(a, b, g):
 
 
 @numba.njit(cache=True)
-def _quartiles_linear(block, min_count):
-    n, w = block.shape
+def _pick(srt, r, m, q):
+    """numpy's `linear` percentile q of the first m (sorted) values of row r."""
+    v = (m - 1) * q
+    prev = int(np.floor(v))
+    a = srt[r, prev]
+    b = srt[r, prev + 1] if prev + 1 < m else a
+    return _lerp(a, b, v - prev)
+
+
+@numba.njit(cache=True)
+def _quartiles_sorted(srt, min_count):
+    """Q1 and Q3 of rows sorted ascending with NaN last (`numpy.sort` order)."""
+    n, w = srt.shape
     q1 = np.full(n, np.nan)
     q3 = np.full(n, np.nan)
-    buf = np.empty(w)
     for r in range(n):
-        m = 0
-        for c in range(w):
-            x = block[r, c]
-            if not np.isnan(x):
-                buf[m] = x
-                m += 1
+        m = w
+        while m > 0 and np.isnan(srt[r, m - 1]):
+            m -= 1
         if m < min_count:
             continue
-        p1, a1, b1, g1 = _order_pair(buf, m, 0.25, 0)
-        q1[r] = _lerp(a1, b1, g1)
-        # everything from p1 on is >= the Q1 order statistic: select Q3 there
-        _p3, a3, b3, g3 = _order_pair(buf, m, 0.75, p1)
-        q3[r] = _lerp(a3, b3, g3)
+        q1[r] = _pick(srt, r, m, 0.25)
+        q3[r] = _pick(srt, r, m, 0.75)
     return q1, q3
 
 
