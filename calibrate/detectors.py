@@ -8,10 +8,15 @@ detectors flag it; consecutive flagged hours form one episode.
 
 Because the fence flags for every k are a threshold on one score array, the
 episodes for a whole grid of multipliers come out of one compiled pass
-(`episodes_grid`), with no replay.
+(`episodes_grid`), with no replay. Flags only shrink as k grows, so that pass
+looks only at the hours flagged at the smallest k: each run of them is summed
+once and stands for one episode at every k until its shallowest hours drop out,
+where it splits into sub-runs (`episode_runs`).
 """
 
 from __future__ import annotations
+
+from typing import NamedTuple
 
 import numba
 import numpy as np
@@ -69,61 +74,254 @@ def _flatline_kernel(value, expected, iqr, hours, out):
 
 
 @numba.njit(cache=True)
-def _episodes_kernel(score, flat, value, expected, ks, min_det, fill, out_i, out_f):
-    """Scan every series for every multiplier; when `fill` is False only count."""
+def _flagged(score, flat, k, min_det):
+    cnt = 0
+    if score > k:  # NaN compares False: unscored hours never flag
+        cnt += 1
+    if flat:
+        cnt += 1
+    return cnt >= min_det
+
+
+@numba.njit(cache=True)
+def _candidates(score, flat, value, expected, sorted_ks, min_det):
+    """Every hour flagged at the smallest multiplier, in series then hour order.
+
+    Returns, per such hour: series, hour, depth (the hour is flagged at
+    ``sorted_ks[j]`` exactly when j < depth), fence depth (its fence score
+    exceeds ``sorted_ks[j]`` exactly when j < fence depth), fence score, flatline
+    flag, value and expected value. `sorted_ks` is ascending with NaN last (a NaN
+    k flags like +inf).
+    """
     n_s, n = score.shape
+    n_k = len(sorted_ks)
     m = 0
-    for g in range(len(ks)):
-        k = ks[g]
+    if n_k:
         for s in range(n_s):
-            start = -1
-            peak_h = -1
+            for t in range(n):
+                m += _flagged(score[s, t], flat[s, t], sorted_ks[0], min_det)
+    c_s = np.empty(m, dtype=np.int64)
+    c_t = np.empty(m, dtype=np.int64)
+    depth = np.empty(m, dtype=np.int64)
+    f_depth = np.empty(m, dtype=np.int64)
+    c_score = np.empty(m, dtype=np.float64)
+    c_flat = np.empty(m, dtype=np.bool_)
+    c_value = np.empty(m, dtype=np.float64)
+    c_expected = np.empty(m, dtype=np.float64)
+    c = 0
+    for s in range(n_s if m else 0):
+        for t in range(n):
+            sc, fl = score[s, t], flat[s, t]
+            if not _flagged(sc, fl, sorted_ks[0], min_det):
+                continue
+            # levels whose multiplier the score exceeds: a prefix of the sorted grid
+            lo, hi = 0, n_k
+            while lo < hi:
+                mid = (lo + hi) // 2
+                if sc > sorted_ks[mid]:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            f_depth[c] = lo
+            # flagged without the fence at every level, else exactly where it exceeds k
+            depth[c] = n_k if _flagged(np.nan, fl, 0.0, min_det) else lo
+            c_s[c], c_t[c], c_score[c], c_flat[c] = s, t, sc, fl
+            c_value[c], c_expected[c] = value[s, t], expected[s, t]
+            c += 1
+    return c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected
+
+
+@numba.njit(cache=True)
+def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, min_impact,
+                 start_lo, start_hi):
+    """The kept runs of flagged hours of a multiplier grid (see `episode_runs`).
+
+    A run of consecutive hours flagged at the smallest multiplier is one episode
+    for the levels (multipliers in increasing order) below its smallest depth;
+    there its shallowest hours drop out and it splits into sub-runs, each an
+    episode from that level on, and so on. Runs are found in pre-order (a run
+    before its sub-runs, sub-runs left to right), so at every level they come in
+    series then start order; each run drops at least one hour, so there are at
+    most as many runs as candidate hours.
+    """
+    n_k = len(sorted_ks)
+    c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected = _candidates(
+        score, flat, value, expected, sorted_ks, min_det
+    )
+    m = len(c_s)
+    ints = np.empty((8, m), dtype=np.int64)
+    floats = np.empty((3, m), dtype=np.float64)
+    st_a = np.empty(m, dtype=np.int64)  # stack of runs to visit: candidates [a, b)
+    st_b = np.empty(m, dtype=np.int64)
+    st_lo = np.empty(m, dtype=np.int64)  # and the level they start at
+    q = 0
+    a0 = 0
+    while a0 < m:
+        b0 = a0 + 1
+        while b0 < m and c_s[b0] == c_s[a0] and c_t[b0] == c_t[b0 - 1] + 1:
+            b0 += 1
+        st_a[0], st_b[0], st_lo[0] = a0, b0, 0
+        top = 1
+        while top:
+            top -= 1
+            a, b, lo = st_a[top], st_b[top], st_lo[top]
+            hi = n_k
+            peak_h = c_t[a]
             peak = -np.inf
             vsum = 0.0
             esum = 0.0
-            bits = 0
-            for t in range(n + 1):
-                f = False
-                b = 0
-                if t < n:
-                    sc = score[s, t]
-                    cnt = 0
-                    if sc > k:  # NaN compares False: unscored hours never flag
-                        cnt += 1
-                        b |= 1
-                    if flat[s, t]:
-                        cnt += 1
-                        b |= 2
-                    f = cnt >= min_det
-                if f:
-                    if start < 0:
-                        start = t
-                        peak_h = t
-                        peak = -np.inf
-                        vsum = 0.0
-                        esum = 0.0
-                        bits = 0
-                    sc = score[s, t]
-                    if not np.isnan(sc) and sc > peak:
-                        peak = sc
-                        peak_h = t
-                    vsum += value[s, t]
-                    esum += expected[s, t]
-                    bits |= b
-                elif start >= 0:
-                    if fill:
-                        out_i[m, 0] = g
-                        out_i[m, 1] = s
-                        out_i[m, 2] = start
-                        out_i[m, 3] = t
-                        out_i[m, 4] = peak_h
-                        out_i[m, 5] = bits
-                        out_f[m, 0] = peak if peak > -np.inf else np.nan
-                        out_f[m, 1] = vsum
-                        out_f[m, 2] = esum
-                    m += 1
-                    start = -1
-    return m
+            f_hi = 0
+            flat_bit = 0
+            for c in range(a, b):  # the same sums, in the same order, as an hour-by-hour scan
+                hi = min(hi, depth[c])
+                sc = c_score[c]
+                if not np.isnan(sc) and sc > peak:
+                    peak = sc
+                    peak_h = c_t[c]
+                vsum += c_value[c]
+                esum += c_expected[c]
+                f_hi = max(f_hi, f_depth[c])
+                if c_flat[c]:
+                    flat_bit = FLATLINE_BIT
+            if (start_lo <= c_t[a] < start_hi
+                    and (min_impact <= 0 or abs(vsum - esum) >= min_impact)):
+                ints[0, q] = c_s[a]
+                ints[1, q] = c_t[a]
+                ints[2, q] = c_t[b - 1] + 1
+                ints[3, q] = lo
+                ints[4, q] = hi
+                ints[5, q] = peak_h
+                ints[6, q] = f_hi
+                ints[7, q] = flat_bit
+                floats[0, q] = peak if peak > -np.inf else np.nan
+                floats[1, q] = vsum
+                floats[2, q] = esum
+                q += 1
+            # sub-runs of the hours deeper than hi, pushed right to left
+            c = b - 1
+            while c >= a:
+                if depth[c] > hi:
+                    end = c + 1
+                    while c >= a and depth[c] > hi:
+                        c -= 1
+                    st_a[top], st_b[top], st_lo[top] = c + 1, end, hi
+                    top += 1
+                else:
+                    c -= 1
+        a0 = b0
+    return ints[:, :q], floats[:, :q]
+
+
+@numba.njit(cache=True)
+def _write_kernel(ints, floats, order, out_i, out_f, row0):
+    """Write the rows of runs `ints`/`floats` from row `row0`, grid index by grid index.
+
+    Level by level, the runs of the level are those still open from the level
+    before (hi > j) merged, in run order, with those starting at it (lo == j).
+    """
+    n_k, n_runs = len(order), ints.shape[1]
+    per_level = np.zeros(n_k + 1, dtype=np.int64)
+    by_lo = np.zeros(n_k + 1, dtype=np.int64)
+    for q in range(n_runs):
+        per_level[ints[3, q]] += 1
+        per_level[ints[4, q]] -= 1
+        by_lo[ints[3, q] + 1] += 1
+    per_level = np.cumsum(per_level)
+    first_row = np.zeros(n_k, dtype=np.int64)
+    for j in range(n_k):
+        first_row[order[j]] = per_level[j]
+    row = row0
+    for g in range(n_k):
+        rows = first_row[g]
+        first_row[g] = row
+        row += rows
+    by_lo = np.cumsum(by_lo)
+    starting = np.empty(n_runs, dtype=np.int64)
+    fill = by_lo.copy()
+    for q in range(n_runs):
+        starting[fill[ints[3, q]]] = q
+        fill[ints[3, q]] += 1
+    open_runs = np.empty(n_runs, dtype=np.int64)
+    merged = np.empty(n_runs, dtype=np.int64)
+    n_open = 0
+    for j in range(n_k):
+        g = order[j]
+        r = first_row[g]
+        u = 0
+        v = by_lo[j]
+        n_new = 0
+        while u < n_open or v < by_lo[j + 1]:
+            if v == by_lo[j + 1] or (u < n_open and open_runs[u] < starting[v]):
+                q = open_runs[u]
+                u += 1
+                if ints[4, q] <= j:
+                    continue
+            else:
+                q = starting[v]
+                v += 1
+            merged[n_new] = q
+            n_new += 1
+            out_i[0, r] = g
+            out_i[1, r] = ints[0, q]
+            out_i[2, r] = ints[1, q]
+            out_i[3, r] = ints[2, q]
+            out_i[4, r] = ints[5, q]
+            out_i[5, r] = (FENCE_BIT if j < ints[6, q] else 0) | ints[7, q]
+            out_f[0, r] = floats[0, q]
+            out_f[1, r] = floats[1, q]
+            out_f[2, r] = floats[2, q]
+            r += 1
+        open_runs, merged = merged, open_runs
+        n_open = n_new
+
+
+class EpisodeRuns(NamedTuple):
+    """The episodes of a multiplier grid as runs of flagged hours, each spanning levels.
+
+    ``ints`` rows: series, start, end (exclusive), first and last-plus-one level
+    (index into the ascending grid ``ks[order]``), peak hour, fence levels (the
+    fence bit is set below it), flatline bit; ``floats`` rows: peak fence score,
+    sum of values, sum of expected values. `n_rows` is the number of episodes.
+    """
+
+    ints: np.ndarray
+    floats: np.ndarray
+    order: np.ndarray
+    n_rows: int
+
+    def write(self, out_i: np.ndarray, out_f: np.ndarray, row0: int = 0) -> None:
+        """Write the episodes into columns ``out_i`` (6, n) and ``out_f`` (3, n) from
+        column `row0` on, in `episodes_grid` order."""
+        _write_kernel(self.ints, self.floats, self.order, out_i, out_f, row0)
+
+
+def episode_runs(
+    score: np.ndarray,
+    flat: np.ndarray,
+    value: np.ndarray,
+    expected: np.ndarray,
+    ks: np.ndarray,
+    min_detectors: int,
+    min_impact: float = 0.0,
+    start_hours: tuple[int, int] | None = None,
+) -> EpisodeRuns:
+    """Episodes of (n_series, n_hours) arrays for every multiplier in `ks`, as runs.
+
+    Parameters as `episodes_grid`; the rows themselves are written by
+    `EpisodeRuns.write`, so that several tables can share one output.
+    """
+    score = np.ascontiguousarray(np.atleast_2d(score), dtype=np.float64)
+    flat = np.ascontiguousarray(np.atleast_2d(flat), dtype=np.bool_)
+    value = np.ascontiguousarray(np.atleast_2d(value), dtype=np.float64)
+    expected = np.ascontiguousarray(np.atleast_2d(expected), dtype=np.float64)
+    ks = np.ascontiguousarray(np.atleast_1d(ks), dtype=np.float64)
+    order = np.argsort(ks, kind="stable")  # NaN sorts last
+    lo, hi = (0, score.shape[1]) if start_hours is None else start_hours
+    ints, floats = _runs_kernel(
+        score, flat, value, expected, ks[order], int(min_detectors), float(min_impact),
+        int(lo), int(hi),
+    )
+    return EpisodeRuns(ints, floats, order, int((ints[4] - ints[3]).sum()))
 
 
 def episodes_grid(
@@ -133,29 +331,39 @@ def episodes_grid(
     expected: np.ndarray,
     ks: np.ndarray,
     min_detectors: int,
+    min_impact: float = 0.0,
+    start_hours: tuple[int, int] | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Episodes of (n_series, n_hours) arrays for every multiplier in `ks`.
+
+    Parameters
+    ----------
+    score, flat, value, expected : ndarray (n_series, n_hours)
+        Fence scores, flatline flags, metric values and expected values.
+    ks : array of float
+        Multiplier grid (any order).
+    min_detectors : int
+    min_impact : float
+        When > 0, drop episodes whose |sum of values - sum of expected| is below it
+        (or NaN); 0 keeps every episode.
+    start_hours : (int, int), optional
+        Keep only episodes starting in ``[start, end)`` (episodes are still found
+        over all hours).
 
     Returns
     -------
     ints : ndarray (m, 6) of int64
-        grid index, series, start, end (exclusive), peak hour, detector bits.
+        grid index, series, start, end (exclusive), peak hour, detector bits;
+        rows ordered by grid index, series, start.
     floats : ndarray (m, 3) of float64
-        peak fence score, sum of values, sum of expected values.
-    The `min_impact` filter is not applied here (it does not change flags).
+        peak fence score (NaN if none), sum of values, sum of expected values.
+    Both are column-major (each column is contiguous).
     """
-    score = np.ascontiguousarray(np.atleast_2d(score), dtype=np.float64)
-    flat = np.ascontiguousarray(np.atleast_2d(flat), dtype=np.bool_)
-    value = np.ascontiguousarray(np.atleast_2d(value), dtype=np.float64)
-    expected = np.ascontiguousarray(np.atleast_2d(expected), dtype=np.float64)
-    ks = np.ascontiguousarray(np.atleast_1d(ks), dtype=np.float64)
-    dummy_i = np.empty((0, 6), dtype=np.int64)
-    dummy_f = np.empty((0, 3), dtype=np.float64)
-    m = _episodes_kernel(score, flat, value, expected, ks, min_detectors, False, dummy_i, dummy_f)
-    ints = np.empty((m, 6), dtype=np.int64)
-    floats = np.empty((m, 3), dtype=np.float64)
-    _episodes_kernel(score, flat, value, expected, ks, min_detectors, True, ints, floats)
-    return ints, floats
+    runs = episode_runs(score, flat, value, expected, ks, min_detectors, min_impact, start_hours)
+    out_i = np.empty((6, runs.n_rows), dtype=np.int64)
+    out_f = np.empty((3, runs.n_rows), dtype=np.float64)
+    runs.write(out_i, out_f)
+    return out_i.T, out_f.T
 
 
 def detector_names(bits: np.ndarray) -> np.ndarray:

@@ -16,8 +16,8 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from calibrate.decompose import Stream, fence_scores, remainder_stream
-from calibrate.detectors import detector_names, episodes_grid, flatline_flags
-from calibrate.episodes import Episodes
+from calibrate.detectors import episode_runs, flatline_flags
+from calibrate.episodes import CodedEpisodes, Episodes
 from calibrate.executors import Executor, SerialExecutor, batched
 from calibrate.history import History
 from calibrate.settings import DetectorConfig, DetectorSettings
@@ -271,46 +271,64 @@ def sweep(
     Returns
     -------
     Episodes
-        With `grid` the index into `ks`.
+        With `grid` the index into `ks`. With `ks` None sorted by start, then
+        (level, metric), then series; with a grid in `sweep_codes` order.
     """
-    parts, codes = [], []
-    code = {key: i for i, key in enumerate(sorted(scores))}  # (level, metric) order
-    for (lv, m), ms in scores.items():
-        grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
-        ints, floats = episodes_grid(
-            ms.score, ms.flat, ms.value, ms.expected, grid, ms.settings.min_detectors
-        )
-        if apply_min_impact and ms.settings.min_impact > 0:
-            keep = np.abs(floats[:, 1] - floats[:, 2]) >= ms.settings.min_impact
-            ints, floats = ints[keep], floats[keep]
-        k = len(ints)
-        codes.append(np.full(k, code[(lv, m)], dtype=np.int64))
-        team = np.full(k, "", dtype=object)
-        if routes and lv in routes:
-            team = np.asarray(routes[lv], dtype=object)[ints[:, 1]]
-        parts.append(
-            Episodes(
-                level=np.full(k, lv, dtype=object),
-                series=ints[:, 1],
-                metric=np.full(k, m, dtype=object),
-                start=ints[:, 2],
-                end=ints[:, 3],
-                peak_hour=ints[:, 4],
-                peak_score=floats[:, 0],
-                value=floats[:, 1],
-                expected=floats[:, 2],
-                detectors=detector_names(ints[:, 5]),
-                team=team,
-                grid=ints[:, 0],
-            )
-        )
-    eps = Episodes.concat(parts)
+    eps = sweep_codes(scores, ks, routes, apply_min_impact)
     if len(eps) and ks is None:  # a grid sweep feeds counts only: no order needed
-        # integer codes: sorting object arrays of text is the slow part of a sweep
-        part_code = np.concatenate(codes)
-        order = np.lexsort((eps.series, part_code, eps.start, eps.grid))
-        eps = eps.take(order)
-    return eps
+        rank = {key: i for i, key in enumerate(sorted(scores))}
+        part_code = np.array([rank[key] for key in eps.pairs], dtype=np.int64)[eps.pair]
+        eps = eps.take(np.lexsort((eps.series, part_code, eps.start, eps.grid)))
+    return eps.decode()
+
+
+def sweep_codes(
+    scores: dict[tuple[str, str], MetricScores],
+    ks: np.ndarray | None,
+    routes: dict[str, np.ndarray] | None = None,
+    apply_min_impact: bool = True,
+    start_hours: tuple[int, int] | None = None,
+) -> CodedEpisodes:
+    """`sweep` with the text columns as integer codes (what the search counts).
+
+    Rows come (level, metric) by (level, metric) in `scores` order, each as
+    `episodes_grid` gives them (grid index, series, start). With `start_hours`
+    ``(start, end)`` only episodes starting in ``[start, end)`` are kept, as
+    `scoring.period_filter` would.
+    """
+    routes = routes or {}
+    names = [t for lv in routes for t in np.asarray(routes[lv]).tolist()]
+    teams = tuple(dict.fromkeys(["", *names]))
+    team_pos = {t: i for i, t in enumerate(teams)}
+    team_of = {
+        lv: np.array([team_pos[t] for t in np.asarray(r).tolist()], dtype=np.int64)
+        for lv, r in routes.items()
+    }
+    runs = []
+    for (_lv, _m), ms in scores.items():
+        grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
+        min_impact = ms.settings.min_impact if apply_min_impact else 0.0
+        runs.append(episode_runs(ms.score, ms.flat, ms.value, ms.expected, grid,
+                                 ms.settings.min_detectors, min_impact, start_hours))
+    # every (level, metric) writes its rows straight into one table
+    n = sum(r.n_rows for r in runs)
+    ints = np.empty((6, n), dtype=np.int64)
+    floats = np.empty((3, n), dtype=np.float64)
+    pair = np.empty(n, dtype=np.int64)
+    team = np.zeros(n, dtype=np.int64)
+    row = 0
+    for p, ((lv, _m), r) in enumerate(zip(scores, runs, strict=True)):
+        r.write(ints, floats, row)
+        part = slice(row, row + r.n_rows)
+        pair[part] = p
+        if lv in team_of:
+            team[part] = team_of[lv][ints[1, part]]
+        row += r.n_rows
+    return CodedEpisodes(
+        pair=pair, series=ints[1], start=ints[2], end=ints[3], peak_hour=ints[4],
+        peak_score=floats[0], value=floats[1], expected=floats[2], bits=ints[5],
+        team_code=team, grid=ints[0], pairs=tuple(scores), teams=teams,
+    )
 
 
 def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:

@@ -22,11 +22,12 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any, TypeVar
 
+import numba
 import numpy as np
 import pandas as pd
 from statsmodels.stats.proportion import proportion_confint
 
-from calibrate.episodes import Episodes
+from calibrate.episodes import CodedEpisodes, Episodes
 from calibrate.errors import InputError
 from calibrate.history import History
 from calibrate.incidents import (
@@ -43,6 +44,7 @@ from calibrate.workspace import Goal, Workspace
 Table = TypeVar("Table", Episodes, Incidents)
 ANY_LABEL = "(any)"
 ALERT_COLUMNS = ("alert_id", "level", "metric", "start", "end")
+ANY_METRIC_CODE = -2  # metric code of an incident that counts for any metric
 
 
 # --------------------------------------------------------------------------- seams
@@ -191,40 +193,83 @@ def match(
 
 
 def _overlap_pairs(
-    episodes: Episodes, incidents: Incidents, early: int, late: int
+    episodes: Episodes | CodedEpisodes, incidents: Incidents, early: int, late: int
 ) -> tuple[np.ndarray, np.ndarray]:
     """All (episode, incident) pairs that meet, sorted by incident then episode."""
     n_ep, n_inc = len(episodes), len(incidents)
     if n_ep == 0 or n_inc == 0:
         return np.array([], dtype=np.int64), np.array([], dtype=np.int64)
-    codes, _ = pd.factorize(np.concatenate([episodes.level, incidents.level]).astype(str))
-    width = int(max(episodes.series.max(), incidents.series.max())) + 1
-    ep_code = codes[:n_ep].astype(np.int64) * width + episodes.series
-    inc_code = codes[n_ep:].astype(np.int64) * width + incidents.series
-    order = np.lexsort((episodes.start, ep_code))
-    code_sorted = ep_code[order]
-    start_sorted = episodes.start[order]
-    lo = np.searchsorted(code_sorted, inc_code, side="left")
-    hi = np.searchsorted(code_sorted, inc_code, side="right")
-    out_a: list[np.ndarray] = []
-    out_i: list[np.ndarray] = []
+    ep_level, levels = _codes(episodes, "level")
+    ep_metric, metrics = _codes(episodes, "metric")
+    inc_metric = np.where(
+        incidents.metric == ANY_METRIC, ANY_METRIC_CODE, _lookup(metrics, incidents.metric)
+    )
+    return _pairs_kernel(
+        ep_level, np.asarray(episodes.series, dtype=np.int64), ep_metric,
+        np.asarray(episodes.start, dtype=np.int64), np.asarray(episodes.end, dtype=np.int64),
+        _lookup(levels, incidents.level), np.asarray(incidents.series, dtype=np.int64),
+        inc_metric.astype(np.int64), incidents.start - early, incidents.end + late, len(levels),
+    )
+
+
+@numba.njit(cache=True)
+def _pairs_kernel(ep_level, ep_series, ep_metric, ep_start, ep_end, inc_level, inc_series,
+                  inc_metric, win_lo, win_hi, n_levels):
+    """`_overlap_pairs` on integer codes (incident level -1: no episode has it)."""
+    n_ep, n_inc = len(ep_level), len(inc_level)
+    width = max(ep_series.max(), inc_series.max()) + 1
+    # incidents grouped by (level, series), each group in incident order
+    head = np.zeros(n_levels * width + 1, dtype=np.int64)
     for i in range(n_inc):
-        if lo[i] == hi[i]:
-            continue
-        win_lo = incidents.start[i] - early
-        win_hi = incidents.end[i] + late
-        # starts are sorted within one series, so the window's right edge bounds the slice
-        stop = lo[i] + np.searchsorted(start_sorted[lo[i]:hi[i]], win_hi, side="left")
-        cand = order[lo[i]:stop]
-        cand = cand[episodes.end[cand] > win_lo]
-        if incidents.metric[i] != ANY_METRIC:
-            cand = cand[episodes.metric[cand] == incidents.metric[i]]
-        if len(cand):
-            out_a.append(np.sort(cand))
-            out_i.append(np.full(len(cand), i, dtype=np.int64))
-    if not out_a:
-        return np.array([], dtype=np.int64), np.array([], dtype=np.int64)
-    return np.concatenate(out_a).astype(np.int64), np.concatenate(out_i)
+        if inc_level[i] >= 0:
+            head[inc_level[i] * width + inc_series[i] + 1] += 1
+    head = np.cumsum(head)
+    members = np.empty(head[-1], dtype=np.int64)
+    fill = head.copy()
+    for i in range(n_inc):
+        if inc_level[i] >= 0:
+            key = inc_level[i] * width + inc_series[i]
+            members[fill[key]] = i
+            fill[key] += 1
+    # step 0 counts each incident's pairs, step 1 places them incident by incident;
+    # walking the episodes in order sorts each incident's pairs by episode
+    pos = np.zeros(n_inc + 1, dtype=np.int64)
+    pa = np.empty(0, dtype=np.int64)
+    pi = np.empty(0, dtype=np.int64)
+    for step in range(2):
+        if step:
+            pos = np.cumsum(pos)
+            pa = np.empty(pos[-1], dtype=np.int64)
+            pi = np.empty(pos[-1], dtype=np.int64)
+        for e in range(n_ep):
+            key = ep_level[e] * width + ep_series[e]
+            for q in range(head[key], head[key + 1]):
+                i = members[q]
+                if (ep_start[e] < win_hi[i] and ep_end[e] > win_lo[i]
+                        and (inc_metric[i] == ANY_METRIC_CODE or inc_metric[i] == ep_metric[e])):
+                    if step:
+                        pa[pos[i]] = e
+                        pi[pos[i]] = i
+                        pos[i] += 1
+                    else:
+                        pos[i + 1] += 1
+    return pa, pi
+
+
+def _codes(table: Episodes | CodedEpisodes, column: str) -> tuple[np.ndarray, tuple]:
+    """Integer codes of a text column and the names they index."""
+    if isinstance(table, CodedEpisodes):
+        if column == "team":
+            return table.team_code, table.teams
+        return table.level_codes() if column == "level" else table.metric_codes()
+    codes, names = pd.factorize(getattr(table, column), use_na_sentinel=False)
+    return codes.astype(np.int64), tuple(names)
+
+
+def _lookup(names: tuple, values: np.ndarray) -> np.ndarray:
+    """Position of each value in `names`, -1 when absent."""
+    pos = {n: i for i, n in enumerate(names)}
+    return np.array([pos.get(v, -1) for v in values], dtype=np.int64)
 
 
 def _related_pairs(
@@ -648,7 +693,7 @@ def multiplier_curve(
 
     Parameters
     ----------
-    episodes_by_grid : Episodes
+    episodes_by_grid : Episodes or CodedEpisodes
         Episodes of all multipliers in one table; ``grid`` = index into `ks`.
     ks : array of float
     incidents : Incidents
@@ -681,8 +726,11 @@ def multiplier_curve(
     alerts = np.bincount(grid, minlength=n_k).astype(np.int64)
     true_alerts = np.bincount(grid[alert_true], minlength=n_k).astype(np.int64)
 
-    teams = tuple(dict.fromkeys([*teams_analysts, *sorted(set(ep.team.tolist()))]))
-    tp = pd.Index(teams).get_indexer(ep.team.astype(object)).astype(np.int64)
+    team_code, team_names = _codes(ep, "team")
+    present = np.flatnonzero(np.bincount(team_code, minlength=len(team_names)))
+    teams = tuple(dict.fromkeys([*teams_analysts, *sorted(team_names[i] for i in present)]))
+    pos = {t: i for i, t in enumerate(teams)}
+    tp = np.array([pos.get(t, -1) for t in team_names], dtype=np.int64)[team_code]
     cell = grid * len(teams) + tp
     size = n_k * len(teams)
     team_alerts = np.bincount(cell, minlength=size).reshape(n_k, len(teams))

@@ -3,10 +3,10 @@
 Optuna drives the structural settings (windows, spans, flatline hours, minimum
 impact, ...); the fence multiplier is never searched. For each trial the
 `Replayer` computes fence scores (cached remainder streams: only settings that
-change the decomposition refit), `sweep` turns them into the episodes of a whole
-multiplier grid at once, `multiplier_curve` scores every grid point on the tuning
-hours, and `solve_multiplier` picks the largest multiplier meeting the miss-rate
-target and every team's alert budget.
+change the decomposition refit), `sweep_codes` turns them into the episodes of a
+whole multiplier grid at once (text columns as integer codes), `multiplier_curve`
+scores every grid point on the tuning hours, and `solve_multiplier` picks the
+largest multiplier meeting the miss-rate target and every team's alert budget.
 
 Objective (minimised): alerts per analyst per day over all teams at the solved
 multiplier, i.e. ``(alerts + KNOWN_FALSE_PENALTY * known_false_alerts) /
@@ -57,7 +57,7 @@ from calibrate.api import Session
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import Executor
 from calibrate.incidents import Incidents
-from calibrate.replay import MetricScores, Replayer, sweep
+from calibrate.replay import MetricScores, Replayer, sweep_codes
 from calibrate.scoring import (
     Curve,
     Figures,
@@ -297,8 +297,8 @@ class Evaluator:
 
     def curve(self, scores: dict[tuple[str, str], MetricScores]) -> tuple[Curve, np.ndarray, Any]:
         """Curve on the tuning hours, known-false alerts per k, and the episodes."""
-        eps = period_filter(sweep(scores, self.ks, self.replayer.routes),
-                            self.first_hour, self.split_hour)
+        eps = sweep_codes(scores, self.ks, self.replayer.routes,
+                          start_hours=(self.first_hour, self.split_hour))
         ws = self.ses.ws
         c = multiplier_curve(eps, self.ks, self.incidents, ws.incidents.early_hours,
                              ws.incidents.late_hours, self.ses.analysts, self.n_days)
