@@ -153,3 +153,30 @@ def test_compiled_quartiles_bitwise_equal_numpy(w):
             continue
         ref = np.percentile(row, [25, 75])
         assert q1[r] == ref[0] and q3[r] == ref[1]
+
+
+@pytest.mark.parametrize("sides", ["up", "down", "both"])
+def test_fence_scores_match_numpy_formula(sides):
+    # Reference: the fence score written with plain numpy array operations (DESIGN.md
+    # definition): (r - Q3)/IQR up, (Q1 - r)/IQR down, inf/0 at IQR = 0, NaN if undefined.
+    from calibrate.decompose import fence_scores
+
+    rng = np.random.default_rng(5)
+    r = rng.normal(size=(40, 300))
+    q1 = -np.abs(rng.normal(size=r.shape))
+    q3 = np.abs(rng.normal(size=r.shape))
+    q1[:, ::9] = q3[:, ::9]  # IQR = 0
+    r[::5, ::7] = np.nan
+    q1[::3, ::11] = np.nan
+    q3[:, ::13] = np.inf
+    q1[:, ::26] = -np.inf
+    iqr = q3 - q1
+    with np.errstate(divide="ignore", invalid="ignore"):
+        up = np.where(iqr == 0, np.where(r > q3, np.inf, 0.0), (r - q3) / iqr)
+        down = np.where(iqr == 0, np.where(r < q1, np.inf, 0.0), (q1 - r) / iqr)
+    want = {"up": up, "down": down, "both": np.maximum(up, down)}[sides]
+    want = np.where(np.isnan(r) | np.isnan(q1) | np.isnan(q3), np.nan, want)
+    got = fence_scores(r, q1, q3, sides)
+    assert got.shape == r.shape
+    np.testing.assert_array_equal(got, want)
+    assert np.array_equal(fence_scores(r[0], q1[0], q3[0], sides), want[0], equal_nan=True)
