@@ -37,7 +37,7 @@ import pandas as pd
 from calibrate import api
 from calibrate.errors import CalibrationError
 from calibrate.incidents import ANY_METRIC
-from calibrate.replay import MetricScores, ReplayResult, sweep
+from calibrate.replay import MetricScores, ReplayResult, sweep_codes
 from calibrate.scoring import match, multiplier_curve, period_filter
 from calibrate.settings import DetectorConfig
 
@@ -440,7 +440,7 @@ def curve_data(
     k0 = chosen.config.base.fence_multiplier
     lo, hi = min(s.multiplier_low, k0), max(s.multiplier_high, k0)
     ks = np.unique(np.r_[np.geomspace(max(lo, 1e-3), hi, CURVE_POINTS), k0])
-    eps = period_filter(sweep(chosen.scores, ks, chosen.routes), start, end)
+    eps = sweep_codes(chosen.scores, ks, chosen.routes, start_hours=(start, end))
     inc = period_filter(ses.incidents, start, end)
     c = multiplier_curve(eps, ks, inc, ses.ws.incidents.early_hours,
                          ses.ws.incidents.late_hours, ses.analysts, max(end - start, 1) / 24.0)

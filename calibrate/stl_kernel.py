@@ -10,10 +10,11 @@ same machine. Two changes keep the bits and remove the cost:
 - in the sliding part of each LOESS pass, four neighbouring output points are computed
   together. Each point keeps its own sums in statsmodels' order, so the bits do not
   change; the four independent chains just let the CPU overlap them;
-- in the prepared-weights kernel, the normalisation ``w / a`` of every weight of one
-  output point divides by the same ``a``: it is computed from ``y = 1/a`` (one true
-  division per point) with two fused multiply-add corrections, which returns the
-  correctly rounded quotient, i.e. the same bits as the division (`exact_div`).
+- divisions by a value shared by many quotients (the normalisation ``w / a`` of every
+  LOESS weight of one output point, the moving averages' ``v / len``, the robustness
+  weights' ``r / (6 * median)``) use ``y = 1/a`` once and two fused multiply-add
+  corrections, which return the correctly rounded quotient, i.e. the same bits as the
+  division (`exact_div`).
 
 Public API: `stl_config`, `stl_fit`, `stl_fit_windows`, `mstl_fit`, `linear_smoother`,
 `trend_matrix`, `seasonal_matrix`.
@@ -66,9 +67,13 @@ def exact_div(x, a, y):
     quotient by Markstein's theorem (P. Markstein, IBM J. Res. Dev. 34(1), 1990; also in
     Muller et al., *Handbook of Floating-Point Arithmetic*, ch. on division -- cited from
     memory): if ``q`` is faithful and ``y`` is ``1/a`` within relative error 2**-53, then
-    ``RN(q + RN(x - a*q)*y) = RN(x/a)``. Needs no underflow or overflow: here ``x`` is a
-    product of a tricube and a robustness weight (0 or at least about 1e-13) and ``a`` a
-    sum of them; ``0/0`` still gives NaN. Tested against ``/`` in tests/test_stl_kernel.py.
+    ``RN(q + RN(x - a*q)*y) = RN(x/a)``. Needs no underflow or overflow and ``x`` not
+    ``-0.0``: in the LOESS weights ``x`` is a product of a tricube and a robustness
+    weight (0 or at least about 1e-13) and ``a`` a sum of them (``0/0`` still gives
+    NaN); in the moving averages and robustness weights ``x`` is a running sum of data or
+    an absolute residual, so the same bits hold for data between about 1e-290 and 1e300
+    in magnitude (hourly business metrics). Tested against ``/`` in
+    tests/test_stl_kernel.py.
     """
     q = x * y
     r = _fma(-q, a, x)
@@ -416,15 +421,16 @@ def _ma(x, n, len_, ave):
     """Moving average of length ``len_`` over ``x[:n]`` (running sum, as statsmodels)."""
     newn = n - len_ + 1
     flen = float(len_)
+    inv = 1.0 / flen
     v = 0.0
     for i in range(len_):
         v = v + x[i]
-    ave[0] = v / flen
+    ave[0] = exact_div(v, flen, inv)
     k = len_
     m = 0
     for j in range(1, newn):
         v += x[k] - x[m]
-        ave[j] = v / flen
+        ave[j] = exact_div(v, flen, inv)
         k += 1
         m += 1
 
@@ -513,12 +519,13 @@ def _rwts(y, n, fit, rw, buf):
         return
     c9 = 0.999 * cmad
     c1 = 0.001 * cmad
+    inv = 1.0 / cmad
     for i in range(n):
         r = rw[i]
         if r <= c1:
             rw[i] = 1.0
         elif r <= c9:
-            q = r / cmad
+            q = exact_div(r, cmad, inv)
             q = 1.0 - q * q
             rw[i] = q * q
         else:

@@ -434,8 +434,11 @@ def test_exact_div_equals_ieee_division() -> None:
     a2 = np.nextafter(2.0 ** rng.integers(-8, 8, n), 0.0) * (1 - rng.integers(0, 8, n) * 2.0**-52)
     x2 = np.nextafter(2.0 ** rng.integers(-30, 0, n), np.inf) * a2
     tiny = np.array([1e-13, 2.7e-8 * 4e-6, 1.0, 0.5, 0.0])
-    xs = np.concatenate([x, x2, tiny])
-    as_ = np.concatenate([a, a2, np.array([1e-13, 1.0, 3.0, 47.0, 5.0])])
+    # moving averages: signed running sums over lengths 3..169; data from 1e-280 to 1e290
+    a3 = rng.integers(3, 170, n).astype(float)
+    x3 = rng.choice([-1.0, 1.0], n) * 10.0 ** rng.uniform(-280, 290, n)
+    xs = np.concatenate([x, x2, tiny, x3])
+    as_ = np.concatenate([a, a2, np.array([1e-13, 1.0, 3.0, 47.0, 5.0]), a3])
     out = np.empty_like(xs)
     _exact_div_all(xs, as_, out)
     assert np.array_equal(out.view(np.int64), (xs / as_).view(np.int64))
