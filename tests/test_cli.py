@@ -126,3 +126,19 @@ def test_errors_are_one_line(ws, capsys, args, needle):
     assert main(args) == 1
     err = capsys.readouterr().err.strip()
     assert needle in err and "\n" not in err and "Traceback" not in err
+
+
+def test_python_dash_m_runs_the_same_cli(tmp_path) -> None:
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    env = {"PYTHONPATH": str(root), "PATH": "/usr/bin:/bin"}
+    ok = subprocess.run([sys.executable, "-m", "calibrate", "--help"], capture_output=True,
+                        text=True, env=env, cwd=tmp_path)
+    assert ok.returncode == 0 and "demo" in ok.stdout
+    bad = subprocess.run([sys.executable, "-m", "calibrate", "check", str(tmp_path / "no.toml")],
+                         capture_output=True, text=True, env=env, cwd=tmp_path)
+    assert bad.returncode != 0
+    assert "no.toml" in bad.stderr and "Traceback" not in bad.stderr
