@@ -79,6 +79,7 @@ STUDY_FILE = ".calibrate/study.journal"
 BUDGET_STATES = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNED)
 INVALID = 1e9  # constraint value of a pruned (invalid) combination
 MAX_PRECOMPUTED_WINDOWS = 64
+JOINER_SEED_OFFSET = 1_000_003
 
 
 # --------------------------------------------------------------------------- space
@@ -673,7 +674,10 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         existing = optuna.load_study(study_name=name, storage=store)
         created = False
     n_before = len(existing.get_trials(deepcopy=False))
-    seed = ses.ws.search.seed + n_before  # deterministic for one process's runs
+    # deterministic for one process's runs; a process joining a study another one created
+    # (two tune processes started together) gets a different seed, so the two do not
+    # propose the same settings side by side
+    seed = ses.ws.search.seed + n_before + (0 if created else JOINER_SEED_OFFSET)
     sampler = optuna.samplers.TPESampler(
         seed=seed, **({} if SET_CONSTRAINT else {"constraints_func": _constraints}))
     study = optuna.load_study(study_name=name, storage=store, sampler=sampler)

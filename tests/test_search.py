@@ -248,3 +248,25 @@ def test_holdout_warning_uses_the_wilson_upper_bound(ses):
                    recall=0.0, recall_low=0.0, recall_high=0.1135134)
     assert search.holdout_warning(figs, Goal(max_miss_rate=0.85)) != ""  # target 0.15 > 0.1135
     assert search.holdout_warning(figs, Goal(max_miss_rate=0.9)) == ""  # target 0.10 < 0.1135
+
+
+def test_a_process_joining_a_study_samples_with_another_seed(ses, tmp_path, monkeypatch):
+    # Two tune processes started together: the one that creates the study and the one
+    # that joins it must not run identical samplers (they would propose the same
+    # settings side by side). A resumed run stays deterministic (seed from the inputs).
+    seeds = []
+    real = optuna.samplers.TPESampler
+
+    def recording(*args, **kw):
+        if "seed" in kw:  # optuna's own default samplers are made without one
+            seeds.append(kw["seed"])
+        return real(*args, **kw)
+
+    monkeypatch.setattr(search.optuna.samplers, "TPESampler", recording)
+    store = str(tmp_path / "shared.journal")
+    search.tune(ses, trials=2, storage=store, engine="serial", progress=False)
+    search.tune(ses, trials=3, storage=store, engine="serial", progress=False)
+    base = ses.ws.search.seed
+    assert seeds[0] == base  # creator, empty study
+    assert seeds[1] == base + 2 + search.JOINER_SEED_OFFSET  # joiner after 2 trials
+    assert seeds[0] != seeds[1]
