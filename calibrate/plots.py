@@ -107,6 +107,8 @@ def multiplier_png(data: CurveData) -> bytes:
     top.set_ylabel("recall", fontsize=9)
     top.legend(fontsize=7.5, loc="lower left", framealpha=0.9)
     chosen = "" if data.chosen_k is None else f" (chosen k = {data.chosen_k:.3g}, red line)"
+    if data.per_group:
+        chosen = " for every group at once (chosen: one k per group, see the settings)"
     top.set_title(f"Moving the fence multiplier k{chosen}", fontsize=10, loc="left")
     for j, team in enumerate(data.teams):
         bottom.step(ks, data.team_rate[j], where="post", linewidth=1.4,

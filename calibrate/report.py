@@ -116,6 +116,7 @@ class CurveData:
     budgets: list[float | None]
     target_recall: float
     chosen_k: float | None
+    per_group: bool = False  # groups have their own multipliers: the curve moves one k for all
 
 
 @dataclass
@@ -438,6 +439,7 @@ def curve_data(
     """Recall and alerts per analyst per day for a grid of multipliers (one sweep)."""
     s = ses.ws.search
     k0 = chosen.config.base.fence_multiplier
+    per_group = any(g.settings.fence_multiplier != k0 for g in chosen.config.groups)
     lo, hi = min(s.multiplier_low, k0), max(s.multiplier_high, k0)
     ks = np.unique(np.r_[np.geomspace(max(lo, 1e-3), hi, CURVE_POINTS), k0])
     eps = sweep_codes(chosen.scores, ks, chosen.routes, start_hours=(start, end))
@@ -457,7 +459,8 @@ def curve_data(
         team_rate=[_floats(c.alerts_per_analyst_day[:, pos[t]]) for t in shown],
         budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
         target_recall=1.0 - ses.ws.goal.max_miss_rate,
-        chosen_k=k0,
+        chosen_k=None if per_group else k0,
+        per_group=per_group,
     )
 
 

@@ -131,6 +131,23 @@ def test_multiplier_curve_agrees_with_figures_at_the_chosen_k(ses, chosen_config
     assert all(np.diff(data.curve.alerts) <= 0)
 
 
+def test_per_group_multipliers_are_not_drawn_as_one_chosen_k(ses, chosen_config) -> None:
+    from dataclasses import replace
+
+    from calibrate.settings import DetectorGroup
+
+    lv = next(iter(ses.history.levels))
+    group = DetectorGroup(name="loose", levels=(lv,),
+                          settings=replace(chosen_config.base, fence_multiplier=6.0))
+    grouped = replace(chosen_config, groups=(group,))
+    data = build_report_data(ses, _replay(ses, grouped), first_hour=200, split_hour=SPLIT)
+    assert data.curve.per_group and data.curve.chosen_k is None
+    same = replace(chosen_config, groups=(replace(group, settings=chosen_config.base),))
+    data = build_report_data(ses, _replay(ses, same), first_hour=200, split_hour=SPLIT)
+    assert not data.curve.per_group
+    assert data.curve.chosen_k == chosen_config.base.fence_multiplier
+
+
 def test_missed_incident_gets_a_panel_with_its_window(ses) -> None:
     # a wide fence misses the subtle incident I5 (and maybe others)
     rep = _replay(ses, ses.ws.detector.with_base(fence_multiplier=8.0))
