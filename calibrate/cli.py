@@ -104,6 +104,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("workspace")
     p.add_argument("--config", required=True)
     p.add_argument("--out", required=True, help="report folder")
+    p.add_argument("--force", action="store_true", help="replace an existing report folder")
     _engine_args(p)
 
     p = sub.add_parser("retune", help="merge analysts' verdicts and tune again")

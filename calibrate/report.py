@@ -1105,7 +1105,7 @@ def cli_report(args: Any) -> int:
 
     out = Path(args.out)
     if out.exists() and not getattr(args, "force", False):
-        raise CalibrationError(f"{out}: already exists; choose a new report folder")
+        raise CalibrationError(f"{out}: already exists; choose a new report folder or pass --force")
     ses = api.open_session(args.workspace)
     if ses.incidents is None:
         raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")

@@ -207,6 +207,24 @@ def test_cli_report_refuses_an_existing_folder(ses, tmp_path: Path) -> None:
                            scheduler=None)
     with pytest.raises(CalibrationError, match="already exists"):
         cli_report(args)
+    assert not any((tmp_path / "old").iterdir())
+
+
+def test_cli_report_force_replaces_the_folder(ses, chosen_config, tmp_path: Path) -> None:
+    from calibrate.cli import main
+    from calibrate.outputs import write_config
+
+    cfg = tmp_path / "chosen.toml"
+    write_config(cfg, chosen_config, {})
+    out = tmp_path / "rep"
+    out.mkdir()
+    (out / "stale.txt").write_text("old")
+    argv = ["report", str(ses.ws.file), "--config", str(cfg), "--out", str(out),
+            "--engine", "serial"]
+    assert main(argv) == 1  # refused without --force, nothing touched
+    assert (out / "stale.txt").exists()
+    assert main([*argv, "--force"]) == 0
+    assert (out / "index.html").is_file()
 
 
 def test_review_frame_sorted_with_blank_verdicts(ses) -> None:
