@@ -133,18 +133,10 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     if h == 1:
         # every hour is a refit: the stream is the fit's own in-sample remainders
         stream = resid[:, :wmax]
-        bad_hours = np.flatnonzero(~valid)
-        if bad_hours.size:
-            # a masked hour i sits at column c = i - t_j + wmax of rows with t_j in (i, i+wmax]
-            c = np.arange(wmax)
-            rows = bad_hours[:, None] + wmax - c[None, :] - (L - 1)
-            cols = np.broadcast_to(c, rows.shape)
-            keep = (rows >= 0) & (rows < n_rep)
-            stream[rows[keep], cols[keep]] = np.nan
-        stream[~usable] = np.nan
     else:
-        stream = _stream_refit_every(resid, refits, fit_of, hours, valid, usable, L, h, tail,
-                                     wmax)
+        # idx[j, c]: the hour whose remainder sits at stream[j, c]
+        idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
+        stream = _in_sample_stream(resid, refits[fit_of][:, None], idx, fit_of, tail)
     # expected values: refit hours from the fit, others extrapolated
     exp = trend_last[fit_of].copy()
     for p, sc in seas:
@@ -156,11 +148,15 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     remainder[hours] = np.where(valid[hours], y[hours] - exp, np.nan)
     if h > 1:
         # out-of-sample part: hours t0 < i < t use remainder_i (known only now)
-        idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
         outs = idx > refits[fit_of][:, None]
         stream[outs] = remainder[idx[outs]]
-        stream[~valid[np.clip(idx, 0, n - 1)]] = np.nan
-        stream[~usable[fit_of]] = np.nan
+    # masked hours leave the fence windows: hour i sits at column c = i - t_j + wmax of
+    # the rows whose hour t_j is in (i, i + wmax]
+    c = np.arange(wmax)
+    rows = np.flatnonzero(~valid)[:, None] + wmax - c[None, :] - (L - 1)
+    keep = (rows >= 0) & (rows < n_rep)
+    stream[rows[keep], np.broadcast_to(c, rows.shape)[keep]] = np.nan
+    stream[~usable[fit_of]] = np.nan
     for w in fence_windows:
         block = stream[:, wmax - w :]
         a, b = _quartiles(block, s.quartile_method)
@@ -169,14 +165,10 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
     return Stream(expected, remainder, q1, q3)
 
 
-def _stream_refit_every(resid, refits, fit_of, hours, valid, usable, L, h, tail, wmax):
-    """In-sample part of the fence stream when refitting every h > 1 hours."""
-    n_rep = len(hours)
-    stream = np.full((n_rep, wmax), np.nan)
-    # idx[j, c]: the hour whose remainder sits at stream[j, c]
-    idx = hours[:, None] - wmax + np.arange(wmax)[None, :]
-    # in-sample part: hour i <= t0 -> resid column tail-1-(t0-i)
-    t0 = refits[fit_of][:, None]
+def _in_sample_stream(resid, t0, idx, fit_of, tail):
+    """Fence stream part known at the last refit t0 when refitting every h > 1 hours:
+    hour i <= t0 sits in that fit's remainder tail at column tail-1-(t0-i)."""
+    stream = np.full(idx.shape, np.nan)
     col = tail - 1 - (t0 - idx)
     sel = (idx <= t0) & (col >= 0)
     rows = np.broadcast_to(fit_of[:, None], sel.shape)

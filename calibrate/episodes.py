@@ -72,13 +72,6 @@ class Episodes:
         f64 = np.array([], dtype=np.float64)
         return cls(obj, i64, obj.copy(), i64, i64, i64, f64, f64, f64, obj.copy(), obj.copy(), i64)
 
-    @classmethod
-    def concat(cls, parts: list[Episodes]) -> Episodes:
-        parts = [p for p in parts if len(p)]
-        if not parts:
-            return cls.empty()
-        return cls(*[np.concatenate([getattr(p, f.name) for p in parts]) for f in fields(cls)])
-
     def take(self, index: np.ndarray) -> Episodes:
         """Rows at `index` (integer positions or boolean mask)."""
         return Episodes(*[getattr(self, f.name)[index] for f in fields(self)])

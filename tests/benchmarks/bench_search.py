@@ -23,6 +23,7 @@ import tempfile
 import time
 from pathlib import Path
 
+import numpy as np
 import optuna
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -92,6 +93,31 @@ def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: in
     return min(ok, key=lambda t: t.value) if ok else None
 
 
+CACHED_REPEATS = 20
+
+
+def cached_trial_seconds(ses, res) -> float:
+    """Mean time of `Evaluator.evaluate` once the decomposition is cached (what a
+    trial that changes no decomposition setting costs)."""
+    space = search.build_space(ses)
+    windows = search.candidate_values(space, "fence_window_hours",
+                                      [ses.ws.detector.base.fence_window_hours]) or ()
+    ks = np.geomspace(ses.ws.search.multiplier_low, ses.ws.search.multiplier_high,
+                      search.GRID_POINTS)
+    rp = api.make_replayer(ses, engine="serial", fence_windows=tuple(windows), progress=False)
+    ev = search.Evaluator(ses, rp, ks, res.first_hour, res.split_hour, ses.ws.goal)
+    base = res.config
+    ev.evaluate(base)  # the one refit
+    configs = [base.with_base(fence_window_hours=w, min_impact=float(m))
+               for w in (windows or [base.base.fence_window_hours])
+               for m in np.linspace(0.0, 200.0, 5)]
+    configs = (configs * CACHED_REPEATS)[:CACHED_REPEATS]
+    t0 = time.perf_counter()
+    for c in configs:
+        ev.evaluate(c)
+    return (time.perf_counter() - t0) / len(configs)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--trials", type=int, default=100)
@@ -112,6 +138,8 @@ def main() -> None:
         done = res.trials[res.trials["state"] == "COMPLETE"]
         best = res.trials[res.trials["feasible"]]
         print(f"tune: {args.trials} trials in {fast:.1f} s ({fast / args.trials:.2f} s/trial)")
+        print(f"one trial on cached remainder streams: {cached_trial_seconds(ses, res):.3f} s "
+              f"(mean of {CACHED_REPEATS}, fence window and minimum impact varied)")
         n_plain = min(args.plain_trials, args.trials)
         t0 = time.perf_counter()
         ref = plain_search(ses, n_plain, args.engine, res.first_hour, res.split_hour,
