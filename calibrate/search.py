@@ -186,7 +186,10 @@ def build_space(ses: Session) -> list[Param]:
     out: list[Param] = []
     for g in names or [None]:
         metrics = [g] if s.tune_by == "metric" and g else None
-        specs = s.params or default_params(ses, metrics)
+        own = s.group_params.get(g or "", ())
+        # a group's own ranges ([search.groups.NAME]) replace the shared ones
+        specs = [*own, *(p for p in s.params or default_params(ses, metrics)
+                         if p.name not in {o.name for o in own})]
         cur = _settings_of(current, s.tune_by, g, ses)
         for spec in specs:
             if spec.name == "fence_multiplier":

@@ -96,6 +96,8 @@ class SearchSpace:
     holdout_fraction: float = 0.25
     tune_by: str = "all"  # one of GROUPINGS
     seed: int = 0
+    # per group (level or metric name): searched settings that replace `params`' ones
+    group_params: dict[str, tuple[SearchParam, ...]] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -131,7 +133,8 @@ SECTIONS = (
     "history", "measures", "metrics", "levels", "incidents", "teams",
     "goal", "detector", "search", "watch",
 )
-_SEARCH_SPECIAL = ("fence_multiplier", "trials", "holdout_fraction", "tune_by", "seed")
+_SEARCH_SPECIAL = ("fence_multiplier", "trials", "holdout_fraction", "tune_by", "seed",
+                   "groups")
 
 
 def load_workspace(path: str | Path) -> Workspace:
@@ -188,7 +191,7 @@ def parse_workspace(data: Mapping[str, Any], file: Path, name: str = WORKSPACE_F
     metrics = _metrics(data.get("metrics", {}), measures, f"{name} [metrics]")
     levels = _levels(data["levels"], history.key_columns, f"{name} [levels]")
     teams = _teams(data.get("teams", {}), root, f"{name} [teams]")
-    return Workspace(
+    ws = Workspace(
         file=file,
         history=history,
         measures=measures,
@@ -201,6 +204,8 @@ def parse_workspace(data: Mapping[str, Any], file: Path, name: str = WORKSPACE_F
         search=_search(data.get("search", {}), f"{name} [search]"),
         watched=_watch(data.get("watch", {}), measures, metrics, f"{name} [watch]"),
     )
+    _check_search_groups(ws, name)
+    return ws
 
 
 # ---------------------------------------------------------------- small checkers
@@ -446,12 +451,49 @@ def _search(t: Mapping[str, Any], where: str) -> SearchSpace:
             values["tune_by"] = raw
         elif key == "seed":
             values["seed"] = _int(raw, loc)
+        elif key == "groups":
+            values["group_params"] = _search_groups(raw, setting_types, where)
         elif key in setting_types:
             params.append(_search_param(key, raw, setting_types[key], loc))
         else:
             known = [*_SEARCH_SPECIAL, *(k for k in setting_types if k != "fence_multiplier")]
             raise InputError(loc, f"unknown key (known: {', '.join(known)})")
     return SearchSpace(params=tuple(params), **values)
+
+
+def _search_groups(raw: Any, setting_types: dict[str, str],
+                   where: str) -> dict[str, tuple[SearchParam, ...]]:
+    """`[search.groups.NAME]` tables: searched settings of one group."""
+    if not isinstance(raw, Mapping):
+        raise InputError(_loc(where, "groups"), f"must be a table of groups, but got {raw!r}")
+    out = {}
+    for group, table in raw.items():
+        gwhere = f"{where.removesuffix('[search]')}[search.groups.{group}]"
+        if not isinstance(table, Mapping):
+            raise InputError(gwhere, f"must be a table of searched settings, but got {table!r}")
+        params = []
+        for key, spec in table.items():
+            if key not in setting_types or key == "fence_multiplier":
+                known = [k for k in setting_types if k != "fence_multiplier"]
+                raise InputError(_loc(gwhere, key),
+                                 f"unknown searched setting (known: {', '.join(known)})")
+            params.append(_search_param(key, spec, setting_types[key], _loc(gwhere, key)))
+        out[str(group)] = tuple(params)
+    return out
+
+
+def _check_search_groups(ws: Workspace, name: str) -> None:
+    """Group names of `[search.groups]` must be groups of `tune_by`."""
+    s = ws.search
+    if not s.group_params:
+        return
+    known = {"level": tuple(ws.levels), "metric": ws.metric_names}.get(s.tune_by)
+    for group in s.group_params:
+        where = f"{name} [search.groups.{group}]"
+        if known is None:
+            raise InputError(where, 'per-group ranges need tune_by = "level" or "metric"')
+        if group not in known:
+            raise InputError(where, f"'{group}' is not a {s.tune_by} (known: {', '.join(known)})")
 
 
 def _search_param(name: str, raw: Any, typ: str, loc: str) -> SearchParam:

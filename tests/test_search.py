@@ -159,14 +159,24 @@ def test_interrupt_and_resume_loses_no_trial(ses, tmp_path):
     assert len(third) == 6
 
 
-@pytest.mark.parametrize("tune_by", ["all", "level"])
+# per-metric minimum impact: impressions move by hundreds an hour, clicks by a few
+PER_METRIC = ("\nmin_impact = { low = 0.0, high = 200.0 }\n"
+              "[search.groups.clicks]\nmin_impact = { low = 0.0, high = 4.0 }")
+
+
+@pytest.mark.parametrize("tune_by", ["all", "level", "metric"])
 def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
-    ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"')
+    extra = PER_METRIC if tune_by == "metric" else ""
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"' + extra)
     ses = api.open_session(ws)
     res = _tune(ses, tmp_path, trials=3)
     assert res.feasible
     if tune_by == "level":
         assert [g.name for g in res.config.groups] == list(ses.history.levels)
+    if tune_by == "metric":
+        assert [g.name for g in res.config.groups] == list(ses.ws.metric_names)
+        got = {g.name: g.settings.min_impact for g in res.config.groups}
+        assert got["clicks"] <= 4.0 and max(got.values()) <= 200.0
     from calibrate.outputs import write_config
 
     out = write_config(tmp_path / "tuned.toml", res.config, res.provenance)
@@ -181,6 +191,17 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     assert prov["split_hour"] == res.split_hour
     assert prov["tuning"]["alerts"] == tuning.alerts
     assert prov["history_sha256"] == ses.history.source_hash
+
+
+def test_group_ranges_replace_the_shared_ones_for_that_group_only(tmp_path):
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + '\ntune_by = "metric"' + PER_METRIC)
+    ses = api.open_session(ws)
+    spec = {p.name: p.spec for p in search.build_space(ses)}
+    assert (spec["clicks/min_impact"].low, spec["clicks/min_impact"].high) == (0.0, 4.0)
+    assert spec["impressions/min_impact"].high == 200.0
+    # settings the group does not name come from the shared [search] keys
+    assert spec["clicks/seasonal_span"].values == spec["impressions/seasonal_span"].values \
+        == (7, 11)
 
 
 def test_greedy_group_multipliers_stop_at_a_local_optimum():

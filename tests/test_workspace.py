@@ -161,6 +161,15 @@ BAD = [
     ({"search": "robust = { low = 0, high = 1 }"}, "",
      "[search] key 'robust'", "can only be searched over a list"),
     ({"search": "sides = 3"}, "", "[search] key 'sides'", "must be a list of values"),
+    ({"search": 'tune_by = "metric"'}, "[search.groups.cpc]\nmin_impact = [1.0]\n",
+     "[search.groups.cpc]", "'cpc' is not a metric (known: impressions, clicks, ctr)"),
+    ({"search": 'tune_by = "level"'}, "[search.groups.campaign]\nwindow = [1]\n",
+     "[search.groups.campaign] key 'window'", "unknown searched setting"),
+    ({"search": 'tune_by = "level"'}, "[search.groups.campaign]\nmin_impact = 3\n",
+     "[search.groups.campaign] key 'min_impact'", "must be a list of values"),
+    ({"search": "trials = 3"}, "[search.groups.ctr]\nmin_impact = [1.0]\n",
+     "[search.groups.ctr]", 'per-group ranges need tune_by = "level" or "metric"'),
+    ({"search": 'groups = 3'}, "", "[search] key 'groups'", "must be a table of groups"),
 ]
 
 
@@ -173,6 +182,20 @@ def test_errors_name_file_section_and_key(write_workspace, sections, extra, wher
     assert message.startswith(f"{path} {where}"), message
     assert fragment in message, message
     assert "\n" not in message
+
+
+def test_per_group_search_ranges(write_workspace) -> None:
+    path = write_workspace(
+        {"search": 'tune_by = "metric"\nmin_impact = { low = 0.0, high = 50.0 }'},
+        extra="[search.groups.ctr]\nmin_impact = { low = 0.0, high = 0.01 }\n"
+              "fence_window_hours = [48, 72]\n")
+    s = load_workspace(path).search
+    assert [p.name for p in s.params] == ["min_impact"]
+    assert s.params[0].high == 50.0
+    ctr = {p.name: p for p in s.group_params["ctr"]}
+    assert (ctr["min_impact"].low, ctr["min_impact"].high) == (0.0, 0.01)
+    assert ctr["fence_window_hours"].values == (48, 72)
+    assert set(s.group_params) == {"ctr"}
 
 
 def test_invalid_toml_and_missing_file(tmp_path: Path) -> None:
