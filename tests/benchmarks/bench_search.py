@@ -13,7 +13,7 @@ When the plain search is too slow to run all N trials, it runs `--plain-trials`
 of them and its time is extrapolated per trial (said so in the output); its result
 is then that of the trials it ran.
 
-    python tests/benchmarks/bench_search.py [--trials 100] [--plain-trials 8] [--engine local]
+    python tests/benchmarks/bench_search.py [--trials 100] [--plain-trials 100] [--engine local]
 """
 
 from __future__ import annotations
@@ -124,7 +124,7 @@ def cached_trial_seconds(ses, res) -> float:
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--trials", type=int, default=100)
-    ap.add_argument("--plain-trials", type=int, default=8,
+    ap.add_argument("--plain-trials", type=int, default=100,
                     help="trials the plain search runs (time extrapolated to --trials)")
     ap.add_argument("--engine", default="local", choices=("local", "serial"))
     args = ap.parse_args()
