@@ -723,18 +723,35 @@ def multiplier_curve(
     caught = caught_mat.sum(axis=1).astype(np.int64)
     alert_true = np.zeros(len(ep), dtype=bool)
     alert_true[pa] = True
-    alerts = np.bincount(grid, minlength=n_k).astype(np.int64)
-    true_alerts = np.bincount(grid[alert_true], minlength=n_k).astype(np.int64)
+    teams, tp = _curve_teams(ep, teams_analysts)
+    n_t = len(teams)
+    cell = grid * n_t + tp
+    team_alerts = np.bincount(cell, minlength=n_k * n_t).reshape(n_k, n_t)
+    team_true = np.bincount(cell[alert_true], minlength=n_k * n_t).reshape(n_k, n_t)
+    return _curve(ks, n_inc, caught, np.bincount(grid, minlength=n_k),
+                  np.bincount(grid[alert_true], minlength=n_k), teams, teams_analysts,
+                  team_alerts, team_alerts - team_true, n_days, confidence)
 
+
+def _curve_teams(ep: Episodes | CodedEpisodes,
+                 teams_analysts: Mapping[str, int]) -> tuple[tuple[str, ...], np.ndarray]:
+    """Curve team order (teams with analysts, then others present) and each row's position
+    in it."""
     team_code, team_names = _codes(ep, "team")
     present = np.flatnonzero(np.bincount(team_code, minlength=len(team_names)))
     teams = tuple(dict.fromkeys([*teams_analysts, *sorted(team_names[i] for i in present)]))
     pos = {t: i for i, t in enumerate(teams)}
-    tp = np.array([pos.get(t, -1) for t in team_names], dtype=np.int64)[team_code]
-    cell = grid * len(teams) + tp
-    size = n_k * len(teams)
-    team_alerts = np.bincount(cell, minlength=size).reshape(n_k, len(teams))
-    team_false = np.bincount(cell[~alert_true], minlength=size).reshape(n_k, len(teams))
+    return teams, np.array([pos.get(t, -1) for t in team_names], dtype=np.int64)[team_code]
+
+
+def _curve(ks, n_inc, caught, alerts, true_alerts, teams, teams_analysts, team_alerts,
+           team_false, n_days, confidence) -> Curve:
+    n_k = len(ks)
+    caught = np.asarray(caught, dtype=np.int64)
+    alerts = np.asarray(alerts, dtype=np.int64)
+    true_alerts = np.asarray(true_alerts, dtype=np.int64)
+    team_alerts = np.asarray(team_alerts, dtype=np.int64)
+    team_false = np.asarray(team_false, dtype=np.int64)
     analysts = np.array([int(teams_analysts.get(t, 0)) for t in teams], dtype=np.int64)
     low, high = wilson(n_inc - caught, np.full(n_k, n_inc), confidence)
     return Curve(
@@ -749,12 +766,93 @@ def multiplier_curve(
         false_alerts=alerts - true_alerts,
         teams=teams,
         analysts=analysts,
-        team_alerts=team_alerts.astype(np.int64),
-        team_false_alerts=team_false.astype(np.int64),
+        team_alerts=team_alerts,
+        team_false_alerts=team_false,
         alerts_per_analyst_day=_ratio(team_alerts, analysts[None, :] * n_days),
         false_alerts_per_analyst_day=_ratio(team_false, analysts[None, :] * n_days),
         n_days=float(n_days),
     )
+
+
+def impact_curves(
+    episodes_by_grid: Episodes | CodedEpisodes,
+    ks: np.ndarray,
+    min_impacts: np.ndarray,
+    incidents: Incidents,
+    early: int,
+    late: int,
+    teams_analysts: Mapping[str, int],
+    n_days: float,
+    confidence: float = 0.95,
+) -> list[Curve]:
+    """`multiplier_curve` for every minimum impact of a grid at once.
+
+    Parameters
+    ----------
+    episodes_by_grid : Episodes or CodedEpisodes
+        Episodes of all multipliers (``grid`` = index into `ks`), none dropped for
+        impact beyond what ``min_impacts[0]`` would drop.
+    min_impacts : array of float
+        Ascending. Curve l keeps the episodes with ``|impact| >= min_impacts[l]``,
+        the detector's rule, so it equals `multiplier_curve` of those episodes.
+    ks, incidents, early, late, teams_analysts, n_days, confidence
+        As for `multiplier_curve`.
+
+    Returns
+    -------
+    list of Curve
+        One per minimum impact. Every curve lists the teams of the unfiltered
+        episodes (a team whose alerts are all filtered out shows 0).
+    """
+    ks = np.asarray(ks, dtype=np.float64)
+    ms = np.asarray(min_impacts, dtype=np.float64)
+    if len(ms) == 0 or np.any(np.diff(ms) <= 0):
+        raise ValueError("min_impacts must be a non-empty ascending grid")
+    ep = episodes_by_grid
+    n_k, n_m, n_inc = len(ks), len(ms), len(incidents)
+    grid = np.asarray(ep.grid, dtype=np.int64)
+    if len(grid) and (grid.min() < 0 or grid.max() >= n_k):
+        raise ValueError(
+            f"episode grid indices must lie in [0, {n_k}), got {grid.min()}..{grid.max()}"
+        )
+    if not n_days > 0:
+        raise ValueError(f"n_days must be positive, but got {n_days=}")
+    # level[e]: the last grid minimum impact that keeps episode e (-1: none keeps it)
+    size = np.abs(np.asarray(ep.impact, dtype=np.float64))
+    level = np.searchsorted(ms, size, side="right") - 1
+    # the detector keeps every episode at a minimum impact <= 0, and a NaN impact at no other
+    level[np.isnan(size)] = 0 if ms[0] <= 0 else -1
+    kept = level >= 0
+    pa, pi = _overlap_pairs(ep, incidents, early, late)
+    # an incident is caught at (k, m) when one of its episodes at k is kept at m
+    best = np.full((n_k, n_inc), -1, dtype=np.int64)
+    np.maximum.at(best, (grid[pa], pi), level[pa])
+    caught = _at_least(np.bincount((np.arange(n_k)[:, None] * (n_m + 1) + best + 1).ravel(),
+                                   minlength=n_k * (n_m + 1)).reshape(n_k, n_m + 1)[:, 1:])
+    alert_true = np.zeros(len(ep), dtype=bool)
+    alert_true[pa] = True
+    teams, tp = _curve_teams(ep, teams_analysts)
+    n_t = len(teams)
+    cell = (grid * n_m + level)[kept]
+    alerts = _at_least(np.bincount(cell, minlength=n_k * n_m).reshape(n_k, n_m))
+    true_alerts = _at_least(np.bincount((grid * n_m + level)[kept & alert_true],
+                                        minlength=n_k * n_m).reshape(n_k, n_m))
+    tcell = cell * n_t + tp[kept]
+    team_alerts = _at_least(np.bincount(tcell, minlength=n_k * n_m * n_t)
+                            .reshape(n_k, n_m, n_t))
+    team_true = _at_least(np.bincount(tcell[alert_true[kept]], minlength=n_k * n_m * n_t)
+                          .reshape(n_k, n_m, n_t))
+    return [
+        _curve(ks, n_inc, caught[:, lv], alerts[:, lv], true_alerts[:, lv], teams,
+               teams_analysts, team_alerts[:, lv], team_alerts[:, lv] - team_true[:, lv],
+               n_days, confidence)
+        for lv in range(n_m)
+    ]
+
+
+def _at_least(counts: np.ndarray) -> np.ndarray:
+    """counts[:, l, ...] of items at level exactly l -> of items at level >= l (axis 1)."""
+    return np.flip(np.cumsum(np.flip(counts, axis=1), axis=1), axis=1).astype(np.int64)
 
 
 def solve_multiplier(

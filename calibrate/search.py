@@ -62,6 +62,7 @@ from calibrate.scoring import (
     Curve,
     Figures,
     _overlap_pairs,
+    impact_curves,
     multiplier_curve,
     period_filter,
     solve_multiplier,
@@ -71,6 +72,7 @@ from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
 from calibrate.workspace import Goal, SearchParam
 
 GRID_POINTS = 80
+IMPACT_STEPS = (1.0, 1.5, 2.0, 3.0, 5.0, 7.0)  # solved minimum impacts, per decade
 KNOWN_FALSE_PENALTY = 1.0
 WEEK = 168
 STUDY_FILE = ".calibrate/study.journal"
@@ -153,6 +155,34 @@ def _with_current(spec: SearchParam, value: Any) -> SearchParam:
     return replace(spec, low=lo, high=hi)
 
 
+def solved_min_impact(ses: Session) -> SearchParam | None:
+    """The `min_impact` range when it is solved with the multiplier rather than
+    searched: a float range, and one set of settings for every series (no groups)."""
+    s = ses.ws.search
+    if s.tune_by != "all":
+        return None
+    for spec in s.params or default_params(ses):
+        if spec.name == "min_impact" and spec.kind == "float":
+            return spec
+    return None
+
+
+def impact_grid(spec: SearchParam, current: float) -> np.ndarray:
+    """Ascending minimum impacts to solve on: the range's ends, today's value and the
+    round values between them (`IMPACT_STEPS` per decade)."""
+    spec = _with_current(spec, current)
+    low, high = float(spec.low), float(spec.high)
+    if high <= low:
+        return np.array([low])
+    # round values people can read in a config (1, 1.5, 2, 3, 5, 7 per decade), from
+    # a thousandth of the range's top when the range starts at 0
+    start = low if low > 0 else high / 1000.0
+    decades = range(math.floor(math.log10(start)), math.ceil(math.log10(high)) + 1)
+    nice = np.array([float(f"{m * 10.0**d:.6g}") for d in decades for m in IMPACT_STEPS])
+    nice = nice[(nice >= start) & (nice <= high)]
+    return np.unique(np.r_[low, nice, high, current])
+
+
 def group_names(ses: Session, tune_by: str) -> list[str]:
     if tune_by == "level":
         return list(ses.history.levels)
@@ -183,6 +213,7 @@ def build_space(ses: Session) -> list[Param]:
     s = ses.ws.search
     names = group_names(ses, s.tune_by)
     current = ses.ws.detector
+    solved = solved_min_impact(ses)
     out: list[Param] = []
     for g in names or [None]:
         metrics = [g] if s.tune_by == "metric" and g else None
@@ -192,7 +223,8 @@ def build_space(ses: Session) -> list[Param]:
                          if p.name not in {o.name for o in own})]
         cur = _settings_of(current, s.tune_by, g, ses)
         for spec in specs:
-            if spec.name == "fence_multiplier":
+            if spec.name == "fence_multiplier" or (g is None and solved is not None
+                                                    and spec.name == "min_impact"):
                 continue
             spec = _with_current(spec, getattr(cur, spec.name))
             name = spec.name if g is None else f"{g}/{spec.name}"
@@ -268,6 +300,7 @@ class Evaluation:
     max_budget_ratio: float
     value: float
     constraints: list[float]
+    min_impact: float | None = None  # solved minimum impact (None: the config's own)
 
     def attrs(self) -> dict[str, Any]:
         return {k: _json_safe(v) for k, v in dataclasses.asdict(self).items()}
@@ -284,6 +317,9 @@ class Evaluator:
     split_hour: int
     goal: Goal
     known_false: Incidents | None = None
+    # ascending grid: the minimum impact is solved on it with the multiplier (configs
+    # without groups); None keeps each config's own minimum impact
+    min_impacts: np.ndarray | None = None
     incidents: Incidents = field(init=False)
     false_windows: Incidents | None = field(init=False)
 
@@ -315,6 +351,8 @@ class Evaluator:
 
     def evaluate(self, config: DetectorConfig) -> Evaluation:
         """Solve the multiplier(s) of `config` and return its figures."""
+        if self.min_impacts is not None and not config.groups:
+            return self._evaluate_with_impact(config)
         scores = self.replayer.scores(config)
         if not config.groups:
             c, kf, _ = self.curve(scores)
@@ -328,6 +366,43 @@ class Evaluator:
                 teams=c.teams,
             )
         return self._evaluate_groups(config, scores)
+
+    def _evaluate_with_impact(self, config: DetectorConfig) -> Evaluation:
+        """Solve multiplier and minimum impact together: for every grid minimum impact
+        the largest multiplier meeting the goal, then the pair with the fewest
+        (penalised) alerts; ties go to the larger multiplier, then the smaller minimum
+        impact. Infeasible settings report the smallest minimum impact's fallback."""
+        ms = np.asarray(self.min_impacts, dtype=np.float64)
+        scores = self.replayer.scores(config.with_base(min_impact=float(ms[0])))
+        eps = sweep_codes(scores, self.ks, self.replayer.routes,
+                          start_hours=(self.first_hour, self.split_hour))
+        ws = self.ses.ws
+        curves = impact_curves(eps, self.ks, ms, self.incidents, ws.incidents.early_hours,
+                               ws.incidents.late_hours, self.ses.analysts, self.n_days)
+        kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(ms)
+        if self.false_windows is not None:
+            kfs = [c.true_alerts for c in impact_curves(
+                eps, self.ks, ms, self.false_windows, 0, 0, self.ses.analysts, self.n_days)]
+        best: tuple[tuple[float, float, float], int, int, str] | None = None
+        for lv, c in enumerate(curves):
+            k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
+            if k is None:
+                continue
+            j = int(np.flatnonzero(c.ks == k)[0])
+            rank = (float(c.alerts[j] + KNOWN_FALSE_PENALTY * kfs[lv][j]), -k, float(ms[lv]))
+            if best is None or rank < best[0]:
+                best = (rank, lv, j, reason)
+        if best is None:
+            lv, c = 0, curves[0]
+            _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
+            j, feasible = _fallback_index(c, self.goal), False
+        else:
+            _, lv, j, reason = best
+            c, feasible = curves[lv], True
+        return self._figures(
+            feasible=feasible, reason=reason, k=float(c.ks[j]), group_k={},
+            caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
+            team_alerts=c.team_alerts[j], teams=c.teams, min_impact=float(ms[lv]))
 
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
@@ -374,7 +449,7 @@ class Evaluator:
 
     def _figures(self, *, feasible: bool, reason: str, k: float, group_k: dict[str, float],
                  caught: int, alerts: int, kf: int, team_alerts: np.ndarray,
-                 teams: Sequence[str]) -> Evaluation:
+                 teams: Sequence[str], min_impact: float | None = None) -> Evaluation:
         n_inc = len(self.incidents)
         miss = (n_inc - caught) / n_inc if n_inc else 0.0
         high = float(wilson(n_inc - caught, n_inc)[1]) if n_inc else 0.0
@@ -387,7 +462,7 @@ class Evaluator:
             feasible=feasible, reason=reason, k=k, group_k=group_k, incidents=n_inc,
             caught=caught, miss_rate=miss, miss_rate_high=high, alerts=alerts,
             known_false_alerts=kf, team_rate=rates, max_budget_ratio=ratio, value=value,
-            constraints=constraints,
+            constraints=constraints, min_impact=min_impact,
         )
 
 
@@ -644,8 +719,10 @@ def tune(
     store, store_name = open_storage(ses, storage)
     rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
                            scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
+    impact = solved_min_impact(ses)
+    ms = None if impact is None else impact_grid(impact, current.base.min_impact)
     try:
-        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false)
+        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false, min_impacts=ms)
         study = _run_study(ses, ev, space, starts, name, store, budget, progress)
         result = _result(ses, ev, space, study, name, store_name, current, goal)
     finally:
@@ -758,6 +835,8 @@ def trials_frame(study: optuna.Study, space: list[Param], teams: Sequence[str]) 
         for p in space:
             row[p.name] = t.params.get(p.name)
         row["k"] = a.get("k", math.nan)
+        if a.get("min_impact") is not None:
+            row["min_impact"] = a["min_impact"]
         for g, k in (a.get("group_k") or {}).items():
             row[f"k[{g}]"] = k
         for key in ("incidents", "caught", "miss_rate", "miss_rate_high", "alerts",
@@ -807,6 +886,8 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
             for g in config.groups))
     else:
         config = config.with_base(fence_multiplier=a["k"])
+    if a.get("min_impact") is not None:
+        config = config.with_base(min_impact=a["min_impact"])
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
     pareto = pareto_frame(trials, teams)

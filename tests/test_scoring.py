@@ -26,6 +26,7 @@ from calibrate.scoring import (
     breakdown,
     episodes_from_alerts_frame,
     figures,
+    impact_curves,
     intervals_mask,
     match,
     multiplier_curve,
@@ -455,6 +456,42 @@ def test_curve_equals_figures_one_k_at_a_time(seed: int) -> None:
                 row["alerts_per_analyst_day"], nan_ok=True)
             assert curve.false_alerts_per_analyst_day[g, j] == pytest.approx(
                 row["false_alerts_per_analyst_day"], nan_ok=True)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_impact_curves_equal_figures_of_the_kept_episodes(seed: int) -> None:
+    n_grid = 4
+    ks = np.linspace(1.0, 4.0, n_grid)
+    ep, inc = random_tables(seed, n_ep=500, n_grid=n_grid)
+    rng = np.random.default_rng(seed)
+    # impacts of both signs, some exactly on a grid value (kept: |impact| >= m), one NaN
+    ep.value = rng.choice([-3.0, -1.0, 0.0, 0.5, 1.0, 2.0, 7.0], len(ep)) + 0.0
+    ep.value[::7] = rng.normal(0.0, 4.0, len(ep.value[::7]))
+    ep.value[5] = np.nan
+    ms = np.array([0.0, 0.5, 1.0, 2.5, 7.0])
+    curves = impact_curves(ep, ks, ms, inc, 1, 2, TEAMS, n_days=12.5)
+    assert len(curves) == len(ms)
+    for lv, m in enumerate(ms):
+        c = curves[lv]
+        for g in range(n_grid):
+            # reference: the detector's rule (drop |impact| < m, NaN only kept at m <= 0)
+            # then figures() on what is left, one (k, m) at a time
+            size = np.abs(ep.impact)
+            keep = (ep.grid == g) & ((size >= m) | (m <= 0))
+            ep_km = ep.take(keep)
+            f = figures(match(ep_km, inc, 1, 2), ep_km, inc, TEAMS, n_days=12.5)
+            assert c.caught[g] == f.caught
+            assert (c.alerts[g], c.false_alerts[g]) == (f.alerts, f.false_alerts)
+            assert c.miss_rate[g] == pytest.approx(f.miss_rate)
+            for j, team in enumerate(c.teams):
+                want = f.per_team.loc[team, "alerts"] if team in f.per_team.index else 0
+                assert c.team_alerts[g, j] == want
+
+
+def test_impact_curves_need_an_ascending_grid() -> None:
+    ep, inc = random_tables(0, n_ep=10)
+    with pytest.raises(ValueError, match="ascending"):
+        impact_curves(ep, np.array([1.0]), np.array([1.0, 1.0]), inc, 0, 0, TEAMS, 1.0)
 
 
 def brute_force(curve: Curve, max_miss: float, budgets: dict[str, float]) -> float | None:

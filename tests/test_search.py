@@ -97,6 +97,54 @@ def test_solved_multiplier_equals_brute_force(ses, tmp_path):
     assert ev.miss_rate == pytest.approx(f.miss_rate)
 
 
+def test_solved_multiplier_and_min_impact_equal_brute_force(ses):
+    """Reference: replay every (k, min_impact) pair with the detector's own settings and
+    score it as `calibrate score` does; for each minimum impact take the largest k that
+    meets the goal, then the pair with the fewest alerts (ties: larger k, then smaller
+    minimum impact), the rule the module docstring states."""
+    first, split = 167, ses.history.n_hours - 168
+    config = ses.ws.detector
+    ks = np.geomspace(1.0, 60.0, 9)
+    ms = np.array([0.0, 5.0, 30.0, 200.0, 2000.0])
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    solved = []
+    for goal in (Goal(max_miss_rate=0.0, max_alerts_per_analyst_day=3.0),
+                 Goal(max_miss_rate=0.4, max_alerts_per_analyst_day=1e6)):
+        ev = search.Evaluator(ses, rp, ks, first, split, goal, min_impacts=ms).evaluate(config)
+        best = None
+        for m in ms:
+            cfg = config.with_base(min_impact=float(m))
+            ref = _brute_force_k(ses, cfg, ks, first, split, goal)
+            if ref is not None:
+                rank = (ref[1].alerts, -ref[0], float(m))
+                best = min(best, (rank, ref), key=lambda b: b[0]) if best else (rank, ref)
+        assert best is not None and ev.feasible
+        (alerts, neg_k, m), (_, f) = best
+        assert (ev.k, ev.min_impact) == (-neg_k, m)
+        assert (ev.caught, ev.alerts) == (f.caught, f.alerts) == (ev.caught, alerts)
+        solved.append((ev.k, ev.min_impact))
+    # the two goals pick different pairs, one of them filtering on impact
+    assert solved[0] != solved[1] and max(m for _, m in solved) > 0
+
+
+def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path):
+    ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
+    ses = api.open_session(make_workspace(tmp_path / "a", search=ranged))
+    assert search.solved_min_impact(ses) is not None
+    assert "min_impact" not in {p.name for p in search.build_space(ses)}
+    # round grid values, today's 0 included
+    grid = search.impact_grid(search.solved_min_impact(ses), 0.0)
+    assert grid[0] == 0.0 and grid[-1] == 800.0 and 1.5 in grid and 700.0 in grid
+    listed = SEARCH + "\nmin_impact = [0.0, 50.0]"
+    ses = api.open_session(make_workspace(tmp_path / "b", search=listed))
+    assert search.solved_min_impact(ses) is None
+    assert "min_impact" in {p.name for p in search.build_space(ses)}
+    grouped = ranged + '\ntune_by = "level"'
+    ses = api.open_session(make_workspace(tmp_path / "c", search=grouped))
+    assert search.solved_min_impact(ses) is None
+    assert "campaign/min_impact" in {p.name for p in search.build_space(ses)}
+
+
 def test_known_false_alerts_are_counted_and_penalised(ses):
     first, split = 167, ses.history.n_hours - 168
     config = ses.ws.detector
@@ -164,9 +212,11 @@ PER_METRIC = ("\nmin_impact = { low = 0.0, high = 200.0 }\n"
               "[search.groups.clicks]\nmin_impact = { low = 0.0, high = 4.0 }")
 
 
-@pytest.mark.parametrize("tune_by", ["all", "level", "metric"])
+@pytest.mark.parametrize("tune_by", ["all", "all-solved", "level", "metric"])
 def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     extra = PER_METRIC if tune_by == "metric" else ""
+    if tune_by == "all-solved":  # minimum impact solved with the multiplier
+        tune_by, extra = "all", "\nmin_impact = { low = 0.0, high = 800.0 }"
     ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"' + extra)
     ses = api.open_session(ws)
     res = _tune(ses, tmp_path, trials=3)

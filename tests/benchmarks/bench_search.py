@@ -55,10 +55,15 @@ def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: in
     days = (split - first) / 24.0
     current = ses.ws.detector
 
+    impact = search.solved_min_impact(ses)  # the tune solves it; the plain search samples it
+
     def objective(trial: optuna.Trial) -> float:
         params = {p.name: p.suggest(trial) for p in space}
         k = trial.suggest_float("fence_multiplier", s.multiplier_low, s.multiplier_high,
                                 log=True)
+        m = None if impact is None else trial.suggest_float(
+            "min_impact", min(impact.low, current.base.min_impact),
+            max(impact.high, current.base.min_impact), log=impact.log)
         try:
             config = search._config_from(params, space, ses, current)
         except InputError as exc:
@@ -66,6 +71,8 @@ def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: in
             trial.set_constraint("budget", search.INVALID)
             raise optuna.TrialPruned(str(exc)) from None
         config = config.with_base(fence_multiplier=k)
+        if m is not None:
+            config = config.with_base(min_impact=m)
         # from scratch: no cached streams. One Replayer for all trials, because a new one
         # holds new shared arrays, and the local engine restarts its workers for those:
         # that start-up (about 2 s here) is not part of a plain trial's cost
@@ -82,9 +89,12 @@ def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: in
         return f.alerts / (total_analysts * days)
 
     study = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=seed))
-    study.enqueue_trial({**search.params_of(current, space, ses),
-                         "fence_multiplier": min(max(current.base.fence_multiplier,
-                                                     s.multiplier_low), s.multiplier_high)})
+    today = {**search.params_of(current, space, ses),
+             "fence_multiplier": min(max(current.base.fence_multiplier, s.multiplier_low),
+                                     s.multiplier_high)}
+    if impact is not None:
+        today["min_impact"] = current.base.min_impact
+    study.enqueue_trial(today)
     rp = api.make_replayer(ses, executor=make_executor(engine), progress=False)
     try:
         study.optimize(objective, n_trials=trials)
@@ -108,7 +118,10 @@ def cached_trial_seconds(ses, res) -> float:
     ks = np.geomspace(ses.ws.search.multiplier_low, ses.ws.search.multiplier_high,
                       search.GRID_POINTS)
     rp = api.make_replayer(ses, engine="serial", fence_windows=tuple(windows), progress=False)
-    ev = search.Evaluator(ses, rp, ks, res.first_hour, res.split_hour, ses.ws.goal)
+    impact = search.solved_min_impact(ses)
+    ms = None if impact is None else search.impact_grid(impact, ses.ws.detector.base.min_impact)
+    ev = search.Evaluator(ses, rp, ks, res.first_hour, res.split_hour, ses.ws.goal,
+                          min_impacts=ms)
     base = res.config
     ev.evaluate(base)  # the one refit
     configs = [base.with_base(fence_window_hours=w, min_impact=float(m))
