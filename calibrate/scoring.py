@@ -817,37 +817,57 @@ def impact_curves(
         )
     if not n_days > 0:
         raise ValueError(f"n_days must be positive, but got {n_days=}")
-    # level[e]: the last grid minimum impact that keeps episode e (-1: none keeps it)
-    size = np.abs(np.asarray(ep.impact, dtype=np.float64))
-    level = np.searchsorted(ms, size, side="right") - 1
-    # the detector keeps every episode at a minimum impact <= 0, and a NaN impact at no other
-    level[np.isnan(size)] = 0 if ms[0] <= 0 else -1
-    kept = level >= 0
+    teams, tp = _curve_teams(ep, teams_analysts)
+    n_t = len(teams)
     pa, pi = _overlap_pairs(ep, incidents, early, late)
+    alert_true = np.zeros(len(ep), dtype=bool)
+    alert_true[pa] = True
+    # level[e]: the last grid minimum impact that keeps episode e (-1: none keeps it)
+    level, counts = _impact_kernel(grid, np.asarray(ep.value, dtype=np.float64),
+                                   np.asarray(ep.expected, dtype=np.float64), tp, alert_true,
+                                   ms, n_k, n_t)
     # an incident is caught at (k, m) when one of its episodes at k is kept at m
     best = np.full((n_k, n_inc), -1, dtype=np.int64)
     np.maximum.at(best, (grid[pa], pi), level[pa])
     caught = _at_least(np.bincount((np.arange(n_k)[:, None] * (n_m + 1) + best + 1).ravel(),
                                    minlength=n_k * (n_m + 1)).reshape(n_k, n_m + 1)[:, 1:])
-    alert_true = np.zeros(len(ep), dtype=bool)
-    alert_true[pa] = True
-    teams, tp = _curve_teams(ep, teams_analysts)
-    n_t = len(teams)
-    cell = (grid * n_m + level)[kept]
-    alerts = _at_least(np.bincount(cell, minlength=n_k * n_m).reshape(n_k, n_m))
-    true_alerts = _at_least(np.bincount((grid * n_m + level)[kept & alert_true],
-                                        minlength=n_k * n_m).reshape(n_k, n_m))
-    tcell = cell * n_t + tp[kept]
-    team_alerts = _at_least(np.bincount(tcell, minlength=n_k * n_m * n_t)
-                            .reshape(n_k, n_m, n_t))
-    team_true = _at_least(np.bincount(tcell[alert_true[kept]], minlength=n_k * n_m * n_t)
-                          .reshape(n_k, n_m, n_t))
+    team_alerts, team_true = _at_least(counts[0]), _at_least(counts[1])
+    alerts, true_alerts = team_alerts.sum(axis=2), team_true.sum(axis=2)
     return [
         _curve(ks, n_inc, caught[:, lv], alerts[:, lv], true_alerts[:, lv], teams,
                teams_analysts, team_alerts[:, lv], team_alerts[:, lv] - team_true[:, lv],
                n_days, confidence)
         for lv in range(n_m)
     ]
+
+
+@numba.njit(cache=True)
+def _impact_kernel(grid, value, expected, team, true, ms, n_k, n_t):
+    """Per episode the last grid minimum impact keeping it (-1: none), and counts of
+    episodes (all, true) per multiplier, exact level and team."""
+    n, n_m = grid.shape[0], ms.shape[0]
+    level = np.empty(n, dtype=np.int64)
+    counts = np.zeros((2, n_k, n_m, n_t), dtype=np.int64)
+    for e in range(n):
+        # |impact| as the detector computes it (value and expected are sums)
+        x = abs(value[e] - expected[e])
+        if np.isnan(x):
+            lv = 0 if ms[0] <= 0 else -1  # kept only where nothing is filtered
+        else:
+            lo, hi = 0, n_m  # first grid value above x (numpy's searchsorted, right)
+            while lo < hi:
+                mid = (lo + hi) // 2
+                if ms[mid] <= x:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            lv = lo - 1
+        level[e] = lv
+        if lv >= 0:
+            counts[0, grid[e], lv, team[e]] += 1
+            if true[e]:
+                counts[1, grid[e], lv, team[e]] += 1
+    return level, counts
 
 
 def _at_least(counts: np.ndarray) -> np.ndarray:
