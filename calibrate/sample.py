@@ -180,7 +180,8 @@ flatline_hours = 6
 min_impact = 0.0
 combine = "any"
 
-# Settings the tuner searches; the fence multiplier is solved exactly within its range.
+# Settings the tuner searches; the fence multiplier and the minimum impact are solved
+# exactly within their ranges.
 # The last quarter of the history is held out to check the tuned settings.
 [search]
 decomposition_window_hours = [336, 504]

@@ -1,12 +1,21 @@
 """Constrained search for detector settings (pipeline stage 7, `calibrate tune`).
 
-Optuna drives the structural settings (windows, spans, flatline hours, minimum
-impact, ...); the fence multiplier is never searched. For each trial the
-`Replayer` computes fence scores (cached remainder streams: only settings that
-change the decomposition refit), `sweep_codes` turns them into the episodes of a
-whole multiplier grid at once (text columns as integer codes), `multiplier_curve`
-scores every grid point on the tuning hours, and `solve_multiplier` picks the
-largest multiplier meeting the miss-rate target and every team's alert budget.
+Optuna drives the structural settings (windows, spans, flatline hours, ...); the
+fence multiplier is never searched. For each trial the `Replayer` computes fence
+scores (cached remainder streams: only settings that change the decomposition
+refit), `sweep_codes` turns them into the episodes of a whole multiplier grid at
+once (text columns as integer codes), `multiplier_curve` scores every grid point on
+the tuning hours, and `solve_multiplier` picks the largest multiplier meeting the
+miss-rate target and every team's alert budget.
+
+Minimum impact: when `[search]` gives it as a float range and there are no groups,
+it is solved too, not searched. Dropping an episode whose |impact| is below it is
+another threshold applied after the scores, so the sweep at the range's lowest
+value holds the episodes of every (multiplier, minimum impact) pair, and
+`impact_curves` scores a grid of round minimum impacts (`impact_grid`) at once. For
+each minimum impact the multiplier is solved as above; the pair with the fewest
+(penalised) alerts wins, ties to the larger multiplier, then the smaller minimum
+impact. As a list, or per group, Optuna samples it like any other setting.
 
 Objective (minimised): alerts per analyst per day over all teams at the solved
 multiplier, i.e. ``(alerts + KNOWN_FALSE_PENALTY * known_false_alerts) /
