@@ -38,7 +38,7 @@ def run_demo(args) -> int:
     print(f"    today's settings: {figs.caught}/{figs.incidents} incidents caught, "
           f"{figs.alerts} alerts, precision {_pct(figs.precision)}")
 
-    print("3/6 tuning (the fence multiplier is solved exactly for every trial)")
+    print("3/6 tuning (the fence multiplier and minimum impact are solved exactly for every trial)")
     from calibrate.search import tune
 
     result = tune(ses, trials=args.trials, storage=str(out / "study.journal"), **engine)

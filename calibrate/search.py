@@ -176,10 +176,12 @@ def solved_min_impact(ses: Session) -> SearchParam | None:
     return None
 
 
-def impact_grid(spec: SearchParam, current: float) -> np.ndarray:
-    """Ascending minimum impacts to solve on: the range's ends, today's value and the
-    round values between them (`IMPACT_STEPS` per decade)."""
-    spec = _with_current(spec, current)
+def impact_grid(spec: SearchParam, current: float | Sequence[float]) -> np.ndarray:
+    """Ascending minimum impacts to solve on: the range's ends, today's value (and any
+    warm start's) and the round values between them (`IMPACT_STEPS` per decade)."""
+    current = [float(c) for c in np.atleast_1d(current)]
+    for c in current:
+        spec = _with_current(spec, c)
     low, high = float(spec.low), float(spec.high)
     if high <= low:
         return np.array([low])
@@ -189,7 +191,7 @@ def impact_grid(spec: SearchParam, current: float) -> np.ndarray:
     decades = range(math.floor(math.log10(start)), math.ceil(math.log10(high)) + 1)
     nice = np.array([float(f"{m * 10.0**d:.6g}") for d in decades for m in IMPACT_STEPS])
     nice = nice[(nice >= start) & (nice <= high)]
-    return np.unique(np.r_[low, nice, high, current])
+    return np.unique(np.r_[low, nice, high, np.asarray(current, dtype=np.float64)])
 
 
 def group_names(ses: Session, tune_by: str) -> list[str]:
@@ -380,7 +382,8 @@ class Evaluator:
         """Solve multiplier and minimum impact together: for every grid minimum impact
         the largest multiplier meeting the goal, then the pair with the fewest
         (penalised) alerts; ties go to the larger multiplier, then the smaller minimum
-        impact. Infeasible settings report the smallest minimum impact's fallback."""
+        impact. An infeasible setting reports the pair closest to the goal: the lowest
+        miss-rate excess, then the lowest worst budget ratio."""
         ms = np.asarray(self.min_impacts, dtype=np.float64)
         scores = self.replayer.scores(config.with_base(min_impact=float(ms[0])))
         eps = sweep_codes(scores, self.ks, self.replayer.routes,
@@ -402,9 +405,17 @@ class Evaluator:
             if best is None or rank < best[0]:
                 best = (rank, lv, j, reason)
         if best is None:
-            lv, c = 0, curves[0]
+            # as for a fixed minimum impact, over every pair: the lowest miss-rate excess,
+            # then the lowest worst budget ratio, then the larger k and smaller impact
+            picks = []
+            for lv, c in enumerate(curves):
+                j = _fallback_index(c, self.goal)
+                miss = 0.0 if np.isnan(c.miss_rate[j]) else float(c.miss_rate[j])
+                picks.append((max(miss - self.goal.max_miss_rate, 0.0),
+                              self._budget_ratio(c, j), -float(c.ks[j]), float(ms[lv]), lv, j))
+            *_, lv, j = min(picks)
+            c, feasible = curves[lv], False
             _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
-            j, feasible = _fallback_index(c, self.goal), False
         else:
             _, lv, j, reason = best
             c, feasible = curves[lv], True
@@ -729,7 +740,7 @@ def tune(
     rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
                            scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
     impact = solved_min_impact(ses)
-    ms = None if impact is None else impact_grid(impact, current.base.min_impact)
+    ms = None if impact is None else impact_grid(impact, [c.base.min_impact for c in starts])
     try:
         ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false, min_impacts=ms)
         study = _run_study(ses, ev, space, starts, name, store, budget, progress)
@@ -1065,8 +1076,11 @@ def pareto_lines(result: TuneResult, limit: int = 10) -> list[str]:
     lines = ["best trade-offs (recall against the busiest team's alerts per analyst per day):"]
     for row in result.pareto.head(limit).itertuples(index=False):
         d = row._asdict()
+        impact = d.get("min_impact")
+        shown = "" if impact is None or impact != impact else f", min_impact={impact:g}"
         lines.append(f"  trial {d['number']}: recall {_pct(d['recall'])}, "
-                     f"{d['max_alerts_per_analyst_day']:.2f} per analyst-day, k={d['k']:.3g}")
+                     f"{d['max_alerts_per_analyst_day']:.2f} per analyst-day, k={d['k']:.3g}"
+                     + shown)
     return lines
 
 

@@ -127,6 +127,28 @@ def test_solved_multiplier_and_min_impact_equal_brute_force(ses):
     assert solved[0] != solved[1] and max(m for _, m in solved) > 0
 
 
+def test_infeasible_solved_pair_is_the_closest_fixed_minimum_impact(ses):
+    """Reference: the established one-minimum-impact-at-a-time evaluation; with no pair
+    meeting the goal, the solved pair is the one with the lowest miss-rate excess, then
+    the lowest worst budget ratio, over every grid minimum impact."""
+    first, split = 167, ses.history.n_hours - 168
+    ks = np.geomspace(1.0, 60.0, 9)
+    ms = np.array([0.0, 5.0, 30.0, 200.0])
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    goal = Goal(max_miss_rate=0.0, max_alerts_per_analyst_day=0.01)  # no budget is met
+    ev = search.Evaluator(ses, rp, ks, first, split, goal, min_impacts=ms).evaluate(
+        ses.ws.detector)
+    fixed = [(max(e.miss_rate - goal.max_miss_rate, 0.0), e.max_budget_ratio, -e.k, m, e)
+             for m in ms
+             for e in [search.Evaluator(ses, rp, ks, first, split, goal).evaluate(
+                 ses.ws.detector.with_base(min_impact=float(m)))]]
+    *_, m, ref = min(fixed, key=lambda f: f[:4])
+    assert not ev.feasible and not ref.feasible
+    assert (ev.k, ev.min_impact, ev.alerts, ev.max_budget_ratio) == (
+        ref.k, m, ref.alerts, ref.max_budget_ratio)
+    assert ev.max_budget_ratio < fixed[0][1]  # filtering on impact lowers the load here
+
+
 def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path):
     ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
     ses = api.open_session(make_workspace(tmp_path / "a", search=ranged))
