@@ -176,8 +176,9 @@ def main() -> None:
         cols = [p.name for p in search.build_space(ses) if p.setting in decomp]
         distinct = len(done[cols].drop_duplicates()) if cols else 1
         print(f"tune fitted {distinct} distinct decomposition settings in {len(done)} trials; "
-              f"a refit costs about one plain trial and the plain search refits on every "
-              f"trial, so the ratio stays near trials / distinct settings "
+              f"a refit costs at least one plain trial (more: it computes the quartiles of "
+              f"every candidate fence window) and the plain search refits on every trial, so "
+              f"the ratio cannot pass trials / distinct settings "
               f"({args.trials / max(distinct, 1):.0f}x here) however cheap the other trials get")
         if len(best):
             b = best.loc[best["value"].idxmin()]
