@@ -774,10 +774,14 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         existing = optuna.load_study(study_name=name, storage=store)
         created = False
     n_before = len(existing.get_trials(deepcopy=False))
+    running = len(existing.get_trials(deepcopy=False,
+                                      states=(optuna.trial.TrialState.RUNNING,)))
     # deterministic for one process's runs; a process joining a study another one created
     # (two tune processes started together) gets a different seed, so the two do not
-    # propose the same settings side by side
-    seed = ses.ws.search.seed + n_before + (0 if created else JOINER_SEED_OFFSET)
+    # propose the same settings side by side, and each further joiner, which finds one
+    # more trial in flight, another again
+    seed = ses.ws.search.seed + n_before + (
+        0 if created else JOINER_SEED_OFFSET * (1 + running))
     sampler = optuna.samplers.TPESampler(
         seed=seed, **({} if SET_CONSTRAINT else {"constraints_func": _constraints}))
     study = optuna.load_study(study_name=name, storage=store, sampler=sampler)

@@ -363,3 +363,11 @@ def test_a_process_joining_a_study_samples_with_another_seed(ses, tmp_path, monk
     assert seeds[0] == base  # creator, empty study
     assert seeds[1] == base + 2 + search.JOINER_SEED_OFFSET  # joiner after 2 trials
     assert seeds[0] != seeds[1]
+    # a third process, joining while two trials are in flight, gets yet another seed
+    study = optuna.load_study(study_name=search.study_name_for(ses, ses.ws.goal, None),
+                              storage=search.open_storage(ses, store)[0])
+    study.ask()
+    study.ask()
+    search.tune(ses, trials=4, storage=store, engine="serial", progress=False)
+    assert seeds[2] == base + 5 + 3 * search.JOINER_SEED_OFFSET
+    assert len(set(seeds)) == 3
