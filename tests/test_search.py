@@ -149,6 +149,30 @@ def test_infeasible_solved_pair_is_the_closest_fixed_minimum_impact(ses):
     assert ev.max_budget_ratio < fixed[0][1]  # filtering on impact lowers the load here
 
 
+def test_known_false_alerts_with_a_solved_min_impact(ses):
+    """Reference: `match` of the chosen (k, min_impact) replay against the windows marked
+    false, and the penalised objective recomputed from it."""
+    first, split = 167, ses.history.n_hours - 168
+    config = ses.ws.detector
+    ks = np.array([2.0, 4.0])
+    ms = np.array([0.0, 30.0])
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    eps = period_filter(rp.replay(config.with_base(fence_multiplier=4.0)).episodes, first,
+                        split)
+    kf = Incidents.make(level=eps.level[:3], series=eps.series[:3], start=eps.start[:3],
+                        end=eps.end[:3], metric=eps.metric[:3])
+    goal = Goal(max_miss_rate=1.0, max_alerts_per_analyst_day=1e6)
+    ev = search.Evaluator(ses, rp, ks, first, split, goal, kf, min_impacts=ms).evaluate(config)
+    chosen = config.with_base(fence_multiplier=ev.k, min_impact=ev.min_impact)
+    got = period_filter(rp.replay(chosen).episodes, first, split)
+    expected = int(match(got, kf, 0, 0).alert_true.sum())
+    assert ev.alerts == len(got)
+    assert ev.known_false_alerts == expected >= 1 and ev.min_impact == 30.0
+    analysts = sum(ses.analysts.values())
+    assert ev.value == pytest.approx(
+        (len(got) + search.KNOWN_FALSE_PENALTY * expected) / (analysts * (split - first) / 24))
+
+
 def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path):
     ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
     ses = api.open_session(make_workspace(tmp_path / "a", search=ranged))
