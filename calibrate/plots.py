@@ -90,8 +90,28 @@ def tradeoff_png(data: TradeoffData) -> bytes:
 
 def multiplier_png(data: CurveData) -> bytes:
     """Recall (top) and alerts per analyst per day per team (bottom) against k."""
+    chosen = "" if data.chosen_k is None else f" (chosen k = {data.chosen_k:.3g}, red line)"
+    if data.per_group:
+        chosen = " for every group at once (chosen: one k per group, see the settings)"
+    return _curve_png(data, f"Moving the fence multiplier k{chosen}",
+                      "fence multiplier k (fences at Q1 - k*IQR and Q3 + k*IQR)")
+
+
+def impact_png(data: CurveData) -> bytes:
+    """Recall (top) and alerts per analyst per day per team (bottom) against the minimum
+    impact (`data.ks`), on a scale linear near 0 and logarithmic above."""
+    chosen = "" if data.chosen_k is None else f" (chosen {data.chosen_k:g}, red line)"
+    positive = [m for m in data.ks if m > 0]
+    return _curve_png(data, f"Moving the minimum impact at the chosen k{chosen}",
+                      "minimum impact (|value - expected| summed over an episode)",
+                      symlog=min(positive) if positive else None)
+
+
+def _curve_png(data: CurveData, title: str, xlabel: str, symlog: float | None = None) -> bytes:
     fig, (top, bottom) = plt.subplots(2, 1, figsize=(7.0, 5.0), sharex=True,
                                       gridspec_kw={"height_ratios": [1, 1.2]})
+    if symlog is not None:
+        bottom.set_xscale("symlog", linthresh=symlog)
     for ax in (top, bottom):
         _style(ax)
         if data.chosen_k is not None:
@@ -106,10 +126,7 @@ def multiplier_png(data: CurveData) -> bytes:
     top.yaxis.set_major_formatter(matplotlib.ticker.PercentFormatter(1.0))
     top.set_ylabel("recall", fontsize=9)
     top.legend(fontsize=7.5, loc="lower left", framealpha=0.9)
-    chosen = "" if data.chosen_k is None else f" (chosen k = {data.chosen_k:.3g}, red line)"
-    if data.per_group:
-        chosen = " for every group at once (chosen: one k per group, see the settings)"
-    top.set_title(f"Moving the fence multiplier k{chosen}", fontsize=10, loc="left")
+    top.set_title(title, fontsize=10, loc="left")
     for j, team in enumerate(data.teams):
         bottom.step(ks, data.team_rate[j], where="post", linewidth=1.4,
                     color=TEAM_COLOURS[j % len(TEAM_COLOURS)], label=team)
@@ -119,7 +136,7 @@ def multiplier_png(data: CurveData) -> bytes:
     if budgets:
         bottom.plot([], [], color=BUDGET, linestyle="--", label="budget")
     bottom.set_ylabel("alerts per analyst per day", fontsize=9)
-    bottom.set_xlabel("fence multiplier k (fences at Q1 - k*IQR and Q3 + k*IQR)", fontsize=9)
+    bottom.set_xlabel(xlabel, fontsize=9)
     bottom.set_ylim(bottom=0)
     bottom.legend(fontsize=7.5, loc="upper right", framealpha=0.9)
     fig.tight_layout()

@@ -177,6 +177,8 @@ class ReportData:
     incidents: list[dict[str, Any]]
     caution: str = CAUTION
     provenance: dict[str, Any] = field(default_factory=dict)
+    # recall and load over minimum impacts at the chosen k (None: groups differ in it)
+    impact: CurveData | None = None
 
     @property
     def changed(self) -> list[str]:
@@ -247,6 +249,7 @@ def build_report_data(
         )
     tune_a, tune_b = bounds[0][1], bounds[0][2]
     curve = curve_data(ses, chosen, tune_a, tune_b, teams, budgets)
+    impact = impact_data(ses, chosen, tune_a, tune_b, teams, budgets)
     tuning = periods[0].figures
     tradeoff = tradeoff_data(trials, tuning, ses.analysts, budgets, goal.max_miss_rate, curve)
     volume = volume_data(ses, chosen, first, split)
@@ -277,6 +280,7 @@ def build_report_data(
         panels_left_out=left_out,
         incidents=incidents,
         provenance=dict(provenance or {}),
+        impact=impact,
     )
 
 
@@ -461,6 +465,59 @@ def curve_data(
         target_recall=1.0 - ses.ws.goal.max_miss_rate,
         chosen_k=None if per_group else k0,
         per_group=per_group,
+    )
+
+
+def impact_data(
+    ses: api.Session,
+    chosen: ReplayResult,
+    start: int,
+    end: int,
+    teams: list[str],
+    budgets: Mapping[str, float],
+) -> CurveData | None:
+    """Recall and alerts per analyst per day over minimum impacts at the chosen k.
+
+    The grid is the search's when it solves the minimum impact, else round values from
+    0 to ten times the chosen one (at least the smallest metric's typical hourly
+    level). None when groups have their own multiplier or minimum impact.
+    """
+    from calibrate import search
+    from calibrate.scoring import impact_curves
+    from calibrate.workspace import SearchParam
+
+    base = chosen.config.base
+    k0, m0 = base.fence_multiplier, base.min_impact
+    if any((g.settings.fence_multiplier, g.settings.min_impact) != (k0, m0)
+           for g in chosen.config.groups):
+        return None
+    spec = search.solved_min_impact(ses) or SearchParam(
+        name="min_impact", kind="float", low=0.0,
+        high=max(10.0 * m0, search.typical_level(ses)))
+    ms = search.impact_grid(spec, [m0])
+    eps = sweep_codes(chosen.scores, np.array([k0]), chosen.routes, apply_min_impact=False,
+                      start_hours=(start, end))
+    inc = period_filter(ses.incidents, start, end)
+    curves = impact_curves(eps, np.array([k0]), ms, inc, ses.ws.incidents.early_hours,
+                           ses.ws.incidents.late_hours, ses.analysts,
+                           max(end - start, 1) / 24.0)
+    shown = [t for t in teams if ses.analysts.get(t, 0) > 0]
+    miss = np.array([c.miss_rate[0] for c in curves])
+    low = np.array([c.miss_rate_low[0] for c in curves])
+    high = np.array([c.miss_rate_high[0] for c in curves])
+    return CurveData(
+        ks=ms.tolist(),
+        recall=_floats(1.0 - miss),
+        recall_low=_floats(1.0 - high),
+        recall_high=_floats(1.0 - low),
+        alerts=[int(c.alerts[0]) for c in curves],
+        teams=shown,
+        team_rate=[_floats(np.array([c.alerts_per_analyst_day[0, c.teams.index(t)]
+                                     if t in c.teams else 0.0 for c in curves]))
+                   for t in shown],
+        budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
+        target_recall=1.0 - ses.ws.goal.max_miss_rate,
+        chosen_k=m0,
     )
 
 
@@ -684,6 +741,7 @@ def render_plots(data: ReportData) -> dict[str, bytes]:
     out = {
         "tradeoff.png": plots.tradeoff_png(data.tradeoff),
         "multiplier.png": plots.multiplier_png(data.curve),
+        **({"impact.png": plots.impact_png(data.impact)} if data.impact else {}),
         "volume.png": plots.volume_png(data.volume),
         "delay.png": plots.delay_png(data.delays, data.early_hours, data.late_hours),
     }
@@ -823,7 +881,7 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         '<li><a href="#goal">Goal and result</a></li>'
         '<li><a href="#settings">Settings</a></li>'
         '<li><a href="#tradeoff">Recall against alert load</a></li>'
-        '<li><a href="#multiplier">Fence multiplier</a></li>'
+        '<li><a href="#multiplier">Fence multiplier and minimum impact</a></li>'
         '<li><a href="#volume">Alerts per team and week</a></li>'
         '<li><a href="#delay">Detection delay</a></li>'
         '<li><a href="#series">Missed incidents and false alerts</a></li>'
@@ -870,13 +928,21 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
                      "multipliers; the star is the chosen point; the dashed lines are the "
                      "alert budget and the recall target. Up and to the left is better."))
 
-    parts.append('<h2 id="multiplier">4. Moving the fence multiplier</h2>')
+    parts.append('<h2 id="multiplier">4. Moving the fence multiplier and the minimum impact'
+                 '</h2>')
     parts.append(img("multiplier.png", "recall and alert load against fence multiplier",
                      f"Tuning weeks ({p0.start[:10]} to {p0.end[:10]}). A larger multiplier "
                      "widens the fences: fewer alerts, and eventually missed incidents. The "
                      "red line is the chosen multiplier. Every other setting is held at its "
                      "chosen value (per-group multipliers are replaced by the one on the "
                      "axis)."))
+    if data.impact is not None:
+        parts.append(img("impact.png", "recall and alert load against minimum impact",
+                         "The same weeks at the chosen multiplier. An alert episode whose "
+                         "|impact| (value minus expected, summed over its hours) is below "
+                         "the minimum impact is dropped: a larger one means fewer alerts, "
+                         "and eventually missed incidents with a small impact. The red line "
+                         "is the chosen minimum impact."))
 
     parts.append('<h2 id="volume">5. Alerts per team and week</h2>')
     parts.append(img("volume.png", "alerts per analyst per day per team and week",
@@ -964,7 +1030,9 @@ def render_markdown(data: ReportData) -> str:
                        [[r.name, _show(r.current), _show(r.chosen), "**yes**" if r.changed
                          else ""] for r in data.settings])
     lines += ["", "## 3. Recall against alert load", "", "![trade-off](tradeoff.png)", "",
-              "## 4. Moving the fence multiplier", "", "![multiplier](multiplier.png)", "",
+              "## 4. Moving the fence multiplier and the minimum impact", "",
+              "![multiplier](multiplier.png)", "",
+              *(["![minimum impact](impact.png)", ""] if data.impact is not None else []),
               "## 5. Alerts per team and week", "", "![volume](volume.png)", ""]
     lines += _md_table(["team", "week", "alerts", "per analyst per day", "budget", "over"],
                        [[r["team"], r["week"], r["alerts"], _num(r["alerts_per_analyst_day"]),

@@ -98,7 +98,8 @@ def test_markdown_images_are_files_beside_it(config_report: Path) -> None:
     md = (config_report / "report.md").read_text(encoding="utf-8")
     names = [line.split("](")[1].rstrip(")") for line in md.splitlines()
              if line.startswith("![")]
-    assert {"tradeoff.png", "multiplier.png", "volume.png", "delay.png"} <= set(names)
+    assert {"tradeoff.png", "multiplier.png", "impact.png", "volume.png",
+            "delay.png"} <= set(names)
     for name in names:
         _decode_png((config_report / name).read_bytes())
 
@@ -129,6 +130,34 @@ def test_multiplier_curve_agrees_with_figures_at_the_chosen_k(ses, chosen_config
     assert data.curve.alerts[j] == tuning["alerts"]
     # raising k never adds alerts
     assert all(np.diff(data.curve.alerts) <= 0)
+
+
+def test_impact_curve_agrees_with_replays_at_each_minimum_impact(ses, chosen_config) -> None:
+    """Reference: a replay of the chosen settings with each grid minimum impact, scored
+    as `calibrate score` does."""
+    from dataclasses import replace
+
+    rep = _replay(ses, chosen_config)
+    data = build_report_data(ses, rep, first_hour=200, split_hour=SPLIT)
+    imp = data.impact
+    assert imp is not None and imp.chosen_k == chosen_config.base.min_impact
+    assert imp.ks[0] == 0.0 and all(np.diff(imp.ks) > 0)
+    for j in (0, len(imp.ks) // 2, len(imp.ks) - 1):
+        cfg = chosen_config.with_base(min_impact=imp.ks[j])
+        f = api.score_episodes(ses, _replay(ses, cfg).episodes, data.periods[0].start_hour,
+                               SPLIT)
+        assert imp.alerts[j] == f.alerts
+        assert imp.recall[j] == pytest.approx(f.recall)
+    # a larger minimum impact never adds alerts
+    assert all(np.diff(imp.alerts) <= 0) and imp.alerts[-1] < imp.alerts[0]
+    lv = next(iter(ses.history.levels))
+    from calibrate.settings import DetectorGroup
+
+    other = DetectorGroup(name="big", levels=(lv,),
+                          settings=replace(chosen_config.base, min_impact=50.0))
+    grouped = replace(chosen_config, groups=(other,))
+    assert build_report_data(ses, _replay(ses, grouped), first_hour=200,
+                             split_hour=SPLIT).impact is None
 
 
 def test_per_group_multipliers_are_not_drawn_as_one_chosen_k(ses, chosen_config) -> None:
