@@ -80,7 +80,12 @@ def make_replayer(
     fence_windows: tuple[int, ...] = (),
     progress: bool = True,
 ) -> Replayer:
-    """A `Replayer` over the session's history and watched metrics."""
+    """A `Replayer` over the session's history and watched metrics.
+
+    Without `executor` it makes one from `engine`, `workers` and `scheduler` and shuts
+    it down on `close()`; an executor passed in stays up for the caller to reuse (and
+    close): replayers of one history reuse its workers.
+    """
     for lv in levels or []:
         if lv not in ses.history.levels:
             raise InputError(
@@ -90,6 +95,7 @@ def make_replayer(
     for m in metrics or []:
         if m not in known:
             raise InputError("--metrics", f"unknown metric '{m}' (known: {', '.join(known)})")
+    owned = executor is None
     executor = executor or make_executor(engine, workers, scheduler)
     return Replayer(
         ses.history,
@@ -99,6 +105,7 @@ def make_replayer(
         routes=ses.routes,
         fence_windows=fence_windows,
         progress=progress,
+        own_executor=owned,
     )
 
 

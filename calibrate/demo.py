@@ -13,7 +13,11 @@ from pathlib import Path
 
 from calibrate import api
 from calibrate.checks import check_workspace
-from calibrate.outputs import write_table, write_text
+from calibrate.executors import Executor, make_executor
+from calibrate.outputs import write_config, write_table, write_text
+from calibrate.report import write_report
+from calibrate.review import review_frame
+from calibrate.search import tune
 
 
 def run_demo(args) -> int:
@@ -29,21 +33,40 @@ def run_demo(args) -> int:
         print(f"    {line}")
 
     ses = api.open_session(ws_path)
-    engine = dict(engine=args.engine, workers=args.workers, scheduler=args.scheduler)
+    # one executor for every step: its workers start once and keep the history
+    executor = make_executor(args.engine, args.workers, args.scheduler)
+    try:
+        tuned, result = _steps(ses, out, args.trials, executor)
+    finally:
+        executor.close()
+
+    print("6/6 alert volume per team (tuned settings, held-out weeks)")
+    vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours)
+    write_table(out / "volume.csv", vol)
+    for row in vol.groupby("team")["alerts_per_analyst_day"].mean().items():
+        print(f"    {row[0]}: {row[1]:.2f} alerts per analyst per day "
+              f"(budget {ses.ws.goal.budget(row[0]):g})")
+    took = time.perf_counter() - t_start
+    write_text(out / "README.txt", _readme(out, took))
+    print(f"done in {took:.0f} s; outputs in {out}/ (see {out / 'README.txt'})")
+    print("caution: a tuned config is only as good as the incident labels; check it on "
+          "held-out weeks before rollout.")
+    return 0
+
+
+def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor):
+    """Steps 2-5: replay today's settings, tune, report, export the tuned alerts."""
     print("2/6 replaying today's [detector] settings hour by hour")
-    current = api.replay_session(ses, **engine)
+    current = api.replay_session(ses, executor=executor)
     write_table(out / "alerts-current.csv", current.alerts_frame())
     first = api.first_scored_hour(ses.ws.detector, ses.ws)
     figs = api.score_episodes(ses, current.episodes, first)
     print(f"    today's settings: {figs.caught}/{figs.incidents} incidents caught, "
           f"{figs.alerts} alerts, precision {_pct(figs.precision)}")
 
-    print("3/6 tuning (the fence multiplier and minimum impact are solved exactly for every trial)")
-    from calibrate.search import tune
-
-    result = tune(ses, trials=args.trials, storage=str(out / "study.journal"), **engine)
-    from calibrate.outputs import write_config
-
+    print("3/6 tuning (the fence multiplier and minimum impact are solved exactly for every "
+          "trial)")
+    result = tune(ses, trials=trials, storage=str(out / "study.journal"), executor=executor)
     tuned_path = out / "tuned.toml"
     if result.feasible:
         write_config(tuned_path, result.config, result.provenance, force=True)
@@ -61,38 +84,16 @@ def run_demo(args) -> int:
 
     print("4/6 report")
     report_dir = out / "report"
-    try:
-        from calibrate.report import write_report
-
-        write_report(ses, result, report_dir)
-        print(f"    report written to {report_dir / 'index.html'}")
-    except ImportError:
-        print("    (report module not available in this build)")
+    write_report(ses, result, report_dir, executor=executor)
+    print(f"    report written to {report_dir / 'index.html'}")
 
     print("5/6 alerts of the tuned settings, for analysts to review")
-    tuned = api.replay_session(ses, result.config, **engine)
-    try:
-        from calibrate.review import review_frame
-
-        review = review_frame(tuned.alerts_frame())
-    except ImportError:
-        review = tuned.alerts_frame()
+    tuned = api.replay_session(ses, result.config, executor=executor)
+    review = review_frame(tuned.alerts_frame())
     write_table(out / "alerts-for-review.csv", review)
     print(f"    {len(review)} alerts written to {out / 'alerts-for-review.csv'} "
           "(fill in the verdict column, then run `calibrate retune`)")
-
-    print("6/6 alert volume per team (tuned settings, held-out weeks)")
-    vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours)
-    write_table(out / "volume.csv", vol)
-    for row in vol.groupby("team")["alerts_per_analyst_day"].mean().items():
-        print(f"    {row[0]}: {row[1]:.2f} alerts per analyst per day "
-              f"(budget {ses.ws.goal.budget(row[0]):g})")
-    took = time.perf_counter() - t_start
-    write_text(out / "README.txt", _readme(out, took))
-    print(f"done in {took:.0f} s; outputs in {out}/ (see {out / 'README.txt'})")
-    print("caution: a tuned config is only as good as the incident labels; check it on "
-          "held-out weeks before rollout.")
-    return 0
+    return tuned, result
 
 
 def _pct(x) -> str:

@@ -147,8 +147,12 @@ class Replayer:
         routes: dict[str, np.ndarray] | None = None,
         fence_windows: tuple[int, ...] = (),
         progress: bool = True,
+        own_executor: bool = False,
     ):
         self.history = history
+        # close() shuts down only an executor this replayer was made to own: one passed in
+        # stays up for the caller's next replay (its workers keep the history they hold)
+        self.own_executor = own_executor
         self.levels = list(levels) if levels else list(history.levels)
         first = history.levels[self.levels[0]]
         self.metrics = list(metrics) if metrics else list(first.values)
@@ -157,9 +161,7 @@ class Replayer:
         self.fence_windows = tuple(sorted(set(fence_windows)))
         self.progress = progress
         self.cache: dict[tuple, StreamSet] = {}
-        self.shared = {
-            (lv, m): history.levels[lv].values[m] for lv in self.levels for m in self.metrics
-        }
+        self.shared = _shared_arrays(history, tuple(self.levels), tuple(self.metrics))
         self.fits = 0  # decompositions computed (series x settings), for reports
 
     def _key(self, level: str, metric: str, s: DetectorSettings) -> tuple:
@@ -229,7 +231,19 @@ class Replayer:
         return ReplayResult(self.history, config, scores, episodes, self.routes)
 
     def close(self) -> None:
-        self.executor.close()
+        if self.own_executor:
+            self.executor.close()
+
+
+def _shared_arrays(history: History, levels: tuple[str, ...],
+                   metrics: tuple[str, ...]) -> dict[tuple[str, str], np.ndarray]:
+    """The arrays workers read, one dict per (history, levels, metrics): replayers of the
+    same history hand an executor the same object, so its workers are not restarted."""
+    memo = history.__dict__.setdefault("_shared_arrays", {})
+    key = (levels, metrics)
+    if key not in memo:
+        memo[key] = {(lv, m): history.levels[lv].values[m] for lv in levels for m in metrics}
+    return memo[key]
 
 
 def _assemble(parts: list, history: History, level: str, windows: tuple[int, ...]) -> StreamSet:

@@ -31,6 +31,7 @@ import pandas as pd
 from calibrate import api
 from calibrate.episodes import Episodes
 from calibrate.errors import CalibrationError, InputError
+from calibrate.executors import make_executor
 from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.replay import ReplayResult, alerts_frame
 from calibrate.review import VERDICTS
@@ -361,30 +362,16 @@ def retune(
         `calibrate.search.tune`.
     """
     previous = previous or ses.ws.detector
-    exec_kw = dict(executor=executor, engine=engine, workers=workers, scheduler=scheduler)
-    rp = api.make_replayer(ses, progress=progress, **exec_kw)
+    # one executor for every replay and the search (its workers start once)
+    own = executor is None
+    if own:
+        executor = make_executor(engine, workers, scheduler)
     try:
-        old = rp.replay(previous)
+        verdicts, merged, ses2, result, old2, new = _retune_steps(
+            ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs)
     finally:
-        rp.close()
-    verdicts = read_verdicts(verdicts_path, ses, old)
-    merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)")
-    ses2 = replace(ses, incidents=merged)
-    if tuner is None:
-        try:
-            from calibrate.search import tune as tuner
-        except ImportError:
-            raise CalibrationError("the search module (calibrate.search) is not available "
-                                   "in this build; retune needs it") from None
-    result = tuner(ses2, trials=trials, warm_start=[previous],
-                   known_false=verdicts.known_false, progress=progress, **exec_kw,
-                   **tune_kwargs)
-    rp = api.make_replayer(ses2, progress=progress, **exec_kw)
-    try:
-        old2 = rp.replay(previous)
-        new = rp.replay(result.config)
-    finally:
-        rp.close()
+        if own:
+            executor.close()
     comp = compare(ses2, old2, new, verdicts.known_false)
     prov = dict(getattr(result, "provenance", {}) or {})
     prov.update(retuned_from_verdicts=str(verdicts_path),
@@ -392,6 +379,23 @@ def retune(
                 known_false_alarms=len(verdicts.known_false),
                 incidents_added=len(verdicts.new_incidents))
     return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov)
+
+
+def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs):
+    rp = api.make_replayer(ses, progress=progress, executor=executor)
+    old = rp.replay(previous)
+    verdicts = read_verdicts(verdicts_path, ses, old)
+    merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)")
+    ses2 = replace(ses, incidents=merged)
+    if tuner is None:
+        from calibrate.search import tune as tuner
+    result = tuner(ses2, trials=trials, warm_start=[previous],
+                   known_false=verdicts.known_false, progress=progress, executor=executor,
+                   **tune_kwargs)
+    rp = api.make_replayer(ses2, progress=progress, executor=executor)
+    old2 = rp.replay(previous)
+    new = rp.replay(result.config)
+    return verdicts, merged, ses2, result, old2, new
 
 
 # --------------------------------------------------------------------------- outputs

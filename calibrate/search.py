@@ -1094,8 +1094,6 @@ def cli_tune(args: Any) -> int:
     Exit 0 with the config written; 2 when no setting meets the goal (nothing
     written, the best trade-offs printed).
     """
-    from calibrate.outputs import write_config
-
     out = Path(args.out)
     force = bool(getattr(args, "force", False))
     if out.exists() and not force:
@@ -1112,10 +1110,25 @@ def cli_tune(args: Any) -> int:
         if not mb > 0:
             raise InputError("--max-alerts-per-analyst-day", f"must be positive, but got {mb!r}")
         goal = replace(goal, max_alerts_per_analyst_day=float(mb))
+    from calibrate.executors import make_executor
+
+    # one executor for the search and the report: the workers start once
+    executor = make_executor(getattr(args, "engine", "local"), getattr(args, "workers", None),
+                             getattr(args, "scheduler", None))
+    try:
+        return _tune_and_write(ses, args, goal, out, force, executor)
+    finally:
+        executor.close()
+
+
+def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
+                    executor: Executor) -> int:
+    from calibrate.outputs import write_config
+    from calibrate.report import write_report
+
     result = tune(ses, trials=args.trials, storage=args.storage,
-                  study_name=getattr(args, "study", None), goal=goal,
-                  engine=getattr(args, "engine", "local"), workers=getattr(args, "workers", None),
-                  scheduler=getattr(args, "scheduler", None), progress=True)
+                  study_name=getattr(args, "study", None), goal=goal, executor=executor,
+                  progress=True)
     print(f"study {result.study_name} ({len(result.trials)} trials) in {result.storage}")
     for line in side_by_side(result):
         print(line)
@@ -1131,12 +1144,6 @@ def cli_tune(args: Any) -> int:
     write_config(out, result.config, result.provenance, force=force)
     print(f"tuned config written to {out}")
     if getattr(args, "report", None):
-        try:
-            from calibrate.report import write_report
-        except ImportError:
-            print("note: the report module is not available; no report written")
-        else:
-            write_report(ses, result, Path(args.report), engine=args.engine,
-                         workers=args.workers, scheduler=args.scheduler)
-            print(f"report written to {args.report}")
+        write_report(ses, result, Path(args.report), executor=executor)
+        print(f"report written to {args.report}")
     return 0

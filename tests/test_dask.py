@@ -161,3 +161,27 @@ def test_unreachable_scheduler_is_one_line(ses, tmp_path, capsys, address, messa
     assert err.startswith("calibrate replay: ") and message in err
     assert "Traceback" not in err
     assert not Path(out).exists()
+
+
+def test_a_passed_local_executor_keeps_its_workers_across_replays(ses):
+    """Replayers of one history hand the executor the same shared arrays, and closing a
+    replayer leaves an executor it was given running, so the second replay reuses the
+    first one's worker processes (same pool object) and gives the same alerts."""
+    from calibrate.executors import LocalExecutor
+
+    ex = LocalExecutor(workers=2)
+    try:
+        first = api.replay_session(ses, executor=ex, progress=False)
+        pool = ex._pool
+        assert pool is not None  # still up after replay_session closed its replayer
+        again = api.replay_session(ses, executor=ex, progress=False)
+        assert ex._pool is pool
+        pd.testing.assert_frame_equal(again.alerts_frame(), first.alerts_frame())
+    finally:
+        ex.close()
+    assert ex._pool is None
+    # a replayer that made its own executor shuts it down
+    rp = api.make_replayer(ses, engine="local", progress=False)
+    rp.replay(ses.ws.detector)
+    rp.close()
+    assert rp.executor._pool is None
