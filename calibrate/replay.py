@@ -345,6 +345,60 @@ def sweep_codes(
     )
 
 
+@dataclass
+class RunTable:
+    """A multiplier grid's episodes as runs: run r is one episode at every grid index
+    ``order[lo[r]:hi[r]]`` (`EpisodeRuns`, for every (level, metric) at once).
+
+    `runs` holds one row per run (its `grid` column is 0 and unused); expanding each
+    run over its levels gives the rows of `sweep_codes`.
+    """
+
+    runs: CodedEpisodes
+    lo: np.ndarray
+    hi: np.ndarray
+    order: np.ndarray
+
+
+def sweep_runs(
+    scores: dict[tuple[str, str], MetricScores],
+    ks: np.ndarray,
+    routes: dict[str, np.ndarray] | None = None,
+    apply_min_impact: bool = True,
+    start_hours: tuple[int, int] | None = None,
+) -> RunTable:
+    """`sweep_codes` without expanding runs into one row per multiplier: what counts
+    need (each run is counted once per level range, not once per multiplier)."""
+    ks = np.asarray(ks, dtype=np.float64)
+    routes = routes or {}
+    names = [t for lv in routes for t in np.asarray(routes[lv]).tolist()]
+    teams = tuple(dict.fromkeys(["", *names]))
+    team_pos = {t: i for i, t in enumerate(teams)}
+    parts, order = [], np.argsort(ks, kind="stable")
+    for p, ((lv, _m), ms) in enumerate(scores.items()):
+        r = episode_runs(ms.score, ms.flat, ms.value, ms.expected, ks,
+                         ms.settings.min_detectors,
+                         ms.settings.min_impact if apply_min_impact else 0.0, start_hours)
+        route = routes.get(lv)
+        team = (np.zeros(r.ints.shape[1], dtype=np.int64) if route is None else
+                np.array([team_pos[t] for t in np.asarray(route).tolist()],
+                         dtype=np.int64)[r.ints[0]])
+        parts.append((p, r, team))
+    cat = (lambda f: np.concatenate([f(p, r, t) for p, r, t in parts])  # noqa: E731
+           if parts else np.empty(0, dtype=np.int64))
+    i64 = lambda row: cat(lambda p, r, t: r.ints[row])  # noqa: E731
+    f64 = lambda row: cat(lambda p, r, t: r.floats[row]).astype(np.float64)  # noqa: E731
+    n = sum(r.ints.shape[1] for _, r, _ in parts)
+    runs = CodedEpisodes(
+        pair=cat(lambda p, r, t: np.full(r.ints.shape[1], p, dtype=np.int64)),
+        series=i64(0), start=i64(1), end=i64(2), peak_hour=i64(5), peak_score=f64(0),
+        value=f64(1), expected=f64(2), bits=i64(7),
+        team_code=cat(lambda p, r, t: t), grid=np.zeros(n, dtype=np.int64),
+        pairs=tuple(scores), teams=teams,
+    )
+    return RunTable(runs=runs, lo=i64(3), hi=i64(4), order=order)
+
+
 def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
     """Episodes as the Alerts CSV contract of DESIGN.md, sorted by start."""
     hours = history.hours

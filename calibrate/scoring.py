@@ -804,34 +804,61 @@ def impact_curves(
         One per minimum impact. Every curve lists the teams of the unfiltered
         episodes (a team whose alerts are all filtered out shows 0).
     """
-    ks = np.asarray(ks, dtype=np.float64)
-    ms = np.asarray(min_impacts, dtype=np.float64)
-    if len(ms) == 0 or np.any(np.diff(ms) <= 0):
-        raise ValueError("min_impacts must be a non-empty ascending grid")
-    ep = episodes_by_grid
-    n_k, n_m, n_inc = len(ks), len(ms), len(incidents)
-    grid = np.asarray(ep.grid, dtype=np.int64)
+    grid = np.asarray(episodes_by_grid.grid, dtype=np.int64)
+    n_k = len(np.atleast_1d(ks))
     if len(grid) and (grid.min() < 0 or grid.max() >= n_k):
         raise ValueError(
             f"episode grid indices must lie in [0, {n_k}), got {grid.min()}..{grid.max()}"
         )
+    # a row is a run of one level: grid index g alone
+    return _impact_curves(episodes_by_grid, grid, grid + 1, np.arange(n_k), ks, min_impacts,
+                          incidents, early, late, teams_analysts, n_days, confidence)
+
+
+def impact_curves_of_runs(runs: Any, ks: np.ndarray, min_impacts: np.ndarray,
+                          incidents: Incidents, early: int, late: int,
+                          teams_analysts: Mapping[str, int], n_days: float,
+                          confidence: float = 0.95) -> list[Curve]:
+    """`impact_curves` of a `calibrate.replay.RunTable`: equal to `impact_curves` of the
+    rows `sweep_codes` would write, without writing them (each run counts once for
+    its whole range of multipliers)."""
+    return _impact_curves(runs.runs, runs.lo, runs.hi, runs.order, ks, min_impacts,
+                          incidents, early, late, teams_analysts, n_days, confidence)
+
+
+def _impact_curves(ep, lo, hi, order, ks, min_impacts, incidents, early, late,
+                   teams_analysts, n_days, confidence) -> list[Curve]:
+    """Row e is one episode at every grid index ``order[lo[e]:hi[e]]``."""
+    ks = np.asarray(ks, dtype=np.float64)
+    ms = np.asarray(min_impacts, dtype=np.float64)
+    if len(ms) == 0 or np.any(np.diff(ms) <= 0):
+        raise ValueError("min_impacts must be a non-empty ascending grid")
     if not n_days > 0:
         raise ValueError(f"n_days must be positive, but got {n_days=}")
+    n_k, n_m, n_inc = len(ks), len(ms), len(incidents)
+    lo = np.asarray(lo, dtype=np.int64)
+    hi = np.asarray(hi, dtype=np.int64)
+    order = np.asarray(order, dtype=np.int64)
     teams, tp = _curve_teams(ep, teams_analysts)
     n_t = len(teams)
     pa, pi = _overlap_pairs(ep, incidents, early, late)
     alert_true = np.zeros(len(ep), dtype=bool)
     alert_true[pa] = True
-    # level[e]: the last grid minimum impact that keeps episode e (-1: none keeps it)
-    level, counts = _impact_kernel(grid, np.asarray(ep.value, dtype=np.float64),
-                                   np.asarray(ep.expected, dtype=np.float64), tp, alert_true,
-                                   ms, n_k, n_t)
+    # level[e]: the last grid minimum impact that keeps episode e (-1: none keeps it);
+    # counts and best levels come per ascending multiplier level j, then go to order[j]
+    level, counts, best = _impact_kernel(
+        lo, hi, np.asarray(ep.value, dtype=np.float64),
+        np.asarray(ep.expected, dtype=np.float64), tp, alert_true, ms, n_k, n_t, pa, pi,
+        n_inc)
+    grid_counts = np.empty_like(counts)
+    grid_counts[:, order] = counts
+    grid_best = np.empty_like(best)
+    grid_best[order] = best
     # an incident is caught at (k, m) when one of its episodes at k is kept at m
-    best = np.full((n_k, n_inc), -1, dtype=np.int64)
-    np.maximum.at(best, (grid[pa], pi), level[pa])
-    caught = _at_least(np.bincount((np.arange(n_k)[:, None] * (n_m + 1) + best + 1).ravel(),
-                                   minlength=n_k * (n_m + 1)).reshape(n_k, n_m + 1)[:, 1:])
-    team_alerts, team_true = _at_least(counts[0]), _at_least(counts[1])
+    caught = _at_least(np.bincount((np.arange(n_k)[:, None] * (n_m + 1) + grid_best + 1)
+                                   .ravel(), minlength=n_k * (n_m + 1))
+                       .reshape(n_k, n_m + 1)[:, 1:])
+    team_alerts, team_true = _at_least(grid_counts[0]), _at_least(grid_counts[1])
     alerts, true_alerts = team_alerts.sum(axis=2), team_true.sum(axis=2)
     return [
         _curve(ks, n_inc, caught[:, lv], alerts[:, lv], true_alerts[:, lv], teams,
@@ -842,32 +869,47 @@ def impact_curves(
 
 
 @numba.njit(cache=True)
-def _impact_kernel(grid, value, expected, team, true, ms, n_k, n_t):
-    """Per episode the last grid minimum impact keeping it (-1: none), and counts of
-    episodes (all, true) per multiplier, exact level and team."""
-    n, n_m = grid.shape[0], ms.shape[0]
+def _impact_kernel(lo, hi, value, expected, team, true, ms, n_k, n_t, pa, pi, n_inc):
+    """Per row the last grid minimum impact keeping it (-1: none); counts of rows (all,
+    true) per ascending multiplier level, exact impact level and team; and per level
+    and incident the highest impact level among the rows meeting it (-1: none)."""
+    n, n_m = lo.shape[0], ms.shape[0]
     level = np.empty(n, dtype=np.int64)
-    counts = np.zeros((2, n_k, n_m, n_t), dtype=np.int64)
+    diff = np.zeros((2, n_k + 1, n_m, n_t), dtype=np.int64)
     for e in range(n):
         # |impact| as the detector computes it (value and expected are sums)
         x = abs(value[e] - expected[e])
         if np.isnan(x):
             lv = 0 if ms[0] <= 0 else -1  # kept only where nothing is filtered
         else:
-            lo, hi = 0, n_m  # first grid value above x (numpy's searchsorted, right)
-            while lo < hi:
-                mid = (lo + hi) // 2
+            a, b = 0, n_m  # first grid value above x (numpy's searchsorted, right)
+            while a < b:
+                mid = (a + b) // 2
                 if ms[mid] <= x:
-                    lo = mid + 1
+                    a = mid + 1
                 else:
-                    hi = mid
-            lv = lo - 1
+                    b = mid
+            lv = a - 1
         level[e] = lv
         if lv >= 0:
-            counts[0, grid[e], lv, team[e]] += 1
+            diff[0, lo[e], lv, team[e]] += 1
+            diff[0, hi[e], lv, team[e]] -= 1
             if true[e]:
-                counts[1, grid[e], lv, team[e]] += 1
-    return level, counts
+                diff[1, lo[e], lv, team[e]] += 1
+                diff[1, hi[e], lv, team[e]] -= 1
+    counts = np.zeros((2, n_k, n_m, n_t), dtype=np.int64)
+    for w in range(2):
+        run = np.zeros((n_m, n_t), dtype=np.int64)
+        for j in range(n_k):
+            run += diff[w, j]
+            counts[w, j] = run
+    best = np.full((n_k, n_inc), -1, dtype=np.int64)
+    for q in range(pa.shape[0]):
+        e, i = pa[q], pi[q]
+        for j in range(lo[e], hi[e]):
+            if level[e] > best[j, i]:
+                best[j, i] = level[e]
+    return level, counts, best
 
 
 def _at_least(counts: np.ndarray) -> np.ndarray:

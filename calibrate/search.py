@@ -66,12 +66,12 @@ from calibrate.api import Session
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import Executor
 from calibrate.incidents import Incidents
-from calibrate.replay import MetricScores, Replayer, sweep_codes
+from calibrate.replay import MetricScores, Replayer, sweep_codes, sweep_runs
 from calibrate.scoring import (
     Curve,
     Figures,
     _overlap_pairs,
-    impact_curves,
+    impact_curves_of_runs,
     multiplier_curve,
     period_filter,
     solve_multiplier,
@@ -386,15 +386,16 @@ class Evaluator:
         miss-rate excess, then the lowest worst budget ratio."""
         ms = np.asarray(self.min_impacts, dtype=np.float64)
         scores = self.replayer.scores(config.with_base(min_impact=float(ms[0])))
-        eps = sweep_codes(scores, self.ks, self.replayer.routes,
+        runs = sweep_runs(scores, self.ks, self.replayer.routes,
                           start_hours=(self.first_hour, self.split_hour))
         ws = self.ses.ws
-        curves = impact_curves(eps, self.ks, ms, self.incidents, ws.incidents.early_hours,
-                               ws.incidents.late_hours, self.ses.analysts, self.n_days)
+        curves = impact_curves_of_runs(runs, self.ks, ms, self.incidents,
+                                       ws.incidents.early_hours, ws.incidents.late_hours,
+                                       self.ses.analysts, self.n_days)
         kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(ms)
         if self.false_windows is not None:
-            kfs = [c.true_alerts for c in impact_curves(
-                eps, self.ks, ms, self.false_windows, 0, 0, self.ses.analysts, self.n_days)]
+            kfs = [c.true_alerts for c in impact_curves_of_runs(
+                runs, self.ks, ms, self.false_windows, 0, 0, self.ses.analysts, self.n_days)]
         best: tuple[tuple[float, float, float], int, int, str] | None = None
         for lv, c in enumerate(curves):
             k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)

@@ -16,8 +16,14 @@ import pytest
 
 from calibrate.detectors import episodes_grid
 from calibrate.incidents import Incidents
-from calibrate.replay import MetricScores, sweep, sweep_codes
-from calibrate.scoring import match, multiplier_curve, period_filter
+from calibrate.replay import MetricScores, sweep, sweep_codes, sweep_runs
+from calibrate.scoring import (
+    impact_curves,
+    impact_curves_of_runs,
+    match,
+    multiplier_curve,
+    period_filter,
+)
 from calibrate.settings import DetectorSettings
 
 
@@ -211,3 +217,25 @@ def test_coded_sweep_scores_like_the_text_table(seed: int) -> None:
     for f in ("caught", "alerts", "true_alerts", "team_alerts", "team_false_alerts"):
         np.testing.assert_array_equal(getattr(a, f), getattr(b, f))
     np.testing.assert_array_equal(a.alerts_per_analyst_day, b.alerts_per_analyst_day)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_run_table_curves_equal_the_written_rows(seed: int) -> None:
+    """Reference: `impact_curves` of the rows `sweep_codes` writes (itself checked against
+    figures() one (k, min impact) at a time in test_scoring); the run table must count
+    the same without writing them. The grid is given unsorted to exercise `order`."""
+    scores = random_scores(seed)
+    ks = np.array([3.0, 0.8, 6.0, 1.5])
+    inc = random_incidents(seed)
+    ms = np.array([0.0, 0.5, 2.0, 5.0])
+    analysts = {"red": 2, "green": 1, "gray": 3}
+    rows = sweep_codes(scores, ks, ROUTES, apply_min_impact=False, start_hours=(10, 100))
+    runs = sweep_runs(scores, ks, ROUTES, apply_min_impact=False, start_hours=(10, 100))
+    assert len(runs.runs) < len(rows)  # runs span several multipliers
+    a = impact_curves(rows, ks, ms, inc, 1, 2, analysts, 3.0)
+    b = impact_curves_of_runs(runs, ks, ms, inc, 1, 2, analysts, 3.0)
+    assert max(c.alerts.max() for c in a) > 0 and max(c.caught.max() for c in a) > 0
+    for ca, cb in zip(a, b, strict=True):
+        assert ca.teams == cb.teams
+        for f in ("caught", "alerts", "true_alerts", "team_alerts", "team_false_alerts"):
+            np.testing.assert_array_equal(getattr(ca, f), getattr(cb, f))
