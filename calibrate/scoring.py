@@ -876,11 +876,14 @@ def _impact_kernel(lo, hi, value, expected, team, true, ms, n_k, n_t, pa, pi, n_
     n, n_m = lo.shape[0], ms.shape[0]
     level = np.empty(n, dtype=np.int64)
     diff = np.zeros((2, n_k + 1, n_m, n_t), dtype=np.int64)
+    nan_level = -1  # a NaN impact is kept only where nothing is filtered (m <= 0)
+    while nan_level + 1 < n_m and ms[nan_level + 1] <= 0:
+        nan_level += 1
     for e in range(n):
         # |impact| as the detector computes it (value and expected are sums)
         x = abs(value[e] - expected[e])
         if np.isnan(x):
-            lv = 0 if ms[0] <= 0 else -1  # kept only where nothing is filtered
+            lv = nan_level
         else:
             a, b = 0, n_m  # first grid value above x (numpy's searchsorted, right)
             while a < b:

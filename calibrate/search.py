@@ -182,7 +182,8 @@ def impact_grid(spec: SearchParam, current: float | Sequence[float]) -> np.ndarr
     current = [float(c) for c in np.atleast_1d(current)]
     for c in current:
         spec = _with_current(spec, c)
-    low, high = float(spec.low), float(spec.high)
+    # a minimum impact is zero or positive (the workspace checks ranges; this guards API use)
+    low, high = max(float(spec.low), 0.0), max(float(spec.high), 0.0)
     if high <= low:
         return np.array([low])
     # round values people can read in a config (1, 1.5, 2, 3, 5, 7 per decade), from
@@ -633,6 +634,9 @@ def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> s
     h.update(repr(goal).encode())
     h.update(repr(sorted(ses.analysts.items())).encode())
     h.update(repr(ses.ws.metric_names).encode())
+    # what is solved rather than searched: a study whose trials sampled the minimum
+    # impact must not be continued by a search that solves it (its trials lack it)
+    h.update(b"solved: fence_multiplier" + (b", min_impact" if solved_min_impact(ses) else b""))
     return f"tune-{h.hexdigest()[:16]}"
 
 

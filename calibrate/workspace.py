@@ -528,6 +528,8 @@ def _search_param(name: str, raw: Any, typ: str, loc: str) -> SearchParam:
             raise InputError(
                 loc, f"needs low <= high (and low > 0 for log), but got low={low}, high={high}"
             )
+        if name == "min_impact" and low < 0:
+            raise InputError(loc, f"a minimum impact is zero or positive, but got low={low}")
         return SearchParam(name=name, kind="float", low=low, high=high, log=log)
     raise InputError(loc, f"a {typ} setting can only be searched over a list of values")
 

@@ -183,5 +183,6 @@ def test_a_passed_local_executor_keeps_its_workers_across_replays(ses):
     # a replayer that made its own executor shuts it down
     rp = api.make_replayer(ses, engine="local", progress=False)
     rp.replay(ses.ws.detector)
+    assert rp.executor._pool is not None
     rp.close()
     assert rp.executor._pool is None

@@ -468,24 +468,29 @@ def test_impact_curves_equal_figures_of_the_kept_episodes(seed: int) -> None:
     ep.value = rng.choice([-3.0, -1.0, 0.0, 0.5, 1.0, 2.0, 7.0], len(ep)) + 0.0
     ep.value[::7] = rng.normal(0.0, 4.0, len(ep.value[::7]))
     ep.value[5] = np.nan
-    ms = np.array([0.0, 0.5, 1.0, 2.5, 7.0])
-    curves = impact_curves(ep, ks, ms, inc, 1, 2, TEAMS, n_days=12.5)
-    assert len(curves) == len(ms)
-    for lv, m in enumerate(ms):
-        c = curves[lv]
-        for g in range(n_grid):
-            # reference: the detector's rule (drop |impact| < m, NaN only kept at m <= 0)
-            # then figures() on what is left, one (k, m) at a time
-            size = np.abs(ep.impact)
-            keep = (ep.grid == g) & ((size >= m) | (m <= 0))
-            ep_km = ep.take(keep)
-            f = figures(match(ep_km, inc, 1, 2), ep_km, inc, TEAMS, n_days=12.5)
-            assert c.caught[g] == f.caught
-            assert (c.alerts[g], c.false_alerts[g]) == (f.alerts, f.false_alerts)
-            assert c.miss_rate[g] == pytest.approx(f.miss_rate)
-            for j, team in enumerate(c.teams):
-                want = f.per_team.loc[team, "alerts"] if team in f.per_team.index else 0
-                assert c.team_alerts[g, j] == want
+    # a grid below 0 too: the API allows it, and every m <= 0 keeps everything
+    for ms in (np.array([0.0, 0.5, 1.0, 2.5, 7.0]), np.array([-1.0, 0.0, 1.0])):
+        curves = impact_curves(ep, ks, ms, inc, 1, 2, TEAMS, n_days=12.5)
+        assert len(curves) == len(ms)
+        for lv, m in enumerate(ms):
+            c = curves[lv]
+            for g in range(n_grid):
+                # reference: the detector's rule (calibrate/detectors.py, _runs_kernel:
+                # kept when min_impact <= 0 or |impact| >= min_impact, so a NaN impact
+                # only at m <= 0), then figures() on what is left, one (k, m) at a time
+                size = np.abs(ep.impact)
+                keep = (ep.grid == g) & ((size >= m) | (m <= 0))
+                ep_km = ep.take(keep)
+                f = figures(match(ep_km, inc, 1, 2), ep_km, inc, TEAMS, n_days=12.5)
+                assert c.caught[g] == f.caught
+                assert (c.alerts[g], c.false_alerts[g]) == (f.alerts, f.false_alerts)
+                assert c.true_alerts[g] == f.alerts - f.false_alerts
+                assert c.miss_rate[g] == pytest.approx(f.miss_rate)
+                for j, team in enumerate(c.teams):
+                    row = f.per_team.loc[team] if team in f.per_team.index else None
+                    assert c.team_alerts[g, j] == (0 if row is None else row["alerts"])
+                    assert c.team_false_alerts[g, j] == (
+                        0 if row is None else row["false_alerts"])
 
 
 def test_impact_curves_need_an_ascending_grid() -> None:

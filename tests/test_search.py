@@ -173,7 +173,7 @@ def test_known_false_alerts_with_a_solved_min_impact(ses):
         (len(got) + search.KNOWN_FALSE_PENALTY * expected) / (analysts * (split - first) / 24))
 
 
-def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path):
+def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path, monkeypatch):
     ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
     ses = api.open_session(make_workspace(tmp_path / "a", search=ranged))
     assert search.solved_min_impact(ses) is not None
@@ -181,10 +181,17 @@ def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path):
     # round grid values, today's 0 included
     grid = search.impact_grid(search.solved_min_impact(ses), 0.0)
     assert grid[0] == 0.0 and grid[-1] == 800.0 and 1.5 in grid and 700.0 in grid
+    solved_name = search.study_name_for(ses, ses.ws.goal, None)
     listed = SEARCH + "\nmin_impact = [0.0, 50.0]"
     ses = api.open_session(make_workspace(tmp_path / "b", search=listed))
     assert search.solved_min_impact(ses) is None
     assert "min_impact" in {p.name for p in search.build_space(ses)}
+    # a study whose trials sampled the minimum impact is never continued by one solving
+    # it (its trials lack the solved value): the name records what is solved
+    ses_a = api.open_session(make_workspace(tmp_path / "a2", search=ranged))
+    assert search.study_name_for(ses_a, ses_a.ws.goal, None) == solved_name
+    monkeypatch.setattr(search, "solved_min_impact", lambda ses: None)  # as before solving
+    assert search.study_name_for(ses_a, ses_a.ws.goal, None) != solved_name
     grouped = ranged + '\ntune_by = "level"'
     ses = api.open_session(make_workspace(tmp_path / "c", search=grouped))
     assert search.solved_min_impact(ses) is None

@@ -158,6 +158,8 @@ BAD = [
      "[search] key 'min_impact'", "unknown key"),
     ({"search": "min_impact = { low = 0, high = 5, log = true }"}, "",
      "[search] key 'min_impact'", "low > 0 for log"),
+    ({"search": "min_impact = { low = -10.0, high = 5 }"}, "",
+     "[search] key 'min_impact'", "zero or positive"),
     ({"search": "robust = { low = 0, high = 1 }"}, "",
      "[search] key 'robust'", "can only be searched over a list"),
     ({"search": "sides = 3"}, "", "[search] key 'sides'", "must be a list of values"),
