@@ -100,9 +100,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
     _engine_args(p)
 
-    p = sub.add_parser("report", help="write the calibration report for a config")
+    p = sub.add_parser("report", help="write the calibration report for a config or a study")
     p.add_argument("workspace")
-    p.add_argument("--config", required=True)
+    p.add_argument("--config", default=None, help="tuned config to report on")
+    p.add_argument(
+        "--study", nargs="?", const="", default=None, metavar="NAME",
+        help="report on a study's best trial so far, running no trial (NAME: default the "
+        "one `calibrate tune` derives from the workspace)")
+    p.add_argument("--storage", default=None,
+                   help="the study's Optuna storage URL or journal file (with --study)")
     p.add_argument("--out", required=True, help="report folder")
     p.add_argument("--force", action="store_true", help="replace an existing report folder")
     _engine_args(p)

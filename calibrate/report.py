@@ -1168,20 +1168,37 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
 
 
 def cli_report(args: Any) -> int:
-    """`calibrate report WORKSPACE --config C --out DIR`."""
+    """`calibrate report WORKSPACE (--config C | --study [NAME]) --out DIR`."""
     from calibrate.outputs import load_config, load_provenance
 
+    config_path, study = getattr(args, "config", None), getattr(args, "study", None)
+    if (config_path is None) == (study is None):
+        raise CalibrationError("report: give either --config FILE or --study [NAME]")
     out = Path(args.out)
     if out.exists() and not getattr(args, "force", False):
         raise CalibrationError(f"{out}: already exists; choose a new report folder or pass --force")
     ses = api.open_session(args.workspace)
     if ses.incidents is None:
         raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
-    config = load_config(args.config)
-    split = load_provenance(args.config).get("split_hour")
+    if study is not None:
+        from calibrate.executors import make_executor
+        from calibrate.search import study_result
+
+        executor = make_executor(args.engine, args.workers, args.scheduler)
+        try:
+            result = study_result(ses, storage=getattr(args, "storage", None),
+                                  study_name=study or None, executor=executor)
+            write_report(ses, result, out, executor=executor)
+        finally:
+            executor.close()
+        print(f"{result.reason}")
+        print(f"report written to {out / 'index.html'}")
+        return 0
+    config = load_config(config_path)
+    split = load_provenance(config_path).get("split_hour")
     write_config_report(
         ses, config, out, split_hour=int(split) if isinstance(split, int) else None,
-        force=True, source=f"config {args.config}", engine=args.engine, workers=args.workers,
+        force=True, source=f"config {config_path}", engine=args.engine, workers=args.workers,
         scheduler=args.scheduler,
     )
     print(f"report written to {out / 'index.html'}")

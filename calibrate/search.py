@@ -716,9 +716,28 @@ def tune(
         raise InputError("--trials", f"must be at least 1, but got {budget}")
     if ses.incidents is None:
         raise InputError(str(ws.file), "no [incidents] path: nothing to tune against")
-    space = build_space(ses)
+    space, starts, first_hour, split, fence_w, ks, ms = _plan(ses, warm_start)
     current = ws.detector
-    starts = [current, *warm_start]
+    name = study_name or study_name_for(ses, goal, known_false)
+    store, store_name = open_storage(ses, storage)
+    rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
+                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
+    try:
+        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false, min_impacts=ms)
+        study = _run_study(ses, ev, space, starts, name, store, budget, progress)
+        result = _result(ses, ev, space, study, name, store_name, current, goal)
+    finally:
+        rp.close()
+    return result
+
+
+def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
+    """What a search of the workspace scores and on which hours: the Optuna space, the
+    starting configs, the tuning hours [first_hour, split), the fence windows to cache
+    and the multiplier and minimum impact grids (None: the latter is searched)."""
+    ws = ses.ws
+    space = build_space(ses)
+    starts = [ws.detector, *warm_start]
     windows_l = candidate_values(space, "decomposition_window_hours",
                                  [c.base.decomposition_window_hours for c in starts]
                                  + [g.settings.decomposition_window_hours
@@ -739,20 +758,52 @@ def tune(
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
     ks = np.unique(np.r_[ks, extra])
-
-    name = study_name or study_name_for(ses, goal, known_false)
-    store, store_name = open_storage(ses, storage)
-    rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
-                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
     impact = solved_min_impact(ses)
     ms = None if impact is None else impact_grid(impact, [c.base.min_impact for c in starts])
+    return space, starts, first_hour, split, fence_w, ks, ms
+
+
+def study_result(
+    ses: Session,
+    *,
+    storage: str | None = None,
+    study_name: str | None = None,
+    goal: Goal | None = None,
+    executor: Executor | None = None,
+    engine: str = "local",
+    workers: int | None = None,
+    scheduler: str | None = None,
+) -> TuneResult:
+    """The result of a study as it stands, running no trial (for the report of an
+    interrupted or shared search). Arguments as for `tune`."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    goal = goal or ses.ws.goal
+    if ses.incidents is None:
+        raise InputError(str(ses.ws.file), "no [incidents] path: nothing to report against")
+    space, starts, first_hour, split, fence_w, ks, ms = _plan(ses, ())
+    name = study_name or study_name_for(ses, goal, None)
+    if not (storage and "://" in storage):
+        path = (Path(storage) if storage else ses.ws.root / STUDY_FILE).expanduser()
+        if not path.is_file():
+            raise CalibrationError(f"{path}: no study file (run `calibrate tune` first, or "
+                                   "give its --storage)")
+    store, store_name = open_storage(ses, storage)
     try:
-        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false, min_impacts=ms)
-        study = _run_study(ses, ev, space, starts, name, store, budget, progress)
-        result = _result(ses, ev, space, study, name, store_name, current, goal)
+        study = optuna.load_study(study_name=name, storage=store)
+    except KeyError:
+        raise CalibrationError(
+            f"{store_name}: no study '{name}' (run `calibrate tune` first, or name the study "
+            f"with --study NAME)") from None
+    finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
+    if not any(t.state == optuna.trial.TrialState.COMPLETE for t in finished):
+        raise CalibrationError(f"{store_name}: study '{name}' has no completed trial yet")
+    rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
+                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
+    try:
+        ev = Evaluator(ses, rp, ks, first_hour, split, goal, None, min_impacts=ms)
+        return _result(ses, ev, space, study, name, store_name, ses.ws.detector, goal)
     finally:
         rp.close()
-    return result
 
 
 def _config_from(params: dict[str, Any], space: list[Param], ses: Session,

@@ -264,3 +264,41 @@ def test_review_frame_sorted_with_blank_verdicts(ses) -> None:
     keys = list(zip(rf["team"], rf["start"], strict=True))
     assert keys == sorted(keys)
     assert list(rf.columns[-2:]) == ["verdict", "comment"]
+
+
+def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, capsys) -> None:
+    """Reference: the `tune` result of the same study (its best trial, tuning and held-out
+    figures); the report reads the study and must run no further trial."""
+    import optuna
+
+    from calibrate import search
+    from calibrate.cli import main
+
+    ws = make_workspace(tmp_path / "ws", search="fence_window_hours = [48, 72]\ntrials = 3")
+    ses = api.open_session(ws)
+    store = str(tmp_path / "s.journal")
+    res = search.tune(ses, trials=3, storage=store, engine="serial", progress=False)
+    out = tmp_path / "from-study"
+    assert main(["report", str(ws), "--study", "--storage", store, "--out", str(out),
+                 "--engine", "serial"]) == 0
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    ref = json.loads(json.dumps(res.tuning.to_json_dict(), default=str))
+    assert summary["tuning"] == ref
+    assert summary["holdout"] == json.loads(json.dumps(res.holdout.to_json_dict(),
+                                                       default=str))
+    assert summary["settings"]["chosen"]["fence_multiplier"] == res.config.base.fence_multiplier
+    study = optuna.load_study(study_name=res.study_name,
+                              storage=search.open_storage(ses, store)[0])
+    assert len(study.trials) == 3  # nothing was run
+    # one-line errors: both sources, no study file, an unknown study name
+    capsys.readouterr()
+    assert main(["report", str(ws), "--study", "--config", "x.toml", "--out",
+                 str(tmp_path / "r2")]) == 1
+    assert main(["report", str(ws), "--study", "--storage", str(tmp_path / "none.journal"),
+                 "--out", str(tmp_path / "r3"), "--engine", "serial"]) == 1
+    assert main(["report", str(ws), "--study", "nope", "--storage", store, "--out",
+                 str(tmp_path / "r4"), "--engine", "serial"]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 3 and "either --config" in err[0]
+    assert "no study file" in err[1] and "no study 'nope'" in err[2]
+    assert not (tmp_path / "none.journal").exists()
