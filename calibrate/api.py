@@ -79,12 +79,14 @@ def make_replayer(
     scheduler: str | None = None,
     fence_windows: tuple[int, ...] = (),
     progress: bool = True,
+    cache_bytes: int | None = None,
 ) -> Replayer:
     """A `Replayer` over the session's history and watched metrics.
 
     Without `executor` it makes one from `engine`, `workers` and `scheduler` and shuts
     it down on `close()`; an executor passed in stays up for the caller to reuse (and
-    close): replayers of one history reuse its workers.
+    close): replayers of one history reuse its workers. `cache_bytes` bounds the
+    remainder streams kept between replays (least recently used dropped first).
     """
     for lv in levels or []:
         if lv not in ses.history.levels:
@@ -106,6 +108,7 @@ def make_replayer(
         fence_windows=fence_windows,
         progress=progress,
         own_executor=owned,
+        cache_bytes=cache_bytes,
     )
 
 

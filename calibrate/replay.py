@@ -9,6 +9,7 @@ only by `alerts_frame` / `scores_frame` at the edge.
 
 from __future__ import annotations
 
+from collections import OrderedDict
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -148,8 +149,12 @@ class Replayer:
         fence_windows: tuple[int, ...] = (),
         progress: bool = True,
         own_executor: bool = False,
+        cache_bytes: int | None = None,
     ):
         self.history = history
+        # streams of the least recently used decomposition settings are dropped beyond
+        # this many bytes (None: keep all) and refit if a later config needs them
+        self.cache_bytes = cache_bytes
         # close() shuts down only an executor this replayer was made to own: one passed in
         # stays up for the caller's next replay (its workers keep the history they hold)
         self.own_executor = own_executor
@@ -160,7 +165,7 @@ class Replayer:
         self.routes = routes or {}
         self.fence_windows = tuple(sorted(set(fence_windows)))
         self.progress = progress
-        self.cache: dict[tuple, StreamSet] = {}
+        self.cache: OrderedDict[tuple, StreamSet] = OrderedDict()  # least recent first
         self.shared = _shared_arrays(history, tuple(self.levels), tuple(self.metrics))
         self.fits = 0  # decompositions computed (series x settings), for reports
 
@@ -200,11 +205,23 @@ class Replayer:
             for key, (lv, m, _s, windows) in need.items():
                 self.cache[key] = _assemble(results[(lv, m)], self.history, lv, windows)
                 self.fits += self.history.levels[lv].n_series
-        return {
-            (lv, m): self.cache[self._key(lv, m, config.for_series(lv, m))]
-            for lv in self.levels
-            for m in self.metrics
-        }
+        keys = {(lv, m): self._key(lv, m, config.for_series(lv, m))
+                for lv in self.levels for m in self.metrics}
+        for key in keys.values():
+            self.cache.move_to_end(key)
+        self._evict(set(keys.values()))
+        return {pair: self.cache[key] for pair, key in keys.items()}
+
+    def _evict(self, keep: set[tuple]) -> None:
+        """Drop least recently used streams beyond `cache_bytes`, never those in `keep`."""
+        if self.cache_bytes is None:
+            return
+        total = sum(st.nbytes for st in self.cache.values())
+        for key in list(self.cache):
+            if total <= self.cache_bytes:
+                break
+            if key not in keep:
+                total -= self.cache.pop(key).nbytes
 
     def scores(self, config: DetectorConfig) -> dict[tuple[str, str], MetricScores]:
         """Fence scores and flatline flags for every (level, metric)."""

@@ -91,6 +91,9 @@ BUDGET_STATES = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNE
 INVALID = 1e9  # constraint value of a pruned (invalid) combination
 MAX_PRECOMPUTED_WINDOWS = 64
 JOINER_SEED_OFFSET = 1_000_003
+# remainder streams a tune keeps in memory; beyond, the least recently used
+# decomposition settings are dropped and refit if a later trial needs them again
+STREAM_CACHE_BYTES = 2 * 1024**3
 
 
 # --------------------------------------------------------------------------- space
@@ -721,7 +724,8 @@ def tune(
     name = study_name or study_name_for(ses, goal, known_false)
     store, store_name = open_storage(ses, storage)
     rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
-                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
+                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False,
+                           cache_bytes=STREAM_CACHE_BYTES)
     try:
         ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false, min_impacts=ms)
         study = _run_study(ses, ev, space, starts, name, store, budget, progress)

@@ -186,3 +186,32 @@ def test_a_passed_local_executor_keeps_its_workers_across_replays(ses):
     assert rp.executor._pool is not None
     rp.close()
     assert rp.executor._pool is None
+
+
+def test_stream_cache_stays_within_its_budget_and_refits_what_it_dropped(ses):
+    """Reference: a replayer with an unbounded cache. A bounded one drops the least
+    recently used decomposition settings, refits them when asked again, and gives the
+    same scores bit for bit."""
+    a = ses.ws.detector
+    b = a.with_base(seasonal_span=11)
+    full = api.make_replayer(ses, executor=SerialExecutor(), progress=False)
+    ref_a, ref_b = full.scores(a), full.scores(b)
+    one = sum(st.nbytes for st in full.streams(a).values())  # one setting's streams
+    rp = api.make_replayer(ses, executor=SerialExecutor(), progress=False,
+                           cache_bytes=one + one // 2)
+    rp.scores(a)
+    fits = rp.fits
+    rp.scores(b)  # b's streams push a's out, least recently used first
+    assert sum(st.nbytes for st in rp.cache.values()) <= one + one // 2
+    kept_a = [k for k in rp.cache if k[2] == a.base.decomposition_key()]
+    assert len([k for k in rp.cache if k[2] == b.base.decomposition_key()]) == len(ref_b)
+    assert 0 < len(ref_a) - len(kept_a)
+    again = rp.scores(a)
+    assert rp.fits > 2 * fits  # what was dropped of a is refit
+    for key, ms in ref_a.items():
+        for name in ARRAYS:
+            np.testing.assert_array_equal(getattr(again[key], name), getattr(ms, name))
+    # the config being returned is never dropped, even when it alone is over budget
+    tiny = api.make_replayer(ses, executor=SerialExecutor(), progress=False, cache_bytes=1)
+    got = tiny.scores(b)
+    assert set(got) == set(ref_b) and len(tiny.cache) == len(ref_b)
