@@ -877,8 +877,10 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         best = _best_feasible(study.get_trials(deepcopy=False, states=BUDGET_STATES))
         if best is not None:
             a = best.user_attrs
+            impact = a.get("min_impact")
             bar.set_postfix(miss=f"{a['miss_rate']:.2f}", per_analyst_day=f"{best.value:.2f}",
-                            k=f"{a['k']:.2f}")
+                            k=f"{a['k']:.2f}",
+                            **({} if impact is None else {"min_impact": f"{impact:g}"}))
         else:
             bar.set_postfix(feasible="none yet")
 
@@ -1135,6 +1137,16 @@ def side_by_side(result: TuneResult) -> list[str]:
     return lines
 
 
+def changed_settings_line(result: TuneResult) -> str:
+    """One line: the settings the tuned config changes, today's value -> the new one."""
+    cur, new = result.current.base, result.config.base
+    diffs = [f"{f.name} {getattr(cur, f.name)!r} -> {getattr(new, f.name)!r}"
+             for f in dataclasses.fields(new) if getattr(cur, f.name) != getattr(new, f.name)]
+    groups = f"; {len(result.config.groups)} group(s) with their own settings" \
+        if result.config.groups else ""
+    return "changed: " + (", ".join(diffs) if diffs else "nothing in the base settings") + groups
+
+
 def pareto_lines(result: TuneResult, limit: int = 10) -> list[str]:
     """The best trade-offs (Pareto front), one line each."""
     lines = ["best trade-offs (recall against the busiest team's alerts per analyst per day):"]
@@ -1201,6 +1213,7 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         print(f"nothing written to {out}")
         return 2
     print(result.reason)
+    print(changed_settings_line(result))
     write_config(out, result.config, result.provenance, force=force)
     print(f"tuned config written to {out}")
     if getattr(args, "report", None):

@@ -352,7 +352,12 @@ def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
     assert main(argv) == 0
     text = capsys.readouterr().out
     assert "tuning weeks" in text and "held-out weeks" in text
-    assert load_config(out).base.fence_multiplier > 0
+    tuned = load_config(out).base
+    assert tuned.fence_multiplier > 0
+    # the changed settings, today's value -> the written one
+    cur = api.open_session(ws).ws.detector.base
+    line = next(x for x in text.splitlines() if x.startswith("changed: "))
+    assert f"fence_multiplier {cur.fence_multiplier!r} -> {tuned.fence_multiplier!r}" in line
     before = out.read_bytes()
     assert main(argv) == 1
     assert "already exists; pass --force" in capsys.readouterr().err
