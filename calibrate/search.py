@@ -26,16 +26,17 @@ denominator is days. Constraints (Optuna's ``constraints_func``, feasible when a
 are <= 0): ``miss_rate - max_miss_rate`` and ``max over teams of
 (alerts_per_analyst_day / budget) - 1``. Infeasible trials are kept.
 
-Parameter groups (``[search] tune_by = "level"`` or ``"metric"``): every searched
-setting gets one Optuna parameter per group (``"campaign/fence_window_hours"``),
-all in one study. The groups' multipliers are then solved jointly by a greedy
-method over the groups' curves: start every group at the smallest multiplier of
-the grid (most catches); repeatedly take the single move "raise group g's
-multiplier to grid point j" that keeps the joint miss rate within the target and
-saves the most alerts per incident it loses (moves that lose nothing first,
-largest saving first); stop when no move saves alerts. Team budgets, which span
-groups, are checked on the joint result. The joint miss rate counts an incident as
-caught when any group's alerts catch it.
+Parameter groups (``[search] tune_by = "level"``, ``"metric"`` or ``"group"``, the
+last being the workspace's ``[detector.group.NAME]`` tables plus ``base`` for the
+series none matches): every searched setting gets one Optuna parameter per group
+(``"campaign/fence_window_hours"``), all in one study. The groups' multipliers are
+then solved jointly by a greedy method over the groups' curves: start every group
+at the smallest multiplier of the grid (most catches); repeatedly take the single
+move "raise group g's multiplier to grid point j" that keeps the joint miss rate
+within the target and saves the most alerts per incident it loses (moves that lose
+nothing first, largest saving first); stop when no move saves alerts. Team
+budgets, which span groups, are checked on the joint result. The joint miss rate
+counts an incident as caught when any group's alerts catch it.
 
 Holdout: the last ``holdout_fraction`` of the history, rounded to whole weeks, is
 held out; objective and constraints use only ``[first_hour, split_hour)``, where
@@ -78,7 +79,7 @@ from calibrate.scoring import (
     wilson,
 )
 from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
-from calibrate.workspace import Goal, SearchParam
+from calibrate.workspace import BASE_GROUP, Goal, SearchParam
 
 GRID_POINTS = 80
 IMPACT_STEPS = (1.0, 1.5, 2.0, 3.0, 5.0, 7.0)  # solved minimum impacts, per decade
@@ -203,14 +204,21 @@ def group_names(ses: Session, tune_by: str) -> list[str]:
         return list(ses.history.levels)
     if tune_by == "metric":
         return list(ses.ws.metric_names)
+    if tune_by == "group":
+        return [g.name for g in ses.ws.detector.groups] + [BASE_GROUP]
     return []
 
 
 def group_config(base: DetectorSettings, tune_by: str, names: Sequence[str],
-                 settings: dict[str, DetectorSettings]) -> DetectorConfig:
-    """A config with one group per level (or metric)."""
+                 settings: dict[str, DetectorSettings],
+                 named: Sequence[DetectorGroup] = ()) -> DetectorConfig:
+    """A config with one group per level (or metric); with tune_by "group", the
+    workspace's `named` groups (their levels and metrics) and the base for the rest."""
     if tune_by == "all":
         return DetectorConfig(base=settings[""])
+    if tune_by == "group":
+        return DetectorConfig(base=settings[BASE_GROUP], groups=tuple(
+            replace(g, settings=settings[g.name]) for g in named))
     groups = tuple(
         DetectorGroup(
             name=g,
@@ -232,6 +240,9 @@ def build_space(ses: Session) -> list[Param]:
     out: list[Param] = []
     for g in names or [None]:
         metrics = [g] if s.tune_by == "metric" and g else None
+        if s.tune_by == "group":
+            metrics = [m for grp in current.groups if grp.name == g for m in grp.metrics] \
+                or None
         own = s.group_params.get(g or "", ())
         # a group's own ranges ([search.groups.NAME]) replace the shared ones
         specs = [*own, *(p for p in s.params or default_params(ses, metrics)
@@ -251,6 +262,9 @@ def _settings_of(config: DetectorConfig, tune_by: str, group: str | None,
                  ses: Session) -> DetectorSettings:
     if group is None:
         return config.base
+    if tune_by == "group":
+        own = [g.settings for g in config.groups if g.name == group]
+        return own[0] if own else config.base  # a config without it: its base
     if tune_by == "level":
         return config.for_series(group, ses.ws.metric_names[0])
     return config.for_series(next(iter(ses.history.levels)), group)
@@ -434,8 +448,15 @@ class Evaluator:
         ws = self.ses.ws
         teams = list(self.ses.analysts)
         parts = []
-        for g in config.groups:
-            sub = {key: ms for key, ms in scores.items() if g.matches(*key)}
+        # each (level, metric) belongs to the first group matching it (as in replay),
+        # the rest to the base settings, solved as one more group
+        owner = {key: next((g.name for g in config.groups if g.matches(*key)), BASE_GROUP)
+                 for key in scores}
+        base = DetectorGroup(name=BASE_GROUP, settings=config.base)
+        for g in [*config.groups, base]:
+            sub = {key: ms for key, ms in scores.items() if owner[key] == g.name}
+            if not sub:
+                continue
             c, kf, eps = self.curve(sub)
             caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
             pa, pi = _overlap_pairs(eps, self.incidents, ws.incidents.early_hours,
@@ -822,7 +843,7 @@ def _config_from(params: dict[str, Any], space: list[Param], ses: Session,
         s = replace(cur, **changes)
         s.validate(f"trial setting{'' if not g else ' of group ' + g}")
         out[g] = s
-    return group_config(current.base, tune_by, names, out)
+    return group_config(current.base, tune_by, names, out, ses.ws.detector.groups)
 
 
 def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[DetectorConfig],
@@ -967,9 +988,13 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     config = _config_from(chosen.params, space, ses, current)
     a = chosen.user_attrs
     if config.groups:
+        group_k = a["group_k"]
         config = replace(config, groups=tuple(
-            replace(g, settings=replace(g.settings, fence_multiplier=a["group_k"][g.name]))
+            replace(g, settings=replace(g.settings, fence_multiplier=group_k.get(
+                g.name, g.settings.fence_multiplier)))
             for g in config.groups))
+        if BASE_GROUP in group_k:  # series no group matches (tune_by = "group")
+            config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
     else:
         config = config.with_base(fence_multiplier=a["k"])
     if a.get("min_impact") is not None:

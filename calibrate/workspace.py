@@ -17,7 +17,9 @@ from calibrate.formulas import parse_formula
 from calibrate.settings import DetectorConfig, DetectorSettings
 
 FILL_RULES = ("zero", "interpolate")
-GROUPINGS = ("all", "level", "metric")
+GROUPINGS = ("all", "level", "metric", "group")
+# with tune_by = "group", the series no [detector.group.NAME] matches form this group
+BASE_GROUP = "base"
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -483,15 +485,27 @@ def _search_groups(raw: Any, setting_types: dict[str, str],
 
 
 def _check_search_groups(ws: Workspace, name: str) -> None:
-    """Group names of `[search.groups]` must be groups of `tune_by`."""
+    """tune_by = "group" needs named [detector] groups; group names of `[search.groups]`
+    must be groups of `tune_by`."""
     s = ws.search
+    named = tuple(g.name for g in ws.detector.groups)
+    if s.tune_by == "group":
+        where = f"{name} [search] key 'tune_by'"
+        if not named:
+            raise InputError(where, 'tune_by = "group" needs [detector.group.NAME] tables')
+        if BASE_GROUP in named:
+            raise InputError(f"{name} [detector.group.{BASE_GROUP}]",
+                             f"the name '{BASE_GROUP}' stands for the series no group matches "
+                             'with tune_by = "group"; rename the group')
     if not s.group_params:
         return
-    known = {"level": tuple(ws.levels), "metric": ws.metric_names}.get(s.tune_by)
+    known = {"level": tuple(ws.levels), "metric": ws.metric_names,
+             "group": (*named, BASE_GROUP)}.get(s.tune_by)
     for group in s.group_params:
         where = f"{name} [search.groups.{group}]"
         if known is None:
-            raise InputError(where, 'per-group ranges need tune_by = "level" or "metric"')
+            raise InputError(where, 'per-group ranges need tune_by = "level", "metric" or '
+                             '"group"')
         if group not in known:
             raise InputError(where, f"'{group}' is not a {s.tune_by} (known: {', '.join(known)})")
 

@@ -265,17 +265,30 @@ PER_METRIC = ("\nmin_impact = { low = 0.0, high = 200.0 }\n"
               "[search.groups.clicks]\nmin_impact = { low = 0.0, high = 4.0 }")
 
 
-@pytest.mark.parametrize("tune_by", ["all", "all-solved", "level", "metric"])
+# a named group: campaign-level impressions; everything else stays with the base settings
+NAMED = '\n[detector.group.leaf_volume]\nlevels = ["campaign"]\nmetrics = ["impressions"]'
+
+
+@pytest.mark.parametrize("tune_by", ["all", "all-solved", "level", "metric", "group"])
 def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     extra = PER_METRIC if tune_by == "metric" else ""
     if tune_by == "all-solved":  # minimum impact solved with the multiplier
         tune_by, extra = "all", "\nmin_impact = { low = 0.0, high = 800.0 }"
-    ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"' + extra)
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"' + extra,
+                        detector=NAMED if tune_by == "group" else "")
     ses = api.open_session(ws)
     res = _tune(ses, tmp_path, trials=3)
     assert res.feasible
     if tune_by == "level":
         assert [g.name for g in res.config.groups] == list(ses.history.levels)
+    if tune_by == "group":
+        # the named group keeps its levels and metrics; the base is tuned for the rest
+        (g,) = res.config.groups
+        assert (g.name, g.levels, g.metrics) == ("leaf_volume", ("campaign",), ("impressions",))
+        assert {"leaf_volume", "base"} <= {p.group for p in search.build_space(ses)}
+        # the base's multiplier is solved as one more group
+        assert res.config.base.fence_multiplier in set(res.trials["k[base]"])
+        assert g.settings.fence_multiplier in set(res.trials["k[leaf_volume]"])
     if tune_by == "metric":
         assert [g.name for g in res.config.groups] == list(ses.ws.metric_names)
         got = {g.name: g.settings.min_impact for g in res.config.groups}

@@ -170,8 +170,15 @@ BAD = [
     ({"search": 'tune_by = "level"'}, "[search.groups.campaign]\nmin_impact = 3\n",
      "[search.groups.campaign] key 'min_impact'", "must be a list of values"),
     ({"search": "trials = 3"}, "[search.groups.ctr]\nmin_impact = [1.0]\n",
-     "[search.groups.ctr]", 'per-group ranges need tune_by = "level" or "metric"'),
+     "[search.groups.ctr]", 'per-group ranges need tune_by = "level", "metric" or "group"'),
     ({"search": 'groups = 3'}, "", "[search] key 'groups'", "must be a table of groups"),
+    ({"search": 'tune_by = "group"'}, "", "[search] key 'tune_by'",
+     "needs [detector.group.NAME] tables"),
+    ({"search": 'tune_by = "group"', "detector": '[detector.group.base]\nlevels = ["market"]'},
+     "", "[detector.group.base]", "stands for the series no group matches"),
+    ({"search": 'tune_by = "group"', "detector": '[detector.group.top]\nlevels = ["market"]'},
+     "[search.groups.leaf]\nmin_impact = [1.0]\n", "[search.groups.leaf]",
+     "'leaf' is not a group (known: top, base)"),
 ]
 
 
