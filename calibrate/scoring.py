@@ -812,22 +812,26 @@ def impact_curves(
         )
     # a row is a run of one level: grid index g alone
     return _impact_curves(episodes_by_grid, grid, grid + 1, np.arange(n_k), ks, min_impacts,
-                          incidents, early, late, teams_analysts, n_days, confidence)
+                          incidents, early, late, teams_analysts, n_days, confidence)[0]
 
 
 def impact_curves_of_runs(runs: Any, ks: np.ndarray, min_impacts: np.ndarray,
                           incidents: Incidents, early: int, late: int,
                           teams_analysts: Mapping[str, int], n_days: float,
-                          confidence: float = 0.95) -> list[Curve]:
+                          confidence: float = 0.95, with_best: bool = False):
     """`impact_curves` of a `calibrate.replay.RunTable`: equal to `impact_curves` of the
     rows `sweep_codes` would write, without writing them (each run counts once for
-    its whole range of multipliers)."""
-    return _impact_curves(runs.runs, runs.lo, runs.hi, runs.order, ks, min_impacts,
-                          incidents, early, late, teams_analysts, n_days, confidence)
+    its whole range of multipliers). With `with_best`, also the (n_k, n_incidents)
+    array of the highest minimum-impact level keeping an episode that meets each
+    incident at each multiplier (-1: none), so incident i is caught at (j, l) when
+    ``best[j, i] >= l``."""
+    curves, best = _impact_curves(runs.runs, runs.lo, runs.hi, runs.order, ks, min_impacts,
+                                  incidents, early, late, teams_analysts, n_days, confidence)
+    return (curves, best) if with_best else curves
 
 
 def _impact_curves(ep, lo, hi, order, ks, min_impacts, incidents, early, late,
-                   teams_analysts, n_days, confidence) -> list[Curve]:
+                   teams_analysts, n_days, confidence) -> tuple[list[Curve], np.ndarray]:
     """Row e is one episode at every grid index ``order[lo[e]:hi[e]]``."""
     ks = np.asarray(ks, dtype=np.float64)
     ms = np.asarray(min_impacts, dtype=np.float64)
@@ -865,7 +869,7 @@ def _impact_curves(ep, lo, hi, order, ks, min_impacts, incidents, early, late,
                teams_analysts, team_alerts[:, lv], team_alerts[:, lv] - team_true[:, lv],
                n_days, confidence)
         for lv in range(n_m)
-    ]
+    ], grid_best
 
 
 @numba.njit(cache=True)

@@ -168,16 +168,39 @@ def _with_current(spec: SearchParam, value: Any) -> SearchParam:
     return replace(spec, low=lo, high=hi)
 
 
-def solved_min_impact(ses: Session) -> SearchParam | None:
-    """The `min_impact` range when it is solved with the multiplier rather than
-    searched: a float range, and one set of settings for every series (no groups)."""
-    s = ses.ws.search
-    if s.tune_by != "all":
+def solved_min_impact(ses: Session, group: str | None = None) -> SearchParam | None:
+    """The `min_impact` range of the search (of one group, with tune_by level, metric or
+    group) when it is solved with the multiplier rather than searched: a float range."""
+    if (group is None) != (ses.ws.search.tune_by == "all"):
         return None
-    for spec in s.params or default_params(ses):
-        if spec.name == "min_impact" and spec.kind == "float":
-            return spec
+    for spec in _group_specs(ses, group):
+        if spec.name == "min_impact":
+            return spec if spec.kind == "float" else None
     return None
+
+
+def _group_specs(ses: Session, group: str | None) -> list[SearchParam]:
+    """Searched settings of one group: its `[search.groups.NAME]` ranges, then the shared
+    `[search]` ones it does not name (defaults when `[search]` names none)."""
+    s = ses.ws.search
+    metrics = [group] if s.tune_by == "metric" and group else None
+    if s.tune_by == "group":
+        metrics = [m for grp in ses.ws.detector.groups if grp.name == group
+                   for m in grp.metrics] or None
+    own = s.group_params.get(group or "", ())
+    return [*own, *(p for p in s.params or default_params(ses, metrics)
+                    if p.name not in {o.name for o in own})]
+
+
+def solved_groups(ses: Session) -> dict[str, SearchParam]:
+    """Every group (\"\" without groups) whose minimum impact is solved, with its range."""
+    names = group_names(ses, ses.ws.search.tune_by) or [None]
+    out = {}
+    for g in names:
+        spec = solved_min_impact(ses, g)
+        if spec is not None:
+            out[g or ""] = spec
+    return out
 
 
 def impact_grid(spec: SearchParam, current: float | Sequence[float]) -> np.ndarray:
@@ -236,21 +259,13 @@ def build_space(ses: Session) -> list[Param]:
     s = ses.ws.search
     names = group_names(ses, s.tune_by)
     current = ses.ws.detector
-    solved = solved_min_impact(ses)
+    solved = solved_groups(ses)
     out: list[Param] = []
     for g in names or [None]:
-        metrics = [g] if s.tune_by == "metric" and g else None
-        if s.tune_by == "group":
-            metrics = [m for grp in current.groups if grp.name == g for m in grp.metrics] \
-                or None
-        own = s.group_params.get(g or "", ())
-        # a group's own ranges ([search.groups.NAME]) replace the shared ones
-        specs = [*own, *(p for p in s.params or default_params(ses, metrics)
-                         if p.name not in {o.name for o in own})]
         cur = _settings_of(current, s.tune_by, g, ses)
-        for spec in specs:
-            if spec.name == "fence_multiplier" or (g is None and solved is not None
-                                                    and spec.name == "min_impact"):
+        for spec in _group_specs(ses, g):
+            if spec.name == "fence_multiplier" or (spec.name == "min_impact"
+                                                    and (g or "") in solved):
                 continue
             spec = _with_current(spec, getattr(cur, spec.name))
             name = spec.name if g is None else f"{g}/{spec.name}"
@@ -330,6 +345,7 @@ class Evaluation:
     value: float
     constraints: list[float]
     min_impact: float | None = None  # solved minimum impact (None: the config's own)
+    group_min_impact: dict[str, float] = field(default_factory=dict)  # solved, per group
 
     def attrs(self) -> dict[str, Any]:
         return {k: _json_safe(v) for k, v in dataclasses.asdict(self).items()}
@@ -349,6 +365,8 @@ class Evaluator:
     # ascending grid: the minimum impact is solved on it with the multiplier (configs
     # without groups); None keeps each config's own minimum impact
     min_impacts: np.ndarray | None = None
+    # the same per group (tune_by level, metric or group), by group name
+    group_min_impacts: dict[str, np.ndarray] = field(default_factory=dict)
     incidents: Incidents = field(init=False)
     false_windows: Incidents | None = field(init=False)
 
@@ -445,7 +463,6 @@ class Evaluator:
 
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
-        ws = self.ses.ws
         teams = list(self.ses.analysts)
         parts = []
         # each (level, metric) belongs to the first group matching it (as in replay),
@@ -455,39 +472,69 @@ class Evaluator:
         base = DetectorGroup(name=BASE_GROUP, settings=config.base)
         for g in [*config.groups, base]:
             sub = {key: ms for key, ms in scores.items() if owner[key] == g.name}
-            if not sub:
-                continue
-            c, kf, eps = self.curve(sub)
-            caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
-            pa, pi = _overlap_pairs(eps, self.incidents, ws.incidents.early_hours,
-                                    ws.incidents.late_hours)
-            caught[np.asarray(eps.grid, dtype=np.int64)[pa], pi] = True
-            for t in c.teams:
-                if t not in teams:
-                    teams.append(t)
-            parts.append((g, c, kf, caught))
+            if sub:
+                parts.append(self._candidates(g.name, sub, teams))
+        # a candidate is (multiplier j, minimum impact l) at index l * n_k + j; groups
+        # whose minimum impact is not solved have l = 0 only (their own value)
         n_k, n_t = len(self.ks), len(teams)
-        team_alerts = []
-        for _, c, _, _ in parts:
-            ta = np.zeros((n_k, n_t), dtype=np.int64)
-            for j, t in enumerate(c.teams):
-                ta[:, teams.index(t)] = c.team_alerts[:, j]
-            team_alerts.append(ta)
-        cost = [c.alerts + KNOWN_FALSE_PENALTY * kf for _, c, kf, _ in parts]
-        idx = greedy_multipliers([p[3] for p in parts], cost, self.goal.max_miss_rate)
+        cost = [alerts + KNOWN_FALSE_PENALTY * kf for _, _, _, alerts, kf, _ in parts]
+        idx = greedy_multipliers([p[1] for p in parts], cost, self.goal.max_miss_rate,
+                                 forward_only=[p[2] is None for p in parts])
         caught = np.zeros(len(self.incidents), dtype=bool)
-        for (_, _, _, cm), i in zip(parts, idx, strict=True):
+        ta = np.zeros(n_t, dtype=np.int64)
+        alerts = kf = 0
+        group_k: dict[str, float] = {}
+        group_m: dict[str, float] = {}
+        for (name, cm, grid, al, kfs, tas), i in zip(parts, idx, strict=True):
             caught |= cm[i]
-        ta = sum(t[i] for t, i in zip(team_alerts, idx, strict=True))
-        alerts = int(sum(c.alerts[i] for (_, c, _, _), i in zip(parts, idx, strict=True)))
-        kf = int(sum(k[i] for (_, _, k, _), i in zip(parts, idx, strict=True)))
-        group_k = {g.name: float(self.ks[i]) for (g, _, _, _), i in zip(parts, idx, strict=True)}
+            for t, v in tas[i].items():
+                ta[teams.index(t)] += v
+            alerts += int(al[i])
+            kf += int(kfs[i])
+            group_k[name] = float(self.ks[i % n_k])
+            if grid is not None:
+                group_m[name] = float(grid[i // n_k])
         ev = self._figures(feasible=True, reason="", k=float(np.median(list(group_k.values()))),
                            group_k=group_k, caught=int(caught.sum()), alerts=alerts, kf=kf,
                            team_alerts=ta, teams=tuple(teams))
+        ev.group_min_impact = group_m
         ev.feasible = all(v <= 0 for v in ev.constraints)
         ev.reason = _reason(ev, self.goal)
         return ev
+
+    def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
+                    teams: list[str]):
+        """One group's candidates: (name, caught (n_cand, n_inc), minimum impact grid or
+        None, alerts, known-false alerts, per-candidate team alerts as dicts); `teams`
+        gains the group's teams."""
+        ws = self.ses.ws
+        early, late = ws.incidents.early_hours, ws.incidents.late_hours
+        grid = self.group_min_impacts.get(name)
+        if grid is None:
+            c, kf, eps = self.curve(sub)
+            caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
+            pa, pi = _overlap_pairs(eps, self.incidents, early, late)
+            caught[np.asarray(eps.grid, dtype=np.int64)[pa], pi] = True
+            curves, kfs = [c], [kf]
+        else:
+            runs = sweep_runs(sub, self.ks, self.replayer.routes, apply_min_impact=False,
+                              start_hours=(self.first_hour, self.split_hour))
+            curves, best = impact_curves_of_runs(runs, self.ks, grid, self.incidents, early,
+                                                 late, self.ses.analysts, self.n_days,
+                                                 with_best=True)
+            # caught at (j, l): an episode meeting the incident is kept at level l
+            caught = (best[None, :, :] >= np.arange(len(grid))[:, None, None]).reshape(
+                len(grid) * len(self.ks), len(self.incidents))
+            kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(grid)
+            if self.false_windows is not None:
+                kfs = [x.true_alerts for x in impact_curves_of_runs(
+                    runs, self.ks, grid, self.false_windows, 0, 0, self.ses.analysts,
+                    self.n_days)]
+        for c in curves:
+            teams.extend(t for t in c.teams if t not in teams)
+        per_team = [dict(zip(c.teams, row, strict=True)) for c in curves for row in c.team_alerts]
+        alerts = np.concatenate([c.alerts for c in curves])
+        return name, caught, grid, alerts, np.concatenate(kfs), per_team
 
     def _budget_ratio(self, c: Curve, j: int) -> float:
         return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
@@ -541,23 +588,29 @@ def _fallback_index(c: Curve, goal: Goal) -> int:
 
 
 def greedy_multipliers(caught: Sequence[np.ndarray], cost: Sequence[np.ndarray],
-                       max_miss_rate: float) -> list[int]:
+                       max_miss_rate: float,
+                       forward_only: Sequence[bool] | None = None) -> list[int]:
     """Joint multiplier grid indices for several groups (method in the module docstring).
 
     Parameters
     ----------
-    caught : list of (n_k, n_incidents) bool arrays, one per group
-    cost : list of (n_k,) arrays (alerts, penalised), one per group
+    caught : list of (n_cand, n_incidents) bool arrays, one per group
+    cost : list of (n_cand,) arrays (alerts, penalised), one per group
     max_miss_rate : float
+    forward_only : list of bool, optional
+        Per group: moves only to a later candidate (a larger multiplier, the default),
+        or to any candidate that saves alerts (candidates of (multiplier, minimum
+        impact) pairs). Every move saves alerts, so the method ends.
 
     Returns
     -------
     list of int
-        Grid index per group.
+        Candidate index per group (the first one is where each group starts).
     """
     n_g = len(caught)
     idx = [0] * n_g
     n_inc = caught[0].shape[1] if n_g else 0
+    forward = list(forward_only) if forward_only is not None else [True] * n_g
 
     def miss(count: np.ndarray | int) -> np.ndarray:
         return (n_inc - np.asarray(count)) / n_inc if n_inc else np.zeros(np.shape(count))
@@ -574,12 +627,19 @@ def greedy_multipliers(caught: Sequence[np.ndarray], cost: Sequence[np.ndarray],
             counts = (caught[g] | others[None, :]).sum(axis=1)
             saving = cost[g][idx[g]] - cost[g]
             lost = now - counts
-            ok = (np.arange(len(counts)) > idx[g]) & (miss(counts) <= max_miss_rate) & (saving > 0)
-            for j in np.flatnonzero(ok):
-                rate = math.inf if lost[j] <= 0 else saving[j] / lost[j]
-                cand = (rate, float(saving[j]), -g, int(j))
-                if best is None or cand > best:
-                    best = cand
+            ok = (miss(counts) <= max_miss_rate) & (saving > 0)
+            if forward[g]:
+                ok &= np.arange(len(counts)) > idx[g]
+            cand = np.flatnonzero(ok)
+            if not len(cand):
+                continue
+            with np.errstate(divide="ignore", invalid="ignore"):
+                rate = np.where(lost[cand] <= 0, np.inf, saving[cand] / lost[cand])
+            # the group's best move: highest rate, then saving, then the later candidate
+            top = np.lexsort((cand, saving[cand], rate))[-1]
+            move = (float(rate[top]), float(saving[cand][top]), -g, int(cand[top]))
+            if best is None or move > best:
+                best = move
         if best is None:
             return idx
         idx[-best[2]] = best[3]
@@ -660,7 +720,7 @@ def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> s
     h.update(repr(ses.ws.metric_names).encode())
     # what is solved rather than searched: a study whose trials sampled the minimum
     # impact must not be continued by a search that solves it (its trials lack it)
-    h.update(b"solved: fence_multiplier" + (b", min_impact" if solved_min_impact(ses) else b""))
+    h.update(f"solved: fence_multiplier, min_impact of {sorted(solved_groups(ses))}".encode())
     return f"tune-{h.hexdigest()[:16]}"
 
 
@@ -748,7 +808,9 @@ def tune(
                            scheduler=scheduler, fence_windows=tuple(fence_w), progress=False,
                            cache_bytes=STREAM_CACHE_BYTES)
     try:
-        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false, min_impacts=ms)
+        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false,
+                       min_impacts=ms.get(""),
+                       group_min_impacts={g: v for g, v in ms.items() if g})
         study = _run_study(ses, ev, space, starts, name, store, budget, progress)
         result = _result(ses, ev, space, study, name, store_name, current, goal)
     finally:
@@ -783,8 +845,10 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
     ks = np.unique(np.r_[ks, extra])
-    impact = solved_min_impact(ses)
-    ms = None if impact is None else impact_grid(impact, [c.base.min_impact for c in starts])
+    tune_by = ws.search.tune_by
+    ms = {g: impact_grid(spec, [_settings_of(c, tune_by, g or None, ses).min_impact
+                                for c in starts])
+          for g, spec in solved_groups(ses).items()}
     return space, starts, first_hour, split, fence_w, ks, ms
 
 
@@ -825,7 +889,8 @@ def study_result(
     rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
                            scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
     try:
-        ev = Evaluator(ses, rp, ks, first_hour, split, goal, None, min_impacts=ms)
+        ev = Evaluator(ses, rp, ks, first_hour, split, goal, None, min_impacts=ms.get(""),
+                       group_min_impacts={g: v for g, v in ms.items() if g})
         return _result(ses, ev, space, study, name, store_name, ses.ws.detector, goal)
     finally:
         rp.close()
@@ -946,6 +1011,8 @@ def trials_frame(study: optuna.Study, space: list[Param], teams: Sequence[str]) 
             row["min_impact"] = a["min_impact"]
         for g, k in (a.get("group_k") or {}).items():
             row[f"k[{g}]"] = k
+        for g, m in (a.get("group_min_impact") or {}).items():
+            row[f"min_impact[{g}]"] = m
         for key in ("incidents", "caught", "miss_rate", "miss_rate_high", "alerts",
                     "known_false_alerts"):
             row[key] = a.get(key, math.nan)
@@ -993,8 +1060,14 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
             replace(g, settings=replace(g.settings, fence_multiplier=group_k.get(
                 g.name, g.settings.fence_multiplier)))
             for g in config.groups))
+        group_m = a.get("group_min_impact") or {}
+        config = replace(config, groups=tuple(
+            replace(g, settings=replace(g.settings, min_impact=group_m[g.name]))
+            if g.name in group_m else g for g in config.groups))
         if BASE_GROUP in group_k:  # series no group matches (tune_by = "group")
             config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
+        if BASE_GROUP in group_m:
+            config = config.with_base(min_impact=group_m[BASE_GROUP])
     else:
         config = config.with_base(fence_multiplier=a["k"])
     if a.get("min_impact") is not None:

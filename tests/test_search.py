@@ -173,7 +173,7 @@ def test_known_false_alerts_with_a_solved_min_impact(ses):
         (len(got) + search.KNOWN_FALSE_PENALTY * expected) / (analysts * (split - first) / 24))
 
 
-def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path, monkeypatch):
+def test_min_impact_is_solved_for_a_float_range_per_group_too(tmp_path, monkeypatch):
     ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
     ses = api.open_session(make_workspace(tmp_path / "a", search=ranged))
     assert search.solved_min_impact(ses) is not None
@@ -190,12 +190,17 @@ def test_min_impact_is_solved_only_for_a_float_range_without_groups(tmp_path, mo
     # it (its trials lack the solved value): the name records what is solved
     ses_a = api.open_session(make_workspace(tmp_path / "a2", search=ranged))
     assert search.study_name_for(ses_a, ses_a.ws.goal, None) == solved_name
-    monkeypatch.setattr(search, "solved_min_impact", lambda ses: None)  # as before solving
+    monkeypatch.setattr(search, "solved_min_impact", lambda *a: None)  # as before solving
     assert search.study_name_for(ses_a, ses_a.ws.goal, None) != solved_name
-    grouped = ranged + '\ntune_by = "level"'
+    monkeypatch.undo()
+    # per group it is solved too, each group on its own grid; a group listing values
+    # ([search.groups.NAME]) has it searched
+    grouped = ranged + '\ntune_by = "level"\n[search.groups.market]\nmin_impact = [0.0, 9.0]'
     ses = api.open_session(make_workspace(tmp_path / "c", search=grouped))
-    assert search.solved_min_impact(ses) is None
-    assert "campaign/min_impact" in {p.name for p in search.build_space(ses)}
+    assert search.solved_min_impact(ses) is None  # no base group with tune_by level
+    assert set(search.solved_groups(ses)) == set(ses.history.levels) - {"market"} != set()
+    names = {p.name for p in search.build_space(ses)}
+    assert "campaign/min_impact" not in names and "market/min_impact" in names
 
 
 def test_known_false_alerts_are_counted_and_penalised(ses):
@@ -269,11 +274,13 @@ PER_METRIC = ("\nmin_impact = { low = 0.0, high = 200.0 }\n"
 NAMED = '\n[detector.group.leaf_volume]\nlevels = ["campaign"]\nmetrics = ["impressions"]'
 
 
-@pytest.mark.parametrize("tune_by", ["all", "all-solved", "level", "metric", "group"])
+@pytest.mark.parametrize("tune_by", ["all", "all-solved", "level", "metric", "group",
+                                     "group-solved"])
 def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     extra = PER_METRIC if tune_by == "metric" else ""
-    if tune_by == "all-solved":  # minimum impact solved with the multiplier
-        tune_by, extra = "all", "\nmin_impact = { low = 0.0, high = 800.0 }"
+    if tune_by.endswith("-solved"):  # minimum impact solved with the multiplier(s)
+        tune_by = tune_by.removesuffix("-solved")
+        extra = "\nmin_impact = { low = 0.0, high = 800.0 }"
     ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"' + extra,
                         detector=NAMED if tune_by == "group" else "")
     ses = api.open_session(ws)
@@ -289,6 +296,10 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
         # the base's multiplier is solved as one more group
         assert res.config.base.fence_multiplier in set(res.trials["k[base]"])
         assert g.settings.fence_multiplier in set(res.trials["k[leaf_volume]"])
+        if extra:  # and so are both minimum impacts, each on its grid
+            assert "min_impact[base]" in res.trials.columns
+            assert res.config.base.min_impact in set(res.trials["min_impact[base]"])
+            assert g.settings.min_impact in set(res.trials["min_impact[leaf_volume]"])
     if tune_by == "metric":
         assert [g.name for g in res.config.groups] == list(ses.ws.metric_names)
         got = {g.name: g.settings.min_impact for g in res.config.groups}
@@ -313,11 +324,41 @@ def test_group_ranges_replace_the_shared_ones_for_that_group_only(tmp_path):
     ws = make_workspace(tmp_path / "ws", search=SEARCH + '\ntune_by = "metric"' + PER_METRIC)
     ses = api.open_session(ws)
     spec = {p.name: p.spec for p in search.build_space(ses)}
-    assert (spec["clicks/min_impact"].low, spec["clicks/min_impact"].high) == (0.0, 4.0)
-    assert spec["impressions/min_impact"].high == 200.0
+    # min_impact ranges are solved per group, each on its own range
+    solved = search.solved_groups(ses)
+    assert (solved["clicks"].low, solved["clicks"].high) == (0.0, 4.0)
+    assert solved["impressions"].high == 200.0
     # settings the group does not name come from the shared [search] keys
     assert spec["clicks/seasonal_span"].values == spec["impressions/seasonal_span"].values \
         == (7, 11)
+
+
+def test_greedy_over_any_candidate_stops_at_a_local_optimum():
+    """(multiplier, minimum impact) candidates are not ordered: with forward_only off, a
+    move may go to any candidate that saves alerts. Brute force over every single-group
+    move from the result: none keeps the miss target and saves alerts."""
+    rng = np.random.default_rng(7)
+    n_c, n_inc, n_g = 12, 6, 3
+    caught = [rng.random((n_c, n_inc)) < 0.6 for _ in range(n_g)]
+    cost = [rng.integers(0, 60, n_c).astype(float) for _ in range(n_g)]
+    for target in (0.0, 0.3, 0.6, 1.0):
+        idx = search.greedy_multipliers(caught, cost, target, forward_only=[False] * n_g)
+
+        def miss(ix):
+            got = np.logical_or.reduce([caught[g][ix[g]] for g in range(n_g)])
+            return (n_inc - got.sum()) / n_inc
+
+        start_miss = miss([0] * n_g)
+        if start_miss > target:
+            assert idx == [0] * n_g
+            continue
+        assert miss(idx) <= target
+        for g in range(n_g):
+            for j in range(n_c):
+                moved = list(idx)
+                moved[g] = j
+                if miss(moved) <= target:
+                    assert cost[g][j] >= cost[g][idx[g]]
 
 
 def test_greedy_group_multipliers_stop_at_a_local_optimum():
