@@ -1296,6 +1296,11 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
     from calibrate.outputs import write_config
     from calibrate.report import write_report
 
+    if ses.ws.search.tune_by == "all" and ses.ws.detector.groups:
+        names = ", ".join(g.name for g in ses.ws.detector.groups)
+        print(f"note: tune_by = \"all\" tunes one set of settings for every series; the "
+              f"tuned config leaves out the workspace's groups ({names}). Use tune_by = "
+              f"\"group\" to tune them.")
     result = tune(ses, trials=args.trials, storage=args.storage,
                   study_name=getattr(args, "study", None), goal=goal, executor=executor,
                   progress=True)

@@ -425,6 +425,15 @@ def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
     assert not other.exists()
 
 
+def test_cli_says_when_tune_by_all_leaves_out_named_groups(tmp_path, capsys):
+    ws = make_workspace(tmp_path / "ws", search=SEARCH, detector=NAMED)
+    out = tmp_path / "tuned.toml"
+    assert main(["tune", str(ws), "--out", str(out), "--trials", "2", "--engine", "serial",
+                 "--storage", str(tmp_path / "s.journal")]) == 0
+    assert "leaves out the workspace's groups (leaf_volume)" in capsys.readouterr().out
+    assert load_config(out).groups == ()
+
+
 def test_holdout_warning_uses_the_wilson_upper_bound(ses):
     # Wilson (1927) via statsmodels: 0 caught of 30 -> recall interval (0, 0.1135)
     figs = replace(api.score_episodes(ses, Episodes.empty()), incidents=30, caught=0,
