@@ -467,13 +467,12 @@ class Evaluator:
         parts = []
         # each (level, metric) belongs to the first group matching it (as in replay),
         # the rest to the base settings, solved as one more group
-        owner = {key: next((g.name for g in config.groups if g.matches(*key)), BASE_GROUP)
+        owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
                  for key in scores}
-        base = DetectorGroup(name=BASE_GROUP, settings=config.base)
-        for g in [*config.groups, base]:
-            sub = {key: ms for key, ms in scores.items() if owner[key] == g.name}
+        for i, g in [*enumerate(config.groups), (None, None)]:
+            sub = {key: ms for key, ms in scores.items() if owner[key] == i}
             if sub:
-                parts.append(self._candidates(g.name, sub, teams))
+                parts.append(self._candidates(BASE_GROUP if g is None else g.name, sub, teams))
         # a candidate is (multiplier j, minimum impact l) at index l * n_k + j; groups
         # whose minimum impact is not solved have l = 0 only (their own value)
         n_k, n_t = len(self.ks), len(teams)
@@ -720,7 +719,9 @@ def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> s
     h.update(repr(ses.ws.metric_names).encode())
     # what is solved rather than searched: a study whose trials sampled the minimum
     # impact must not be continued by a search that solves it (its trials lack it)
-    h.update(f"solved: fence_multiplier, min_impact of {sorted(solved_groups(ses))}".encode())
+    solved = sorted(solved_groups(ses))
+    if solved:  # (nothing solved but k: the same name as before minimum impacts were solved)
+        h.update(f"solved: fence_multiplier, min_impact of {solved}".encode())
     return f"tune-{h.hexdigest()[:16]}"
 
 
@@ -866,11 +867,10 @@ def study_result(
     """The result of a study as it stands, running no trial (for the report of an
     interrupted or shared search). Arguments as for `tune`."""
     optuna.logging.set_verbosity(optuna.logging.WARNING)
-    goal = goal or ses.ws.goal
     if ses.incidents is None:
         raise InputError(str(ses.ws.file), "no [incidents] path: nothing to report against")
     space, starts, first_hour, split, fence_w, ks, ms = _plan(ses, ())
-    name = study_name or study_name_for(ses, goal, None)
+    name = study_name or study_name_for(ses, goal or ses.ws.goal, None)
     if not (storage and "://" in storage):
         path = (Path(storage) if storage else ses.ws.root / STUDY_FILE).expanduser()
         if not path.is_file():
@@ -880,12 +880,27 @@ def study_result(
     try:
         study = optuna.load_study(study_name=name, storage=store)
     except KeyError:
+        names = ", ".join(optuna.study.get_all_study_names(store)) or "none"
         raise CalibrationError(
-            f"{store_name}: no study '{name}' (run `calibrate tune` first, or name the study "
-            f"with --study NAME)") from None
+            f"{store_name}: no study '{name}' (studies there: {names}; name one with "
+            "--study NAME)") from None
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
-    if not any(t.state == optuna.trial.TrialState.COMPLETE for t in finished):
+    done = [t for t in finished if t.state == optuna.trial.TrialState.COMPLETE]
+    if not done:
         raise CalibrationError(f"{store_name}: study '{name}' has no completed trial yet")
+    missing = [p.name for p in space if p.name not in done[0].params]
+    if missing:
+        raise CalibrationError(
+            f"{store_name}: study '{name}' searched another space (its trials have no "
+            f"'{missing[0]}'); report it from the workspace it was tuned on")
+    # judged as the tune that made it judged them: its goal and hours (older studies:
+    # the workspace's)
+    attrs = study.user_attrs
+    if "goal" in attrs and goal is None:
+        goal = Goal(**attrs["goal"])
+    goal = goal or ses.ws.goal
+    if "hours" in attrs:
+        first_hour, split = (int(h) for h in attrs["hours"])
     rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
                            scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
     try:
@@ -919,6 +934,10 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
     except optuna.exceptions.DuplicatedStudyError:
         existing = optuna.load_study(study_name=name, storage=store)
         created = False
+    if created:  # what a later `report --study` needs to judge the trials as tune did
+        existing.set_user_attr("goal", _json_safe(dataclasses.asdict(ev.goal)))
+        existing.set_user_attr("hours", [ev.first_hour, ev.split_hour])
+        existing.set_user_attr("known_false", ev.false_windows is not None)
     n_before = len(existing.get_trials(deepcopy=False))
     running = len(existing.get_trials(deepcopy=False,
                                       states=(optuna.trial.TrialState.RUNNING,)))
@@ -1064,10 +1083,11 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
         config = replace(config, groups=tuple(
             replace(g, settings=replace(g.settings, min_impact=group_m[g.name]))
             if g.name in group_m else g for g in config.groups))
-        if BASE_GROUP in group_k:  # series no group matches (tune_by = "group")
-            config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
-        if BASE_GROUP in group_m:
-            config = config.with_base(min_impact=group_m[BASE_GROUP])
+        if ses.ws.search.tune_by == "group":  # 'base': the series no group matches
+            if BASE_GROUP in group_k:
+                config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
+            if BASE_GROUP in group_m:
+                config = config.with_base(min_impact=group_m[BASE_GROUP])
     else:
         config = config.with_base(fence_multiplier=a["k"])
     if a.get("min_impact") is not None:
@@ -1296,11 +1316,13 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
     from calibrate.outputs import write_config
     from calibrate.report import write_report
 
-    if ses.ws.search.tune_by == "all" and ses.ws.detector.groups:
+    tune_by = ses.ws.search.tune_by
+    if tune_by != "group" and ses.ws.detector.groups:
         names = ", ".join(g.name for g in ses.ws.detector.groups)
-        print(f"note: tune_by = \"all\" tunes one set of settings for every series; the "
-              f"tuned config leaves out the workspace's groups ({names}). Use tune_by = "
-              f"\"group\" to tune them.")
+        what = ("one set of settings for every series" if tune_by == "all"
+                else f"one set of settings per {tune_by}")
+        print(f"note: tune_by = \"{tune_by}\" tunes {what}; the tuned config leaves out "
+              f"the workspace's groups ({names}). Use tune_by = \"group\" to tune them.")
     result = tune(ses, trials=args.trials, storage=args.storage,
                   study_name=getattr(args, "study", None), goal=goal, executor=executor,
                   progress=True)

@@ -269,6 +269,8 @@ def test_review_frame_sorted_with_blank_verdicts(ses) -> None:
 def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, capsys) -> None:
     """Reference: the `tune` result of the same study (its best trial, tuning and held-out
     figures); the report reads the study and must run no further trial."""
+    from dataclasses import replace
+
     import optuna
 
     from calibrate import search
@@ -301,4 +303,17 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 3 and "either --config" in err[0]
     assert "no study file" in err[1] and "no study 'nope'" in err[2]
+    assert res.study_name in err[2]  # the error lists the studies there
     assert not (tmp_path / "none.journal").exists()
+    # a study tuned under another goal is judged under that goal, not the workspace's
+    other = search.tune(ses, trials=2, storage=store, engine="serial", progress=False,
+                        goal=replace(ses.ws.goal, max_miss_rate=0.9))
+    again = search.study_result(ses, storage=store, study_name=other.study_name,
+                                engine="serial")
+    assert "<= 0.900" in again.reason and again.config == other.config
+    # a workspace with another search space cannot report it: one line, no traceback
+    ws2 = make_workspace(tmp_path / "ws2", search='fence_window_hours = [48, 72]\n'
+                                                  'tune_by = "level"')
+    assert main(["report", str(ws2), "--study", res.study_name, "--storage", store,
+                 "--out", str(tmp_path / "r5"), "--engine", "serial"]) == 1
+    assert "searched another space" in capsys.readouterr().err

@@ -12,6 +12,7 @@ References used here (each test names its own):
 from __future__ import annotations
 
 import itertools
+import math
 from dataclasses import replace
 from pathlib import Path
 
@@ -314,6 +315,12 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     holdout = api.score_episodes(ses, fresh.episodes, res.split_hour, ses.history.n_hours)
     assert tuning.to_json_dict() == res.tuning.to_json_dict()
     assert holdout.to_json_dict() == res.holdout.to_json_dict()
+    # and the figures the search itself claimed for the chosen trial (not a replay)
+    claimed = res.trials.set_index("number").loc[res.provenance["chosen_trial"]]
+    assert (claimed["caught"], claimed["alerts"]) == (tuning.caught, tuning.alerts)
+    for team, rate in tuning.per_team["alerts_per_analyst_day"].items():
+        if f"alerts_per_analyst_day[{team}]" in claimed.index:
+            assert claimed[f"alerts_per_analyst_day[{team}]"] == pytest.approx(rate)
     prov = load_provenance(out)
     assert prov["split_hour"] == res.split_hour
     assert prov["tuning"]["alerts"] == tuning.alerts
@@ -359,6 +366,48 @@ def test_greedy_over_any_candidate_stops_at_a_local_optimum():
                 moved[g] = j
                 if miss(moved) <= target:
                     assert cost[g][j] >= cost[g][idx[g]]
+
+
+def _greedy_reference(caught, cost, max_miss_rate):
+    """The joint greedy as the module docstring states it, one candidate at a time: the
+    move with the highest (rate, saving, -group, index), forward moves only."""
+    n_g, n_inc = len(caught), caught[0].shape[1]
+    idx = [0] * n_g
+    miss = lambda n: (n_inc - n) / n_inc  # noqa: E731
+    while True:
+        rows = [caught[g][idx[g]] for g in range(n_g)]
+        now = int(np.logical_or.reduce(rows).sum())
+        if miss(now) > max_miss_rate:
+            return idx
+        best = None
+        for g in range(n_g):
+            others = np.zeros(n_inc, dtype=bool)
+            for h in range(n_g):
+                if h != g:
+                    others |= rows[h]
+            for j in range(idx[g] + 1, len(cost[g])):
+                count = int((caught[g][j] | others).sum())
+                saving = float(cost[g][idx[g]] - cost[g][j])
+                if miss(count) > max_miss_rate or saving <= 0:
+                    continue
+                lost = now - count
+                move = (math.inf if lost <= 0 else saving / lost, saving, -g, j)
+                if best is None or move > best:
+                    best = move
+        if best is None:
+            return idx
+        idx[-best[2]] = best[3]
+
+
+def test_greedy_matches_the_one_at_a_time_reference_with_ties():
+    rng = np.random.default_rng(11)
+    for _ in range(200):
+        n_g, n_c, n_inc = int(rng.integers(1, 4)), int(rng.integers(2, 8)), 5
+        caught = [rng.random((n_c, n_inc)) < 0.7 for _ in range(n_g)]
+        cost = [rng.integers(0, 6, n_c).astype(float) for _ in range(n_g)]  # many ties
+        target = float(rng.choice([0.0, 0.2, 0.4, 1.0]))
+        assert search.greedy_multipliers(caught, cost, target) == \
+            _greedy_reference(caught, cost, target)
 
 
 def test_greedy_group_multipliers_stop_at_a_local_optimum():
