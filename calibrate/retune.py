@@ -281,34 +281,48 @@ def compare(
 def explain_still_raised(
     ses: api.Session, new: ReplayResult, still: Incidents, start: int, end: int
 ) -> list[str]:
-    """Why known false alarms are still raised: the multiplier that would drop each one
-    and the miss rate at that multiplier (everything else as in the new settings)."""
+    """Why known false alarms are still raised: the fence multiplier and the minimum
+    impact that would each drop one, and the miss rate there (everything else as in the
+    new settings; the minimum impact raised for every series alike)."""
     from calibrate.replay import sweep
     from calibrate.scoring import period_filter
 
     out = []
     ep = new.episodes
     m = match(ep, still, 0, 0)
+    inc = period_filter(ses.incidents, start, end)
+    early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
+    days = max(end - start, 1) / 24.0
+    goal = _pct(ses.ws.goal.max_miss_rate)
+    own = period_filter(sweep(new.scores, None, new.routes), start, end)
     for j in range(len(still)):
         idx = m.alerts_of(j)
         peak = float(np.nanmax(ep.peak_score[idx])) if len(idx) else float("nan")
         dets = set("+".join(ep.detectors[idx]).split("+")) if len(idx) else set()
-        if not np.isfinite(peak):
+        levers = []
+        if np.isfinite(peak) and "flatline" not in dets:
+            ks = np.array([peak * 1.0001 + 1e-9])
+            eps = period_filter(sweep(new.scores, ks, new.routes), start, end)
+            c = multiplier_curve(eps, ks, inc, early, late, ses.analysts, days)
+            levers.append(f"a fence multiplier above {peak:.3g} (miss rate there "
+                          f"{_pct(float(c.miss_rate[0]))})")
+        size = float(np.nanmax(np.abs(ep.impact[idx]))) if len(idx) else float("nan")
+        if np.isfinite(size):
+            # the next representable minimum impact above it drops the alert
+            m_next = float(np.nextafter(size, np.inf))
+            kept = own.take(np.abs(own.impact) >= m_next)
+            c = multiplier_curve(kept, np.array([0.0]), inc, early, late, ses.analysts, days)
+            levers.append(f"a minimum impact above {size:.3g} (miss rate there "
+                          f"{_pct(float(c.miss_rate[0]))})")
+        if not levers:
             out.append(f"{still.incident_id[j]}: raised by {'+'.join(sorted(dets)) or 'a'} "
-                       "detector that the fence multiplier does not control (or IQR = 0)")
+                       "detector that neither the fence multiplier nor the minimum impact "
+                       "controls here")
             continue
-        ks = np.array([peak * 1.0001 + 1e-9])
-        eps = period_filter(sweep(new.scores, ks, new.routes), start, end)
-        inc = period_filter(ses.incidents, start, end)
-        c = multiplier_curve(eps, ks, inc, ses.ws.incidents.early_hours,
-                             ses.ws.incidents.late_hours, ses.analysts,
-                             max(end - start, 1) / 24.0)
-        extra = " (the flatline detector also fired)" if "flatline" in dets else ""
-        out.append(
-            f"{still.incident_id[j]}: dropping it needs a fence multiplier above {peak:.3g}; "
-            f"there the miss rate would be {_pct(float(c.miss_rate[0]))} against the goal "
-            f"{_pct(ses.ws.goal.max_miss_rate)}{extra}"
-        )
+        also = (" (the flatline detector fired too, so the fence multiplier alone does not "
+                "drop it)" if "flatline" in dets else "")
+        out.append(f"{still.incident_id[j]}: dropping it needs {' or '.join(levers)}, "
+                   f"against the goal {goal}{also}")
     return out
 
 
