@@ -367,8 +367,9 @@ class RunTable:
     """A multiplier grid's episodes as runs: run r is one episode at every grid index
     ``order[lo[r]:hi[r]]`` (`EpisodeRuns`, for every (level, metric) at once).
 
-    `runs` holds one row per run (its `grid` column is 0 and unused); expanding each
-    run over its levels gives the rows of `sweep_codes`.
+    `runs` holds one row per run (its `grid` column is 0 and unused, and `bits` holds
+    only the flatline bit: the fence bit depends on the level); expanding each run over
+    its levels gives the rows of `sweep_codes`.
     """
 
     runs: CodedEpisodes
@@ -401,19 +402,21 @@ def sweep_runs(
                 np.array([team_pos[t] for t in np.asarray(route).tolist()],
                          dtype=np.int64)[r.ints[0]])
         parts.append((p, r, team))
-    cat = (lambda f: np.concatenate([f(p, r, t) for p, r, t in parts])  # noqa: E731
-           if parts else np.empty(0, dtype=np.int64))
-    i64 = lambda row: cat(lambda p, r, t: r.ints[row])  # noqa: E731
-    f64 = lambda row: cat(lambda p, r, t: r.floats[row]).astype(np.float64)  # noqa: E731
-    n = sum(r.ints.shape[1] for _, r, _ in parts)
+    def joined(arrays: list[np.ndarray], rows: int, dtype) -> np.ndarray:
+        return (np.concatenate(arrays, axis=-1) if arrays
+                else np.empty((rows, 0) if rows else 0, dtype=dtype))
+
+    ints = joined([r.ints for _, r, _ in parts], 8, np.int64)
+    floats = joined([r.floats for _, r, _ in parts], 3, np.float64)
+    pair = joined([np.full(r.ints.shape[1], p, dtype=np.int64) for p, r, _ in parts], 0,
+                  np.int64)
     runs = CodedEpisodes(
-        pair=cat(lambda p, r, t: np.full(r.ints.shape[1], p, dtype=np.int64)),
-        series=i64(0), start=i64(1), end=i64(2), peak_hour=i64(5), peak_score=f64(0),
-        value=f64(1), expected=f64(2), bits=i64(7),
-        team_code=cat(lambda p, r, t: t), grid=np.zeros(n, dtype=np.int64),
-        pairs=tuple(scores), teams=teams,
+        pair=pair, series=ints[0], start=ints[1], end=ints[2], peak_hour=ints[5],
+        peak_score=floats[0], value=floats[1], expected=floats[2], bits=ints[7],
+        team_code=joined([t for _, _, t in parts], 0, np.int64),
+        grid=np.zeros(len(pair), dtype=np.int64), pairs=tuple(scores), teams=teams,
     )
-    return RunTable(runs=runs, lo=i64(3), hi=i64(4), order=order)
+    return RunTable(runs=runs, lo=ints[3], hi=ints[4], order=order)
 
 
 def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
