@@ -97,12 +97,13 @@ def multiplier_png(data: CurveData) -> bytes:
                       "fence multiplier k (fences at Q1 - k*IQR and Q3 + k*IQR)")
 
 
-def impact_png(data: CurveData) -> bytes:
+def impact_png(data: CurveData, group: str | None = None) -> bytes:
     """Recall (top) and alerts per analyst per day per team (bottom) against the minimum
     impact (`data.ks`), on a scale linear near 0 and logarithmic above."""
     chosen = "" if data.chosen_k is None else f" (chosen {data.chosen_k:g}, red line)"
     positive = [m for m in data.ks if m > 0]
-    return _curve_png(data, f"Moving the minimum impact at the chosen k{chosen}",
+    of = "the minimum impact" if group is None else f"group {group}'s minimum impact"
+    return _curve_png(data, f"Moving {of} at the chosen k{chosen}",
                       "minimum impact (|value - expected| summed over an episode)",
                       symlog=min(positive) if positive else None)
 

@@ -179,6 +179,8 @@ class ReportData:
     provenance: dict[str, Any] = field(default_factory=dict)
     # recall and load over minimum impacts at the chosen k (None: groups differ in it)
     impact: CurveData | None = None
+    # with groups: per group, the same as that group's minimum impact moves alone
+    impact_groups: list[tuple[str, CurveData]] = field(default_factory=list)
 
     @property
     def changed(self) -> list[str]:
@@ -250,6 +252,8 @@ def build_report_data(
     tune_a, tune_b = bounds[0][1], bounds[0][2]
     curve = curve_data(ses, chosen, tune_a, tune_b, teams, budgets)
     impact = impact_data(ses, chosen, tune_a, tune_b, teams, budgets)
+    impact_groups = [] if impact is not None else group_impact_data(
+        ses, chosen, tune_a, tune_b, teams, budgets)
     tuning = periods[0].figures
     tradeoff = tradeoff_data(trials, tuning, ses.analysts, budgets, goal.max_miss_rate, curve)
     volume = volume_data(ses, chosen, first, split)
@@ -281,6 +285,7 @@ def build_report_data(
         incidents=incidents,
         provenance=dict(provenance or {}),
         impact=impact,
+        impact_groups=impact_groups,
     )
 
 
@@ -521,6 +526,73 @@ def impact_data(
     )
 
 
+def group_impact_data(
+    ses: api.Session,
+    chosen: ReplayResult,
+    start: int,
+    end: int,
+    teams: list[str],
+    budgets: Mapping[str, float],
+) -> list[tuple[str, CurveData]]:
+    """For a config with groups: per group, recall and alerts per analyst per day (of
+    every group together) as that group's minimum impact moves at its chosen k, every
+    other group at its chosen settings. Grids as in `impact_data`, per group."""
+    from calibrate import search
+    from calibrate.replay import sweep, sweep_runs
+    from calibrate.scoring import impact_curves_of_runs, wilson
+    from calibrate.workspace import BASE_GROUP, SearchParam
+
+    config = chosen.config
+    if not config.groups:
+        return []
+    inc = period_filter(ses.incidents, start, end)
+    early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
+    days = max(end - start, 1) / 24.0
+    shown = [t for t in teams if ses.analysts.get(t, 0) > 0]
+    owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
+             for key in chosen.scores}
+    out = []
+    for i in [*range(len(config.groups)), None]:
+        mine = {key: ms for key, ms in chosen.scores.items() if owner[key] == i}
+        if not mine:
+            continue
+        name = BASE_GROUP if i is None else config.groups[i].name
+        s = config.base if i is None else config.groups[i].settings
+        rest = {key: ms for key, ms in chosen.scores.items() if owner[key] != i}
+        others = period_filter(sweep(rest, None, chosen.routes), start, end) if rest else None
+        caught_o = (match(others, inc, early, late).caught if others is not None
+                    else np.zeros(len(inc), dtype=bool))
+        team_o = ({} if others is None else
+                  pd.Series(others.team).value_counts().to_dict())
+        n_o = 0 if others is None else len(others)
+        solved = search.solved_min_impact(
+            ses, name if ses.ws.search.tune_by != "all" else None)
+        metrics = sorted({m for _, m in mine})
+        spec = solved or SearchParam(name="min_impact", kind="float", low=0.0, high=max(
+            10.0 * s.min_impact, search.typical_level(ses, metrics)))
+        ms = search.impact_grid(spec, [s.min_impact])
+        k = np.array([s.fence_multiplier])
+        runs = sweep_runs(mine, k, chosen.routes, apply_min_impact=False,
+                          start_hours=(start, end))
+        curves, best = impact_curves_of_runs(runs, k, ms, inc, early, late, ses.analysts,
+                                             days, with_best=True)
+        caught = np.array([int((caught_o | (best[0] >= lv)).sum()) for lv in range(len(ms))])
+        low, high = wilson(len(inc) - caught, np.full(len(ms), len(inc)))
+        miss = (len(inc) - caught) / len(inc) if len(inc) else np.zeros(len(ms))
+        rates = []
+        for t in shown:
+            mine_t = np.array([c.team_alerts[0, c.teams.index(t)] if t in c.teams else 0
+                               for c in curves])
+            rates.append(_floats((mine_t + team_o.get(t, 0)) / (ses.analysts[t] * days)))
+        out.append((name, CurveData(
+            ks=ms.tolist(), recall=_floats(1.0 - miss), recall_low=_floats(1.0 - high),
+            recall_high=_floats(1.0 - low),
+            alerts=[int(c.alerts[0]) + n_o for c in curves], teams=shown, team_rate=rates,
+            budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
+            target_recall=1.0 - ses.ws.goal.max_miss_rate, chosen_k=s.min_impact)))
+    return out
+
+
 def volume_data(
     ses: api.Session, chosen: ReplayResult, first: int, split: int | None
 ) -> VolumeData:
@@ -742,12 +814,19 @@ def render_plots(data: ReportData) -> dict[str, bytes]:
         "tradeoff.png": plots.tradeoff_png(data.tradeoff),
         "multiplier.png": plots.multiplier_png(data.curve),
         **({"impact.png": plots.impact_png(data.impact)} if data.impact else {}),
+        **{_impact_file(i, name): plots.impact_png(c, group=name)
+           for i, (name, c) in enumerate(data.impact_groups)},
         "volume.png": plots.volume_png(data.volume),
         "delay.png": plots.delay_png(data.delays, data.early_hours, data.late_hours),
     }
     for i, panel in enumerate(data.panels):
         out[_panel_file(i, panel)] = plots.series_png(panel)
     return out
+
+
+def _impact_file(i: int, name: str) -> str:
+    safe = "".join(ch if ch.isalnum() or ch in "-_" else "-" for ch in name)
+    return f"impact-{i + 1:02d}-{safe}.png"
 
 
 def _panel_file(i: int, panel: SeriesPanel) -> str:
@@ -943,6 +1022,13 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
                          "the minimum impact is dropped: a larger one means fewer alerts, "
                          "and eventually missed incidents with a small impact. The red line "
                          "is the chosen minimum impact."))
+    for i, (name, _c) in enumerate(data.impact_groups):
+        parts.append(img(_impact_file(i, name), f"recall and alert load against the minimum "
+                         f"impact of group {name}",
+                         f"Group {name}: its minimum impact moves at its chosen multiplier, "
+                         "every other group stays at its chosen settings; recall and alerts "
+                         "are of all groups together. The red line is the group's chosen "
+                         "minimum impact."))
 
     parts.append('<h2 id="volume">5. Alerts per team and week</h2>')
     parts.append(img("volume.png", "alerts per analyst per day per team and week",
@@ -1033,6 +1119,8 @@ def render_markdown(data: ReportData) -> str:
               "## 4. Moving the fence multiplier and the minimum impact", "",
               "![multiplier](multiplier.png)", "",
               *(["![minimum impact](impact.png)", ""] if data.impact is not None else []),
+              *[x for i, (name, _c) in enumerate(data.impact_groups)
+                for x in (f"![minimum impact of {name}]({_impact_file(i, name)})", "")],
               "## 5. Alerts per team and week", "", "![volume](volume.png)", ""]
     lines += _md_table(["team", "week", "alerts", "per analyst per day", "budget", "over"],
                        [[r["team"], r["week"], r["alerts"], _num(r["alerts_per_analyst_day"]),

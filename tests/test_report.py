@@ -160,6 +160,37 @@ def test_impact_curve_agrees_with_replays_at_each_minimum_impact(ses, chosen_con
                              split_hour=SPLIT).impact is None
 
 
+def test_group_impact_curves_agree_with_replays(ses, chosen_config) -> None:
+    """Reference: replays of the grouped config with one group's minimum impact replaced
+    by a grid value, scored as `calibrate score` does (all groups together)."""
+    from dataclasses import replace
+
+    from calibrate.settings import DetectorGroup
+
+    lv = next(iter(ses.history.levels))
+    group = DetectorGroup(name="top", levels=(lv,),
+                          settings=replace(chosen_config.base, min_impact=20.0,
+                                           fence_multiplier=3.0))
+    grouped = replace(chosen_config, groups=(group,))
+    data = build_report_data(ses, _replay(ses, grouped), first_hour=200, split_hour=SPLIT)
+    assert data.impact is None
+    curves = dict(data.impact_groups)
+    assert set(curves) == {"top", "base"}
+    start = data.periods[0].start_hour
+    for name, cd in curves.items():
+        assert cd.chosen_k == (20.0 if name == "top" else chosen_config.base.min_impact)
+        for j in (0, cd.ks.index(cd.chosen_k), len(cd.ks) - 1):
+            m = cd.ks[j]
+            cfg = (replace(grouped, groups=(replace(group, settings=replace(
+                group.settings, min_impact=m)),)) if name == "top"
+                else grouped.with_base(min_impact=m))
+            f = api.score_episodes(ses, _replay(ses, cfg).episodes, start, SPLIT)
+            assert cd.alerts[j] == f.alerts
+            assert cd.recall[j] == pytest.approx(f.recall)
+            for t, rate in zip(cd.teams, cd.team_rate, strict=True):
+                assert rate[j] == pytest.approx(f.per_team.loc[t, "alerts_per_analyst_day"])
+
+
 def test_per_group_multipliers_are_not_drawn_as_one_chosen_k(ses, chosen_config) -> None:
     from dataclasses import replace
 
