@@ -327,20 +327,7 @@ def sweep_codes(
     ``(start, end)`` only episodes starting in ``[start, end)`` are kept, as
     `scoring.period_filter` would.
     """
-    routes = routes or {}
-    names = [t for lv in routes for t in np.asarray(routes[lv]).tolist()]
-    teams = tuple(dict.fromkeys(["", *names]))
-    team_pos = {t: i for i, t in enumerate(teams)}
-    team_of = {
-        lv: np.array([team_pos[t] for t in np.asarray(r).tolist()], dtype=np.int64)
-        for lv, r in routes.items()
-    }
-    runs = []
-    for (_lv, _m), ms in scores.items():
-        grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
-        min_impact = ms.settings.min_impact if apply_min_impact else 0.0
-        runs.append(episode_runs(ms.score, ms.flat, ms.value, ms.expected, grid,
-                                 ms.settings.min_detectors, min_impact, start_hours))
+    runs, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours)
     # every (level, metric) writes its rows straight into one table
     n = sum(r.n_rows for r in runs)
     ints = np.empty((6, n), dtype=np.int64)
@@ -360,6 +347,27 @@ def sweep_codes(
         peak_score=floats[0], value=floats[1], expected=floats[2], bits=ints[5],
         team_code=team, grid=ints[0], pairs=tuple(scores), teams=teams,
     )
+
+
+def _pair_runs(scores, ks, routes, apply_min_impact, start_hours):
+    """`episode_runs` of every (level, metric) (at its own multiplier when `ks` is None),
+    the team names rows are coded by ("" first: unrouted) and each routed level's
+    team code per series."""
+    routes = routes or {}
+    names = [t for lv in routes for t in np.asarray(routes[lv]).tolist()]
+    teams = tuple(dict.fromkeys(["", *names]))
+    team_pos = {t: i for i, t in enumerate(teams)}
+    team_of = {
+        lv: np.array([team_pos[t] for t in np.asarray(r).tolist()], dtype=np.int64)
+        for lv, r in routes.items()
+    }
+    runs = []
+    for (_lv, _m), ms in scores.items():
+        grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
+        min_impact = ms.settings.min_impact if apply_min_impact else 0.0
+        runs.append(episode_runs(ms.score, ms.flat, ms.value, ms.expected, grid,
+                                 ms.settings.min_detectors, min_impact, start_hours))
+    return runs, teams, team_of
 
 
 @dataclass
@@ -388,20 +396,12 @@ def sweep_runs(
     """`sweep_codes` without expanding runs into one row per multiplier: what counts
     need (each run is counted once per level range, not once per multiplier)."""
     ks = np.asarray(ks, dtype=np.float64)
-    routes = routes or {}
-    names = [t for lv in routes for t in np.asarray(routes[lv]).tolist()]
-    teams = tuple(dict.fromkeys(["", *names]))
-    team_pos = {t: i for i, t in enumerate(teams)}
-    parts, order = [], np.argsort(ks, kind="stable")
-    for p, ((lv, _m), ms) in enumerate(scores.items()):
-        r = episode_runs(ms.score, ms.flat, ms.value, ms.expected, ks,
-                         ms.settings.min_detectors,
-                         ms.settings.min_impact if apply_min_impact else 0.0, start_hours)
-        route = routes.get(lv)
-        team = (np.zeros(r.ints.shape[1], dtype=np.int64) if route is None else
-                np.array([team_pos[t] for t in np.asarray(route).tolist()],
-                         dtype=np.int64)[r.ints[0]])
-        parts.append((p, r, team))
+    runs_of, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours)
+    order = np.argsort(ks, kind="stable")  # as episode_runs sorts the grid
+    parts = [(p, r, team_of[lv][r.ints[0]] if lv in team_of
+              else np.zeros(r.ints.shape[1], dtype=np.int64))
+             for p, ((lv, _m), r) in enumerate(zip(scores, runs_of, strict=True))]
+
     def joined(arrays: list[np.ndarray], rows: int, dtype) -> np.ndarray:
         return (np.concatenate(arrays, axis=-1) if arrays
                 else np.empty((rows, 0) if rows else 0, dtype=dtype))

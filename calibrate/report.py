@@ -488,42 +488,13 @@ def impact_data(
     level). None when groups have their own multiplier or minimum impact.
     """
     from calibrate import search
-    from calibrate.scoring import impact_curves
-    from calibrate.workspace import SearchParam
 
     base = chosen.config.base
-    k0, m0 = base.fence_multiplier, base.min_impact
-    if any((g.settings.fence_multiplier, g.settings.min_impact) != (k0, m0)
-           for g in chosen.config.groups):
+    if any((g.settings.fence_multiplier, g.settings.min_impact)
+           != (base.fence_multiplier, base.min_impact) for g in chosen.config.groups):
         return None
-    spec = search.solved_min_impact(ses) or SearchParam(
-        name="min_impact", kind="float", low=0.0,
-        high=max(10.0 * m0, search.typical_level(ses)))
-    ms = search.impact_grid(spec, [m0])
-    eps = sweep_codes(chosen.scores, np.array([k0]), chosen.routes, apply_min_impact=False,
-                      start_hours=(start, end))
-    inc = period_filter(ses.incidents, start, end)
-    curves = impact_curves(eps, np.array([k0]), ms, inc, ses.ws.incidents.early_hours,
-                           ses.ws.incidents.late_hours, ses.analysts,
-                           max(end - start, 1) / 24.0)
-    shown = [t for t in teams if ses.analysts.get(t, 0) > 0]
-    miss = np.array([c.miss_rate[0] for c in curves])
-    low = np.array([c.miss_rate_low[0] for c in curves])
-    high = np.array([c.miss_rate_high[0] for c in curves])
-    return CurveData(
-        ks=ms.tolist(),
-        recall=_floats(1.0 - miss),
-        recall_low=_floats(1.0 - high),
-        recall_high=_floats(1.0 - low),
-        alerts=[int(c.alerts[0]) for c in curves],
-        teams=shown,
-        team_rate=[_floats(np.array([c.alerts_per_analyst_day[0, c.teams.index(t)]
-                                     if t in c.teams else 0.0 for c in curves]))
-                   for t in shown],
-        budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
-        target_recall=1.0 - ses.ws.goal.max_miss_rate,
-        chosen_k=m0,
-    )
+    return _impact_curve(ses, chosen, chosen.scores, {}, base, search.solved_min_impact(ses),
+                         start, end, teams, budgets)
 
 
 def group_impact_data(
@@ -538,59 +509,64 @@ def group_impact_data(
     every group together) as that group's minimum impact moves at its chosen k, every
     other group at its chosen settings. Grids as in `impact_data`, per group."""
     from calibrate import search
-    from calibrate.replay import sweep, sweep_runs
-    from calibrate.scoring import impact_curves_of_runs, wilson
-    from calibrate.workspace import BASE_GROUP, SearchParam
+    from calibrate.workspace import BASE_GROUP
 
     config = chosen.config
-    if not config.groups:
-        return []
-    inc = period_filter(ses.incidents, start, end)
-    early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
-    days = max(end - start, 1) / 24.0
-    shown = [t for t in teams if ses.analysts.get(t, 0) > 0]
     owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
              for key in chosen.scores}
     out = []
-    for i in [*range(len(config.groups)), None]:
+    for i in [*range(len(config.groups)), None] if config.groups else []:
         mine = {key: ms for key, ms in chosen.scores.items() if owner[key] == i}
         if not mine:
             continue
         name = BASE_GROUP if i is None else config.groups[i].name
-        s = config.base if i is None else config.groups[i].settings
         rest = {key: ms for key, ms in chosen.scores.items() if owner[key] != i}
-        others = period_filter(sweep(rest, None, chosen.routes), start, end) if rest else None
-        caught_o = (match(others, inc, early, late).caught if others is not None
-                    else np.zeros(len(inc), dtype=bool))
-        team_o = ({} if others is None else
-                  pd.Series(others.team).value_counts().to_dict())
-        n_o = 0 if others is None else len(others)
-        solved = search.solved_min_impact(
-            ses, name if ses.ws.search.tune_by != "all" else None)
-        metrics = sorted({m for _, m in mine})
-        spec = solved or SearchParam(name="min_impact", kind="float", low=0.0, high=max(
-            10.0 * s.min_impact, search.typical_level(ses, metrics)))
-        ms = search.impact_grid(spec, [s.min_impact])
-        k = np.array([s.fence_multiplier])
-        runs = sweep_runs(mine, k, chosen.routes, apply_min_impact=False,
-                          start_hours=(start, end))
-        curves, best = impact_curves_of_runs(runs, k, ms, inc, early, late, ses.analysts,
-                                             days, with_best=True)
-        caught = np.array([int((caught_o | (best[0] >= lv)).sum()) for lv in range(len(ms))])
-        low, high = wilson(len(inc) - caught, np.full(len(ms), len(inc)))
-        miss = (len(inc) - caught) / len(inc) if len(inc) else np.zeros(len(ms))
-        rates = []
-        for t in shown:
-            mine_t = np.array([c.team_alerts[0, c.teams.index(t)] if t in c.teams else 0
-                               for c in curves])
-            rates.append(_floats((mine_t + team_o.get(t, 0)) / (ses.analysts[t] * days)))
-        out.append((name, CurveData(
-            ks=ms.tolist(), recall=_floats(1.0 - miss), recall_low=_floats(1.0 - high),
-            recall_high=_floats(1.0 - low),
-            alerts=[int(c.alerts[0]) + n_o for c in curves], teams=shown, team_rate=rates,
-            budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
-            target_recall=1.0 - ses.ws.goal.max_miss_rate, chosen_k=s.min_impact)))
+        solved = search.solved_min_impact(ses, name if ses.ws.search.tune_by != "all" else None)
+        out.append((name, _impact_curve(
+            ses, chosen, mine, rest, config.base if i is None else config.groups[i].settings,
+            solved, start, end, teams, budgets)))
     return out
+
+
+def _impact_curve(ses, chosen, mine, rest, s, solved, start, end, teams, budgets) -> CurveData:
+    """Recall and load of all series as the minimum impact of those in `mine` (settings
+    `s`) moves over its grid (`solved`, or 0 to ten times `s.min_impact`, at least their
+    metrics' typical hourly level), those in `rest` at their own settings."""
+    from calibrate import search
+    from calibrate.replay import sweep, sweep_runs
+    from calibrate.scoring import impact_curves_of_runs, wilson
+    from calibrate.workspace import SearchParam
+
+    inc = period_filter(ses.incidents, start, end)
+    early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
+    days = max(end - start, 1) / 24.0
+    shown = [t for t in teams if ses.analysts.get(t, 0) > 0]
+    others = period_filter(sweep(rest, None, chosen.routes), start, end) if rest else None
+    caught_o = (match(others, inc, early, late).caught if others is not None
+                else np.zeros(len(inc), dtype=bool))
+    team_o = {} if others is None else pd.Series(others.team).value_counts().to_dict()
+    n_o = 0 if others is None else len(others)
+    spec = solved or SearchParam(name="min_impact", kind="float", low=0.0, high=max(
+        10.0 * s.min_impact, search.typical_level(ses, sorted({m for _, m in mine}))))
+    ms = search.impact_grid(spec, [s.min_impact])
+    k = np.array([s.fence_multiplier])
+    runs = sweep_runs(mine, k, chosen.routes, apply_min_impact=False, start_hours=(start, end))
+    curves, best = impact_curves_of_runs(runs, k, ms, inc, early, late, ses.analysts, days,
+                                         with_best=True)
+    caught = np.array([int((caught_o | (best[0] >= lv)).sum()) for lv in range(len(ms))])
+    n = np.full(len(ms), len(inc))
+    low, high = wilson(n - caught, n)
+    miss = (n - caught) / np.where(n > 0, n, 1) if len(inc) else np.full(len(ms), np.nan)
+    rates = []
+    for t in shown:
+        mine_t = np.array([c.team_alerts[0, c.teams.index(t)] if t in c.teams else 0
+                           for c in curves])
+        rates.append(_floats((mine_t + team_o.get(t, 0)) / (ses.analysts[t] * days)))
+    return CurveData(
+        ks=ms.tolist(), recall=_floats(1.0 - miss), recall_low=_floats(1.0 - high),
+        recall_high=_floats(1.0 - low), alerts=[int(c.alerts[0]) + n_o for c in curves],
+        teams=shown, team_rate=rates, budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
+        target_recall=1.0 - ses.ws.goal.max_miss_rate, chosen_k=s.min_impact)
 
 
 def volume_data(

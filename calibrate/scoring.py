@@ -710,11 +710,7 @@ def multiplier_curve(
     """
     ks = np.asarray(ks, dtype=np.float64)
     n_k, n_inc, ep = len(ks), len(incidents), episodes_by_grid
-    grid = np.asarray(ep.grid, dtype=np.int64)
-    if len(grid) and (grid.min() < 0 or grid.max() >= n_k):
-        raise ValueError(
-            f"episode grid indices must lie in [0, {n_k}), got {grid.min()}..{grid.max()}"
-        )
+    grid = _grid_of(ep, n_k)
     if not n_days > 0:
         raise ValueError(f"n_days must be positive, but got {n_days=}")
     pa, pi = _overlap_pairs(ep, incidents, early, late)
@@ -731,6 +727,16 @@ def multiplier_curve(
     return _curve(ks, n_inc, caught, np.bincount(grid, minlength=n_k),
                   np.bincount(grid[alert_true], minlength=n_k), teams, teams_analysts,
                   team_alerts, team_alerts - team_true, n_days, confidence)
+
+
+def _grid_of(ep: Episodes | CodedEpisodes, n_k: int) -> np.ndarray:
+    """The episodes' grid indices, checked to lie in [0, n_k)."""
+    grid = np.asarray(ep.grid, dtype=np.int64)
+    if len(grid) and (grid.min() < 0 or grid.max() >= n_k):
+        raise ValueError(
+            f"episode grid indices must lie in [0, {n_k}), got {grid.min()}..{grid.max()}"
+        )
+    return grid
 
 
 def _curve_teams(ep: Episodes | CodedEpisodes,
@@ -804,12 +810,8 @@ def impact_curves(
         One per minimum impact. Every curve lists the teams of the unfiltered
         episodes (a team whose alerts are all filtered out shows 0).
     """
-    grid = np.asarray(episodes_by_grid.grid, dtype=np.int64)
     n_k = len(np.atleast_1d(ks))
-    if len(grid) and (grid.min() < 0 or grid.max() >= n_k):
-        raise ValueError(
-            f"episode grid indices must lie in [0, {n_k}), got {grid.min()}..{grid.max()}"
-        )
+    grid = _grid_of(episodes_by_grid, n_k)
     # a row is a run of one level: grid index g alone
     return _impact_curves(episodes_by_grid, grid, grid + 1, np.arange(n_k), ks, min_impacts,
                           incidents, early, late, teams_analysts, n_days, confidence)[0]

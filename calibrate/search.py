@@ -421,17 +421,7 @@ class Evaluator:
         impact. An infeasible setting reports the pair closest to the goal: the lowest
         miss-rate excess, then the lowest worst budget ratio."""
         ms = np.asarray(self.min_impacts, dtype=np.float64)
-        scores = self.replayer.scores(config.with_base(min_impact=float(ms[0])))
-        runs = sweep_runs(scores, self.ks, self.replayer.routes,
-                          start_hours=(self.first_hour, self.split_hour))
-        ws = self.ses.ws
-        curves = impact_curves_of_runs(runs, self.ks, ms, self.incidents,
-                                       ws.incidents.early_hours, ws.incidents.late_hours,
-                                       self.ses.analysts, self.n_days)
-        kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(ms)
-        if self.false_windows is not None:
-            kfs = [c.true_alerts for c in impact_curves_of_runs(
-                runs, self.ks, ms, self.false_windows, 0, 0, self.ses.analysts, self.n_days)]
+        curves, kfs, _ = self._impact_curves(self.replayer.scores(config), ms)
         best: tuple[tuple[float, float, float], int, int, str] | None = None
         for lv, c in enumerate(curves):
             k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
@@ -484,9 +474,10 @@ class Evaluator:
         alerts = kf = 0
         group_k: dict[str, float] = {}
         group_m: dict[str, float] = {}
-        for (name, cm, grid, al, kfs, tas), i in zip(parts, idx, strict=True):
+        for (name, cm, grid, al, kfs, curves), i in zip(parts, idx, strict=True):
             caught |= cm[i]
-            for t, v in tas[i].items():
+            c = curves[i // n_k]
+            for t, v in zip(c.teams, c.team_alerts[i % n_k], strict=True):
                 ta[teams.index(t)] += v
             alerts += int(al[i])
             kf += int(kfs[i])
@@ -504,36 +495,40 @@ class Evaluator:
     def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
                     teams: list[str]):
         """One group's candidates: (name, caught (n_cand, n_inc), minimum impact grid or
-        None, alerts, known-false alerts, per-candidate team alerts as dicts); `teams`
-        gains the group's teams."""
-        ws = self.ses.ws
-        early, late = ws.incidents.early_hours, ws.incidents.late_hours
+        None, alerts, known-false alerts, curves (candidate i is row i % n_k of curve
+        i // n_k)); `teams` gains the group's teams."""
         grid = self.group_min_impacts.get(name)
         if grid is None:
             c, kf, eps = self.curve(sub)
             caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
-            pa, pi = _overlap_pairs(eps, self.incidents, early, late)
+            pa, pi = _overlap_pairs(eps, self.incidents, self.ses.ws.incidents.early_hours,
+                                    self.ses.ws.incidents.late_hours)
             caught[np.asarray(eps.grid, dtype=np.int64)[pa], pi] = True
             curves, kfs = [c], [kf]
         else:
-            runs = sweep_runs(sub, self.ks, self.replayer.routes, apply_min_impact=False,
-                              start_hours=(self.first_hour, self.split_hour))
-            curves, best = impact_curves_of_runs(runs, self.ks, grid, self.incidents, early,
-                                                 late, self.ses.analysts, self.n_days,
-                                                 with_best=True)
+            curves, kfs, best = self._impact_curves(sub, grid)
             # caught at (j, l): an episode meeting the incident is kept at level l
             caught = (best[None, :, :] >= np.arange(len(grid))[:, None, None]).reshape(
                 len(grid) * len(self.ks), len(self.incidents))
-            kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(grid)
-            if self.false_windows is not None:
-                kfs = [x.true_alerts for x in impact_curves_of_runs(
-                    runs, self.ks, grid, self.false_windows, 0, 0, self.ses.analysts,
-                    self.n_days)]
         for c in curves:
             teams.extend(t for t in c.teams if t not in teams)
-        per_team = [dict(zip(c.teams, row, strict=True)) for c in curves for row in c.team_alerts]
         alerts = np.concatenate([c.alerts for c in curves])
-        return name, caught, grid, alerts, np.concatenate(kfs), per_team
+        return name, caught, grid, alerts, np.concatenate(kfs), curves
+
+    def _impact_curves(self, scores: dict[tuple[str, str], MetricScores], grid: np.ndarray):
+        """Curves over the multiplier grid for every minimum impact of `grid` (tuning
+        hours), the known-false alerts of each, and the incidents' best levels."""
+        ws = self.ses.ws
+        runs = sweep_runs(scores, self.ks, self.replayer.routes, apply_min_impact=False,
+                          start_hours=(self.first_hour, self.split_hour))
+        curves, best = impact_curves_of_runs(runs, self.ks, grid, self.incidents,
+                                             ws.incidents.early_hours, ws.incidents.late_hours,
+                                             self.ses.analysts, self.n_days, with_best=True)
+        kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(grid)
+        if self.false_windows is not None:
+            kfs = [c.true_alerts for c in impact_curves_of_runs(
+                runs, self.ks, grid, self.false_windows, 0, 0, self.ses.analysts, self.n_days)]
+        return curves, kfs, best
 
     def _budget_ratio(self, c: Curve, j: int) -> float:
         return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
