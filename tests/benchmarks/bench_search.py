@@ -153,7 +153,8 @@ def main() -> None:
         fast = time.perf_counter() - t0
         done = res.trials[res.trials["state"] == "COMPLETE"]
         best = res.trials[res.trials["feasible"]]
-        print(f"tune: {args.trials} trials in {fast:.1f} s ({fast / args.trials:.2f} s/trial)")
+        print(f"tune: {args.trials} trials in {fast:.1f} s ({fast / args.trials:.2f} s/trial), "
+              f"{len(best)} of {len(done)} completed trials feasible")
         print(f"one trial on cached remainder streams: {cached_trial_seconds(ses, res):.3f} s "
               f"(mean of {CACHED_REPEATS}, fence window and minimum impact varied)")
         n_plain = min(args.plain_trials, args.trials)
