@@ -55,7 +55,7 @@ def _png(fig: plt.Figure) -> bytes:
 
 
 def tradeoff_png(data: TradeoffData) -> bytes:
-    """Recall against alerts per analyst per day: trials, Pareto front, chosen point."""
+    """Recall against alert load: trials, the best trade-offs, the chosen point."""
     fig, ax = plt.subplots(figsize=(7.0, 4.2))
     _style(ax)
     if data.curve_x:
@@ -66,10 +66,15 @@ def tradeoff_png(data: TradeoffData) -> bytes:
         ax.scatter(x[~ok], y[~ok], s=18, color=INFEASIBLE, label="trial, misses the goal")
         ax.scatter(x[ok], y[ok], s=22, color=FEASIBLE, label="trial, meets the goal")
         front = np.asarray(data.pareto, dtype=bool)
-        if front.any():
+        if front.any() and not data.front_x:
             order = np.argsort(x[front])
             ax.step(x[front][order], y[front][order], where="post", color=FRONT,
                     linewidth=1.4, label="best trade-offs (Pareto front)")
+    if data.front_x:
+        fx, fy = np.asarray(data.front_x), np.asarray(data.front_y)
+        order = np.argsort(fx, kind="stable")
+        ax.step(fx[order], fy[order], where="post", color=FRONT, linewidth=1.4,
+                label="best trade-offs (any trial, any multiplier)")
     if data.chosen_x is not None and data.chosen_y is not None:
         ax.scatter([data.chosen_x], [data.chosen_y], s=120, marker="*", color=CHOSEN,
                    zorder=5, label="chosen settings")

@@ -38,7 +38,7 @@ from calibrate import api
 from calibrate.errors import CalibrationError
 from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
-from calibrate.scoring import match, multiplier_curve, period_filter
+from calibrate.scoring import load_axis, match, multiplier_curve, period_filter
 from calibrate.settings import DetectorConfig
 
 CAUTION = (
@@ -100,6 +100,10 @@ class TradeoffData:
     x_label: str
     curve_x: list[float] = field(default_factory=list)
     curve_y: list[float] = field(default_factory=list)
+    # best trade-offs over every trial and every multiplier of its grid (a search's
+    # `pareto` frame); empty: the step line joins the undominated trial points
+    front_x: list[float] = field(default_factory=list)
+    front_y: list[float] = field(default_factory=list)
 
 
 @dataclass
@@ -198,6 +202,7 @@ def build_report_data(
     first_hour: int | None = None,
     split_hour: int | None = None,
     trials: pd.DataFrame | None = None,
+    front: pd.DataFrame | None = None,
     feasible: bool | None = None,
     reason: str = "",
     holdout_warning: str = "",
@@ -221,6 +226,8 @@ def build_report_data(
         first held-out hour (None: one period, no held-out weeks).
     trials : DataFrame, optional
         Trials of a study (columns miss_rate, feasible, alerts_per_analyst_day...).
+    front : DataFrame, optional
+        The study's best trade-offs (`calibrate.search.pareto_frame`).
     feasible, reason, holdout_warning : optional
         What the search said.
     """
@@ -255,7 +262,8 @@ def build_report_data(
     impact_groups = [] if impact is not None else group_impact_data(
         ses, chosen, tune_a, tune_b, teams, budgets)
     tuning = periods[0].figures
-    tradeoff = tradeoff_data(trials, tuning, ses.analysts, budgets, goal.max_miss_rate, curve)
+    tradeoff = tradeoff_data(trials, tuning, ses.analysts, budgets, goal.max_miss_rate, curve,
+                             front)
     volume = volume_data(ses, chosen, first, split)
     incidents, delays = incident_rows(periods, hist.hours)
     panels, left_out = series_panels(ses, chosen, first, n, incidents)
@@ -342,20 +350,6 @@ def _flat(table: Mapping[str, Any], prefix: str = "") -> dict[str, Any]:
     return out
 
 
-def _load_axis(
-    rates: Mapping[str, float], budgets: Mapping[str, float], analysts: Mapping[str, int]
-) -> tuple[float, float | None, str]:
-    """Alert load on one axis: the busiest team's rate (or its share of its budget)."""
-    checked = [t for t in rates if analysts.get(t, 0) > 0]
-    finite = {budgets.get(t, math.inf) for t in checked}
-    if len(finite) <= 1:
-        b = next(iter(finite), math.inf)
-        x = max((rates[t] for t in checked if rates[t] == rates[t]), default=math.nan)
-        return x, (b if math.isfinite(b) else None), "alerts per analyst per day (busiest team)"
-    x = max(rates[t] / budgets[t] for t in checked if math.isfinite(budgets.get(t, math.inf)))
-    return x, 1.0, "alert load of the busiest team, as a share of its budget"
-
-
 def tradeoff_data(
     trials: pd.DataFrame | None,
     tuning: Mapping[str, Any],
@@ -363,14 +357,16 @@ def tradeoff_data(
     budgets: Mapping[str, float],
     max_miss_rate: float,
     curve: CurveData,
+    front: pd.DataFrame | None = None,
 ) -> TradeoffData:
-    """Trade-off points: trials (when a study ran), the chosen point, the k curve."""
+    """Trade-off points: trials (when a study ran), the chosen point, the k curve and
+    the study's best trade-offs (`front`: columns load and recall)."""
     chosen_rates = {
         t: (row.get("alerts_per_analyst_day") if row.get("alerts_per_analyst_day") is not None
             else math.nan)
         for t, row in tuning.get("per_team", {}).items()
     }
-    cx, budget, label = _load_axis(chosen_rates, budgets, analysts)
+    cx, budget, label = load_axis(chosen_rates, budgets, analysts)
     cy = tuning["recall"]
     xs: list[float] = []
     ys: list[float] = []
@@ -388,14 +384,14 @@ def tradeoff_data(
             else:
                 total = max(sum(analysts.values()), 1)
                 rates = {t: float(row.get("alerts", math.nan)) / total for t in analysts}
-            x, _, _ = _load_axis(rates, budgets, analysts)
+            x, _, _ = load_axis(rates, budgets, analysts)
             xs.append(float(x))
             ys.append(1.0 - float(row["miss_rate"]))
             ok.append(bool(row.get("feasible", False)))
     curve_x, curve_y = [], []
     for i in range(len(curve.ks)):
         rates = {t: curve.team_rate[j][i] for j, t in enumerate(curve.teams)}
-        x, _, _ = _load_axis(rates, budgets, analysts)
+        x, _, _ = load_axis(rates, budgets, analysts)
         if x == x:
             curve_x.append(float(x))
             curve_y.append(float(curve.recall[i]))
@@ -411,6 +407,8 @@ def tradeoff_data(
         x_label=label,
         curve_x=curve_x,
         curve_y=curve_y,
+        front_x=[] if front is None else [float(v) for v in front["load"]],
+        front_y=[] if front is None else [float(v) for v in front["recall"]],
     )
 
 
@@ -765,6 +763,12 @@ def summary_dict(data: ReportData) -> dict[str, Any]:
             "changed": data.changed,
         },
         "volume": data.volume.table,
+        "best_tradeoffs": {
+            "load": data.tradeoff.x_label,
+            "points": [{"recall": y, "load": x}
+                       for x, y in zip(data.tradeoff.front_x, data.tradeoff.front_y,
+                                       strict=True)],
+        },
         "caution": data.caution,
         "provenance": data.provenance,
     }
@@ -974,10 +978,13 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
 
     parts.append('<h2 id="tradeoff">3. Recall against alert load</h2>')
     t = data.tradeoff
-    what = (f"Each dot is one trial of the search ({len(t.x)} trials); blue ones meet the goal "
-            "on the tuning weeks, grey ones do not. The dark step line joins the best "
-            "trade-offs found." if t.x else
-            "No study trials are attached to this report.")
+    line = ("The dark step line is the best trade-off the search found for each recall: "
+            "the least alert load of any trial at any multiplier (and minimum impact) on "
+            "its grid, so it shows what a stricter or looser recall target would cost."
+            if t.front_x else "The dark step line joins the best trade-offs found.")
+    what = (f"Each dot is one trial of the search ({len(t.x)} trials) at its solved "
+            "multiplier; blue ones meet the goal on the tuning weeks, grey ones do not. "
+            f"{line}" if t.x else "No study trials are attached to this report.")
     parts.append(img("tradeoff.png", "recall against alerts per analyst per day",
                      f"{what} The dotted line shows the chosen settings at other fence "
                      "multipliers; the star is the chosen point; the dashed lines are the "
@@ -1222,7 +1229,8 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
     prov = {k: v for k, v in prov.items() if v is not None}
     data = build_report_data(
         ses, chosen, current=cur, first_hour=result.first_hour, split_hour=result.split_hour,
-        trials=result.trials, feasible=result.feasible, reason=result.reason or "",
+        trials=result.trials, front=getattr(result, "pareto", None),
+        feasible=result.feasible, reason=result.reason or "",
         holdout_warning=result.holdout_warning or "", provenance=prov,
         title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
     )

@@ -72,7 +72,10 @@ from calibrate.scoring import (
     Curve,
     Figures,
     _overlap_pairs,
+    best_tradeoffs,
+    curve_loads,
     impact_curves_of_runs,
+    load_axis,
     multiplier_curve,
     period_filter,
     solve_multiplier,
@@ -346,6 +349,9 @@ class Evaluation:
     constraints: list[float]
     min_impact: float | None = None  # solved minimum impact (None: the config's own)
     group_min_impact: dict[str, float] = field(default_factory=dict)  # solved, per group
+    # best trade-offs over the solved multiplier (and minimum impact) grid: [caught,
+    # load (`scoring.load_axis`), k, min_impact or None]; empty for grouped settings
+    front: list[list[float | None]] = field(default_factory=list)
 
     def attrs(self) -> dict[str, Any]:
         return {k: _json_safe(v) for k, v in dataclasses.asdict(self).items()}
@@ -406,12 +412,14 @@ class Evaluator:
             k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
             j = _fallback_index(c, self.goal) if k is None else int(
                 np.flatnonzero(c.ks == k)[0])
-            return self._figures(
+            ev = self._figures(
                 feasible=k is not None and self._budget_ratio(c, j) <= 1.0,
                 reason=reason, k=float(c.ks[j]), group_k={}, caught=int(c.caught[j]),
                 alerts=int(c.alerts[j]), kf=int(kf[j]), team_alerts=c.team_alerts[j],
                 teams=c.teams,
             )
+            ev.front = self._front([c], None)
+            return ev
         return self._evaluate_groups(config, scores)
 
     def _evaluate_with_impact(self, config: DetectorConfig) -> Evaluation:
@@ -446,10 +454,23 @@ class Evaluator:
         else:
             _, lv, j, reason = best
             c, feasible = curves[lv], True
-        return self._figures(
+        ev = self._figures(
             feasible=feasible, reason=reason, k=float(c.ks[j]), group_k={},
             caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
             team_alerts=c.team_alerts[j], teams=c.teams, min_impact=float(ms[lv]))
+        ev.front = self._front(curves, ms)
+        return ev
+
+    def _front(self, curves: Sequence[Curve], ms: np.ndarray | None) -> list[list[Any]]:
+        """`scoring.best_tradeoffs` over every (multiplier, minimum impact) pair of
+        `curves` (curve l at minimum impact ms[l]; None: the config's own)."""
+        grid = np.zeros(len(curves)) if ms is None else np.asarray(ms, dtype=np.float64)
+        pts = best_tradeoffs(
+            np.concatenate([c.caught for c in curves]),
+            np.concatenate([curve_loads(c, self.ses.analysts, self.goal) for c in curves]),
+            np.concatenate([c.ks for c in curves]),
+            np.concatenate([np.full(len(c.ks), m) for c, m in zip(curves, grid, strict=True)]))
+        return [[c, x, k, None if ms is None else m] for c, x, k, m in pts]
 
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
@@ -675,7 +696,8 @@ class TuneResult:
     trials : DataFrame
         One row per finished trial.
     pareto : DataFrame
-        Completed trials no other beats on both recall and worst team load.
+        The best trade-offs of recall against alert load over every completed trial
+        and every multiplier of its grid (`pareto_frame`).
     study_name, storage : str
     provenance : dict
     """
@@ -1041,24 +1063,43 @@ def trials_frame(study: optuna.Study, space: list[Param], teams: Sequence[str]) 
     return pd.DataFrame(rows)
 
 
-def pareto_frame(trials: pd.DataFrame, teams: Sequence[str]) -> pd.DataFrame:
-    """Completed trials not dominated on (recall up, worst team's load down)."""
-    if trials.empty:
-        return trials
-    df = trials[trials["state"] == "COMPLETE"].copy()
-    cols = [f"alerts_per_analyst_day[{t}]" for t in teams]
-    df["recall"] = 1.0 - df["miss_rate"].astype(float)
-    df["max_alerts_per_analyst_day"] = (
-        df[cols].astype(float).max(axis=1) if cols else df["alerts"].astype(float))
-    x = df["max_alerts_per_analyst_day"].to_numpy()
-    y = df["recall"].to_numpy()
-    keep = []
-    for i in range(len(df)):
-        dominated = (x <= x[i]) & (y >= y[i]) & ((x < x[i]) | (y > y[i]))
-        keep.append(not dominated.any())
-    out = df[np.array(keep, dtype=bool)]
-    out = out.drop_duplicates(subset=["recall", "max_alerts_per_analyst_day"])
-    return out.sort_values(["max_alerts_per_analyst_day", "recall"]).reset_index(drop=True)
+FRONT_COLUMNS = ("number", "caught", "incidents", "recall", "load", "k", "min_impact")
+
+
+def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
+                 analysts: dict[str, int]) -> pd.DataFrame:
+    """The best trade-offs of a study: (recall, alert load) pairs no other beats on both.
+
+    Each completed trial offers its own front over the multiplier (and minimum
+    impact) grid (`Evaluation.front`); trials without one (grouped settings, older
+    studies) offer their solved point. Columns `FRONT_COLUMNS`, least load first;
+    ``attrs["load_label"]`` names the load (`scoring.load_axis`).
+    """
+    budgets = {t: goal.budget(t) for t in analysts}
+    rows = []
+    for t in trials:
+        if t.state != optuna.trial.TrialState.COMPLETE:
+            continue
+        a = t.user_attrs
+        n_inc = int(a.get("incidents") or 0)
+        pts = a.get("front") or [[a.get("caught", 0), load_axis(
+            a.get("team_rate") or {}, budgets, analysts)[0], a.get("k"), a.get("min_impact")]]
+        for caught, load, k, m in pts:
+            rows.append({"number": t.number, "caught": int(caught), "incidents": n_inc,
+                         "recall": caught / n_inc if n_inc else 1.0,
+                         "load": math.nan if load is None else float(load),
+                         "k": math.nan if k is None else float(k),
+                         "min_impact": math.nan if m is None else float(m)})
+    df = pd.DataFrame(rows, columns=list(FRONT_COLUMNS))
+    if len(df):
+        x = np.nan_to_num(df["load"].to_numpy(dtype=np.float64), nan=0.0)
+        y = df["recall"].to_numpy(dtype=np.float64)
+        keep = [not ((x <= x[i]) & (y >= y[i]) & ((x < x[i]) | (y > y[i]))).any()
+                for i in range(len(df))]
+        df = df[np.array(keep, dtype=bool)].sort_values(["load", "recall", "number"])
+        df = df.drop_duplicates(subset=["recall", "load"]).reset_index(drop=True)
+    df.attrs["load_label"] = load_axis({t: 0.0 for t in analysts}, budgets, analysts)[2]
+    return df
 
 
 def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
@@ -1089,7 +1130,7 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
         config = config.with_base(min_impact=a["min_impact"])
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
-    pareto = pareto_frame(trials, teams)
+    pareto = pareto_frame(finished, goal, ses.analysts)
     n = ses.history.n_hours
     episodes = ev.replayer.replay(config).episodes
     tuning = api.score_episodes(ses, episodes, ev.first_hour, ev.split_hour)
@@ -1260,16 +1301,19 @@ def changed_settings_line(result: TuneResult) -> str:
     return "changed: " + (", ".join(diffs) if diffs else "nothing in the base settings") + groups
 
 
-def pareto_lines(result: TuneResult, limit: int = 10) -> list[str]:
-    """The best trade-offs (Pareto front), one line each."""
-    lines = ["best trade-offs (recall against the busiest team's alerts per analyst per day):"]
-    for row in result.pareto.head(limit).itertuples(index=False):
-        d = row._asdict()
-        impact = d.get("min_impact")
-        shown = "" if impact is None or impact != impact else f", min_impact={impact:g}"
-        lines.append(f"  trial {d['number']}: recall {_pct(d['recall'])}, "
-                     f"{d['max_alerts_per_analyst_day']:.2f} per analyst-day, k={d['k']:.3g}"
-                     + shown)
+def pareto_lines(result: TuneResult, limit: int = 12) -> list[str]:
+    """The best trade-offs (Pareto front), most recall first, one line each."""
+    front = result.pareto
+    label = front.attrs.get("load_label", "alert load")
+    lines = [f"best trade-offs found on the tuning weeks (load: {label}):"]
+    rows = front.sort_values("recall", ascending=False, kind="stable").head(limit)
+    for d in rows.to_dict("records"):
+        impact = d["min_impact"]
+        shown = "" if impact != impact else f", min_impact={impact:g}"
+        lines.append(f"  recall {_pct(d['recall'])} ({d['caught']} of {d['incidents']}), "
+                     f"load {d['load']:.3g}: trial {d['number']}, k={d['k']:.3g}" + shown)
+    if len(front) > limit:
+        lines.append(f"  ... {len(front) - limit} more in the report's trade-off plot")
     return lines
 
 

@@ -233,7 +233,8 @@ def test_report_from_a_tune_result(ses, chosen_config, tmp_path: Path) -> None:
     result = SimpleNamespace(
         config=chosen_config, current=ses.ws.detector, feasible=True, reason="k=2.5: met",
         split_hour=SPLIT, first_hour=167, holdout_warning="", trials=trials,
-        pareto=trials.iloc[[1, 2]], study_name="s1", storage="mem", provenance={"seed": 0},
+        pareto=pd.DataFrame({"load": [0.4, 1.2, 1.5], "recall": [0.4, 0.6, 0.8]}),
+        study_name="s1", storage="mem", provenance={"seed": 0},
     )
     out = tmp_path / "tuned-report"
     data = write_report(ses, result, out, executor=SerialExecutor())
@@ -241,8 +242,10 @@ def test_report_from_a_tune_result(ses, chosen_config, tmp_path: Path) -> None:
     assert t.x == [4.0, 1.5, 0.4] and t.y == pytest.approx([1.0, 0.8, 0.4])
     assert t.feasible == [False, True, False] and t.pareto == [True, True, True]
     assert t.budget == 3.0
+    assert t.front_x == [0.4, 1.2, 1.5] and t.front_y == [0.4, 0.6, 0.8]
     summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
     assert summary["feasible"] is True and summary["provenance"]["study_name"] == "s1"
+    assert summary["best_tradeoffs"]["points"][1] == {"recall": 0.6, "load": 1.2}
     assert (out / "alerts-for-review.csv").is_file()
 
 

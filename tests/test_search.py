@@ -128,6 +128,68 @@ def test_solved_multiplier_and_min_impact_equal_brute_force(ses):
     assert solved[0] != solved[1] and max(m for _, m in solved) > 0
 
 
+def _naive_front(caught, load):
+    """The definition, directly: for each caught count c, the least load among pairs
+    catching >= c, kept where it is below the least load of catching > c."""
+    out = []
+    for c in sorted(set(caught), reverse=True):
+        at_least = min(x for cc, x in zip(caught, load, strict=True) if cc >= c)
+        more = [x for cc, x in zip(caught, load, strict=True) if cc > c]
+        if not more or at_least < min(more):
+            out.append((c, at_least))
+    return out
+
+
+def test_best_tradeoffs_is_the_pareto_front_with_its_tie_rule():
+    """Reference: the front's definition computed naively (`_naive_front`), on random
+    candidates with many ties; ties go to the larger k, then the smaller impact."""
+    from calibrate.scoring import best_tradeoffs
+
+    rng = np.random.default_rng(5)
+    for _ in range(30):
+        n = int(rng.integers(1, 40))
+        caught = rng.integers(0, 6, n)
+        load = rng.integers(0, 8, n).astype(float)
+        ks, ms = rng.integers(1, 4, n).astype(float), rng.integers(0, 3, n).astype(float)
+        got = best_tradeoffs(caught, load, ks, ms)
+        assert [(c, x) for c, x, _, _ in got] == _naive_front(caught.tolist(), load.tolist())
+        for c, x, k, m in got:
+            tied = [(ks[i], -ms[i]) for i in range(n) if caught[i] == c and load[i] == x]
+            assert (k, -m) == max(tied)
+
+
+def test_trade_off_front_equals_brute_force_replays(ses):
+    """Reference: replay every (k, min_impact) pair with the detector's own settings,
+    score it as `calibrate score` does and take the busiest team's alerts per analyst
+    per day; the front of those pairs (`_naive_front`) is what the evaluator stores."""
+    first, split = 167, ses.history.n_hours - 168
+    ks = np.geomspace(1.0, 60.0, 7)
+    ms = np.array([0.0, 30.0, 2000.0])
+    goal = Goal(max_miss_rate=0.25, max_alerts_per_analyst_day=1e6)
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    ev = search.Evaluator(ses, rp, ks, first, split, goal, min_impacts=ms).evaluate(
+        ses.ws.detector)
+    fixed = search.Evaluator(ses, rp, ks, first, split, goal).evaluate(ses.ws.detector)
+    pairs = []
+    for m in ms:
+        for k in ks:
+            cfg = ses.ws.detector.with_base(fence_multiplier=float(k), min_impact=float(m))
+            f = api.score_episodes(ses, rp.replay(cfg).episodes, first, split)
+            teams = f.per_team[f.per_team["analysts"] > 0]
+            load = max(teams["alerts_per_analyst_day"], default=0.0)
+            pairs.append((f.caught, float(load), float(k), float(m)))
+    ref = _naive_front([p[0] for p in pairs], [p[1] for p in pairs])
+    assert [(c, pytest.approx(x)) for c, x, _, _ in ev.front] == ref
+    assert len(ref) >= 3  # more than the solved point: the front spans recall levels
+    for c, x, k, m in ev.front:  # each point replays to what it claims
+        assert any(p[0] == c and p[1] == pytest.approx(x) and p[2:] == (k, m) for p in pairs)
+    # without a minimum-impact grid, the front is that of the config's own impact (0)
+    own = [(c, x) for c, x, _, m in pairs if m == 0.0]
+    assert [(c, pytest.approx(x)) for c, x, _, m in fixed.front] == _naive_front(
+        [c for c, _ in own], [x for _, x in own])
+    assert all(m is None for *_, m in fixed.front)
+
+
 def test_infeasible_solved_pair_is_the_closest_fixed_minimum_impact(ses):
     """Reference: the established one-minimum-impact-at-a-time evaluation; with no pair
     meeting the goal, the solved pair is the one with the lowest miss-rate excess, then
@@ -234,6 +296,12 @@ def test_impossible_goal_says_which_constraint_and_by_how_much(ses, tmp_path):
     assert "alert budget" in res.reason and "over its budget 0.01" in res.reason
     assert not res.trials["feasible"].any()
     assert len(res.pareto) >= 1
+    # the front spans recall levels, and its dearest point catches the most
+    front = res.pareto
+    assert front["load"].is_monotonic_increasing and front["recall"].is_monotonic_increasing
+    assert front["recall"].iloc[-1] == pytest.approx(1 - res.trials["miss_rate"].min())
+    lines = search.pareto_lines(res)
+    assert lines[0].startswith("best trade-offs found") and "trial" in lines[1]
 
 
 def test_unreachable_miss_rate_reports_best_miss_rate(tmp_path):
