@@ -94,7 +94,6 @@ STUDY_FILE = ".calibrate/study.journal"
 BUDGET_STATES = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNED)
 INVALID = 1e9  # constraint value of a pruned (invalid) combination
 MAX_PRECOMPUTED_WINDOWS = 64
-JOINER_SEED_OFFSET = 1_000_003
 # remainder streams a tune keeps in memory; beyond, the least recently used
 # decomposition settings are dropped and refit if a later trial needs them again
 STREAM_CACHE_BYTES = 2 * 1024**3
@@ -955,18 +954,10 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         existing.set_user_attr("goal", _json_safe(dataclasses.asdict(ev.goal)))
         existing.set_user_attr("hours", [ev.first_hour, ev.split_hour])
         existing.set_user_attr("known_false", ev.false_windows is not None)
+    base_seed = ses.ws.search.seed
     n_before = len(existing.get_trials(deepcopy=False))
-    running = len(existing.get_trials(deepcopy=False,
-                                      states=(optuna.trial.TrialState.RUNNING,)))
-    # deterministic for one process's runs; a process joining a study another one created
-    # (two tune processes started together) gets a different seed, so the two do not
-    # propose the same settings side by side, and each further joiner, which finds one
-    # more trial in flight, another again
-    seed = ses.ws.search.seed + n_before + (
-        0 if created else JOINER_SEED_OFFSET * (1 + running))
-    sampler = optuna.samplers.TPESampler(
-        seed=seed, **({} if SET_CONSTRAINT else {"constraints_func": _constraints}))
-    study = optuna.load_study(study_name=name, storage=store, sampler=sampler)
+    study = optuna.load_study(study_name=name, storage=store,
+                              sampler=_sampler(base_seed + n_before))
     # only the process that created the study queues today's settings: two processes
     # starting together would otherwise both queue them (skip_if_exists races)
     for cfg in starts if created else starts[1:]:
@@ -978,6 +969,10 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
     current = ses.ws.detector
 
     def objective(trial: optuna.Trial) -> float:
+        # a sampler seeded by the trial's number, which the storage hands out once: two
+        # processes sharing the study never draw alike, and trial n of a resumed study
+        # proposes what it would have uninterrupted (the same finished trials before it)
+        trial.study.sampler = _sampler(base_seed + trial.number)
         params = {p.name: p.suggest(trial) for p in space}
         try:
             config = _config_from(params, space, ses, current)
@@ -1012,6 +1007,11 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
     finally:
         bar.close()
     return study
+
+
+def _sampler(seed: int) -> optuna.samplers.TPESampler:
+    return optuna.samplers.TPESampler(
+        seed=seed, **({} if SET_CONSTRAINT else {"constraints_func": _constraints}))
 
 
 def _is_feasible(t: optuna.trial.FrozenTrial) -> bool:
