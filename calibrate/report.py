@@ -26,7 +26,7 @@ import os
 import shutil
 import tempfile
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -765,7 +765,7 @@ def summary_dict(data: ReportData) -> dict[str, Any]:
         "volume": data.volume.table,
         "best_tradeoffs": {
             "load": data.tradeoff.x_label,
-            "points": [{"recall": y, "load": x}
+            "points": [{"recall": y, "load": _finite(x)}
                        for x, y in zip(data.tradeoff.front_x, data.tradeoff.front_y,
                                        strict=True)],
         },
@@ -1216,7 +1216,11 @@ def write_config_report(
 
 def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: bool = True,
                  progress: bool = False, **replay_kwargs: Any) -> ReportData:
-    """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`."""
+    """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`,
+    judged against the goal the run was tuned to (`result.goal`, when set)."""
+    goal = getattr(result, "goal", None)
+    if goal is not None and goal != ses.ws.goal:
+        ses = replace(ses, ws=replace(ses.ws, goal=goal))
     rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
     try:
         chosen = rp.replay(result.config)

@@ -699,6 +699,9 @@ class TuneResult:
         and every multiplier of its grid (`pareto_frame`).
     study_name, storage : str
     provenance : dict
+    goal : Goal
+        The goal the trials were judged against (the workspace's, or an override);
+        the report judges with it too.
     """
 
     config: DetectorConfig
@@ -715,6 +718,7 @@ class TuneResult:
     study_name: str
     storage: str
     provenance: dict[str, Any]
+    goal: Goal | None = None
 
 
 def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> str:
@@ -970,8 +974,9 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
 
     def objective(trial: optuna.Trial) -> float:
         # a sampler seeded by the trial's number, which the storage hands out once: two
-        # processes sharing the study never draw alike, and trial n of a resumed study
-        # proposes what it would have uninterrupted (the same finished trials before it)
+        # processes sharing the study never draw alike, and trial n of a study resumed
+        # after a stop between trials proposes what it would have uninterrupted (a trial
+        # cut off mid-way keeps its number as a failed trial, so later draws shift)
         trial.study.sampler = _sampler(base_seed + trial.number)
         params = {p.name: p.suggest(trial) for p in space}
         try:
@@ -1082,8 +1087,10 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
             continue
         a = t.user_attrs
         n_inc = int(a.get("incidents") or 0)
+        # grouped settings: no single multiplier (their `k` is the groups' median)
+        k_own = None if a.get("group_k") else a.get("k")
         pts = a.get("front") or [[a.get("caught", 0), load_axis(
-            a.get("team_rate") or {}, budgets, analysts)[0], a.get("k"), a.get("min_impact")]]
+            a.get("team_rate") or {}, budgets, analysts)[0], k_own, a.get("min_impact")]]
         for caught, load, k, m in pts:
             rows.append({"number": t.number, "caught": int(caught), "incidents": n_inc,
                          "recall": caught / n_inc if n_inc else 1.0,
@@ -1148,7 +1155,7 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     return TuneResult(config=config, current=current, feasible=feasible, reason=reason,
                       split_hour=ev.split_hour, first_hour=ev.first_hour, tuning=tuning,
                       holdout=holdout, holdout_warning=warning, trials=trials, pareto=pareto,
-                      study_name=name, storage=store_name, provenance=prov)
+                      study_name=name, storage=store_name, provenance=prov, goal=goal)
 
 
 def infeasible_reason(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal) -> str:
@@ -1301,19 +1308,19 @@ def changed_settings_line(result: TuneResult) -> str:
     return "changed: " + (", ".join(diffs) if diffs else "nothing in the base settings") + groups
 
 
-def pareto_lines(result: TuneResult, limit: int = 12) -> list[str]:
-    """The best trade-offs (Pareto front), most recall first, one line each."""
+def pareto_lines(result: TuneResult) -> list[str]:
+    """The best trade-offs (Pareto front), most recall first, one line each (at most
+    one per number of incidents caught)."""
     front = result.pareto
     label = front.attrs.get("load_label", "alert load")
     lines = [f"best trade-offs found on the tuning weeks (load: {label}):"]
-    rows = front.sort_values("recall", ascending=False, kind="stable").head(limit)
+    rows = front.sort_values("recall", ascending=False, kind="stable")
     for d in rows.to_dict("records"):
         impact = d["min_impact"]
         shown = "" if impact != impact else f", min_impact={impact:g}"
+        k = "multipliers per group" if d["k"] != d["k"] else f"k={d['k']:.3g}"
         lines.append(f"  recall {_pct(d['recall'])} ({d['caught']} of {d['incidents']}), "
-                     f"load {d['load']:.3g}: trial {d['number']}, k={d['k']:.3g}" + shown)
-    if len(front) > limit:
-        lines.append(f"  ... {len(front) - limit} more in the report's trade-off plot")
+                     f"load {d['load']:.3g}: trial {d['number']}, {k}" + shown)
     return lines
 
 

@@ -304,6 +304,25 @@ def test_impossible_goal_says_which_constraint_and_by_how_much(ses, tmp_path):
     assert lines[0].startswith("best trade-offs found") and "trial" in lines[1]
 
 
+def test_report_judges_with_the_goal_the_tune_used(tmp_path):
+    # per-team budgets in the workspace, one budget for all as a tune override: the
+    # report's axis, trade-off front and verdicts must all be those of the override
+    from calibrate.report import write_report
+
+    ws = make_workspace(tmp_path / "ws", search=SEARCH, budget="{ blue = 2.0, green = 20.0 }")
+    ses = api.open_session(ws)
+    goal = Goal(max_miss_rate=0.5, max_alerts_per_analyst_day=4.0)
+    res = _tune(ses, tmp_path, trials=3, goal=goal)
+    assert res.goal == goal
+    data = write_report(ses, res, tmp_path / "report", executor=SerialExecutor())
+    t = data.tradeoff
+    assert t.x_label == res.pareto.attrs["load_label"] == "alerts per analyst per day " \
+        "(busiest team)"
+    assert t.budget == 4.0 and t.target_recall == 0.5
+    assert data.goal["max_miss_rate"] == 0.5
+    assert t.front_x == pytest.approx(res.pareto["load"].tolist())
+
+
 def test_unreachable_miss_rate_reports_best_miss_rate(tmp_path):
     # a multiplier range far above every incident's fence score catches nothing
     ws = make_workspace(tmp_path / "ws", search=SEARCH + "\nfence_multiplier = {low = 500.0, "
