@@ -38,7 +38,13 @@ from calibrate import api
 from calibrate.errors import CalibrationError
 from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
-from calibrate.scoring import load_axis, match, multiplier_curve, period_filter
+from calibrate.scoring import (
+    load_axis,
+    match,
+    multiplier_curve,
+    pareto_front,
+    period_filter,
+)
 from calibrate.settings import DetectorConfig
 
 CAUTION = (
@@ -423,16 +429,6 @@ def _team_rate_columns(columns: Sequence[str], teams: list[str]) -> dict[str, st
                 out[t] = c
                 break
     return out if len(out) == len(teams) else {}
-
-
-def pareto_front(x: Sequence[float], y: Sequence[float]) -> list[bool]:
-    """Points no other point beats on both axes (lower x, higher y)."""
-    xa, ya = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
-    out = []
-    for i in range(len(xa)):
-        dominated = (xa <= xa[i]) & (ya >= ya[i]) & ((xa < xa[i]) | (ya > ya[i]))
-        out.append(bool(np.isfinite(xa[i]) and not dominated.any()))
-    return out
 
 
 def curve_data(

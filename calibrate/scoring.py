@@ -18,7 +18,7 @@ routing array per level (the seam to ``calibrate.owners``).
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any, TypeVar
 
@@ -1032,6 +1032,16 @@ def curve_loads(curve: Curve, analysts: Mapping[str, int], goal: Goal) -> np.nda
         return rates.max(axis=1)
     finite = np.isfinite(budget)
     return (rates[:, finite] / budget[finite]).max(axis=1)
+
+
+def pareto_front(x: Sequence[float], y: Sequence[float]) -> list[bool]:
+    """Points no other point beats on both axes (lower x, higher y)."""
+    xa, ya = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    out = []
+    for i in range(len(xa)):
+        dominated = (xa <= xa[i]) & (ya >= ya[i]) & ((xa < xa[i]) | (ya > ya[i]))
+        out.append(bool(np.isfinite(xa[i]) and not dominated.any()))
+    return out
 
 
 def best_tradeoffs(caught: np.ndarray, load: np.ndarray, ks: np.ndarray,

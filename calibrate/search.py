@@ -77,6 +77,7 @@ from calibrate.scoring import (
     impact_curves_of_runs,
     load_axis,
     multiplier_curve,
+    pareto_front,
     period_filter,
     solve_multiplier,
     wilson,
@@ -1099,10 +1100,8 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
                          "min_impact": math.nan if m is None else float(m)})
     df = pd.DataFrame(rows, columns=list(FRONT_COLUMNS))
     if len(df):
-        x = np.nan_to_num(df["load"].to_numpy(dtype=np.float64), nan=0.0)
-        y = df["recall"].to_numpy(dtype=np.float64)
-        keep = [not ((x <= x[i]) & (y >= y[i]) & ((x < x[i]) | (y > y[i]))).any()
-                for i in range(len(df))]
+        keep = pareto_front(np.nan_to_num(df["load"].to_numpy(dtype=np.float64), nan=0.0),
+                            df["recall"].to_numpy(dtype=np.float64))
         df = df[np.array(keep, dtype=bool)].sort_values(["load", "recall", "number"])
         df = df.drop_duplicates(subset=["recall", "load"]).reset_index(drop=True)
     df.attrs["load_label"] = load_axis({t: 0.0 for t in analysts}, budgets, analysts)[2]

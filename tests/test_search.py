@@ -158,6 +158,30 @@ def test_best_tradeoffs_is_the_pareto_front_with_its_tie_rule():
             assert (k, -m) == max(tied)
 
 
+def test_curve_loads_equal_load_axis_at_every_grid_point(ses):
+    """Reference: `scoring.load_axis` (the report's one-point rule) row by row, with
+    per-team budgets (one infinite) so the share-of-budget branch runs, and with one
+    budget for all."""
+    from calibrate.scoring import curve_loads, load_axis
+
+    first, split = 167, ses.history.n_hours - 168
+    ks = np.geomspace(0.5, 60.0, 9)
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    for budget in ({"blue": 2.0, "green": math.inf}, {"blue": 2.0, "green": 7.0}, 3.0):
+        goal = Goal(max_miss_rate=0.25, max_alerts_per_analyst_day=budget)
+        ev = search.Evaluator(ses, rp, ks, first, split, goal)
+        c, _, _ = ev.curve(rp.scores(ses.ws.detector))
+        budgets = {t: goal.budget(t) for t in ses.analysts}
+        ref = []
+        for j in range(len(ks)):
+            rates = {t: 0.0 for t in ses.analysts}
+            rates.update({t: float(r) for t, r in zip(c.teams, c.alerts_per_analyst_day[j],
+                                                      strict=True) if t in ses.analysts})
+            ref.append(load_axis(rates, budgets, ses.analysts)[0])
+        got = curve_loads(c, ses.analysts, goal)
+        assert got == pytest.approx(ref) and len(set(np.round(got, 9))) > 1
+
+
 def test_trade_off_front_equals_brute_force_replays(ses):
     """Reference: replay every (k, min_impact) pair with the detector's own settings,
     score it as `calibrate score` does and take the busiest team's alerts per analyst
