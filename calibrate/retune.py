@@ -284,7 +284,7 @@ def explain_still_raised(
     """Why known false alarms are still raised: the fence multiplier and the minimum
     impact that would each drop one, and the miss rate there (everything else as in the
     new settings; the minimum impact raised for every series alike)."""
-    from calibrate.replay import sweep
+    from calibrate.replay import sweep_codes
     from calibrate.scoring import period_filter
 
     out = []
@@ -294,18 +294,27 @@ def explain_still_raised(
     early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
     days = max(end - start, 1) / 24.0
     goal = _pct(ses.ws.goal.max_miss_rate)
-    own = period_filter(sweep(new.scores, None, new.routes), start, end)
+    hours = (start, end)
+    own = sweep_codes(new.scores, None, new.routes, start_hours=hours)
+    alerts = [m.alerts_of(j) for j in range(len(still))]
+    peaks = np.array([np.nanmax(ep.peak_score[i]) if len(i) and np.isfinite(
+        ep.peak_score[i]).any() else np.nan for i in alerts])
+    dets_of = [set("+".join(ep.detectors[i]).split("+")) if len(i) else set() for i in alerts]
+    # one pass over the scores for every multiplier just above a peak fence score
+    ks = peaks * 1.0001 + 1e-9
+    lever_ks = np.flatnonzero(np.isfinite(ks) & ["flatline" not in d for d in dets_of])
+    k_miss = {}
+    if len(lever_ks):
+        grid = ks[lever_ks]
+        c = multiplier_curve(sweep_codes(new.scores, grid, new.routes, start_hours=hours),
+                             grid, inc, early, late, ses.analysts, days)
+        k_miss = dict(zip(lever_ks.tolist(), c.miss_rate.tolist(), strict=True))
     for j in range(len(still)):
-        idx = m.alerts_of(j)
-        peak = float(np.nanmax(ep.peak_score[idx])) if len(idx) else float("nan")
-        dets = set("+".join(ep.detectors[idx]).split("+")) if len(idx) else set()
+        idx, peak, dets = alerts[j], float(peaks[j]), dets_of[j]
         levers = []
-        if np.isfinite(peak) and "flatline" not in dets:
-            ks = np.array([peak * 1.0001 + 1e-9])
-            eps = period_filter(sweep(new.scores, ks, new.routes), start, end)
-            c = multiplier_curve(eps, ks, inc, early, late, ses.analysts, days)
+        if j in k_miss:
             levers.append(f"a fence multiplier above {peak:.3g} (miss rate there "
-                          f"{_pct(float(c.miss_rate[0]))})")
+                          f"{_pct(float(k_miss[j]))})")
         size = float(np.nanmax(np.abs(ep.impact[idx]))) if len(idx) else float("nan")
         if np.isfinite(size):
             # the next representable minimum impact above it drops the alert

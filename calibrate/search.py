@@ -351,10 +351,26 @@ class Evaluation:
     group_min_impact: dict[str, float] = field(default_factory=dict)  # solved, per group
     # best trade-offs over the solved multiplier (and minimum impact) grid: [caught,
     # load (`scoring.load_axis`), k, min_impact or None]; empty for grouped settings
+    # (`tune` computes the chosen grouped setting's with `Evaluator.group_front`)
     front: list[list[float | None]] = field(default_factory=list)
 
     def attrs(self) -> dict[str, Any]:
         return {k: _json_safe(v) for k, v in dataclasses.asdict(self).items()}
+
+
+@dataclass
+class JointSolve:
+    """One joint solve of grouped settings (`Evaluator._joint`): incidents caught,
+    alerts, known-false alerts, alerts per team (in the evaluator's team order) and the
+    groups' multipliers and solved minimum impacts; `load` is set by `group_front`."""
+
+    caught: int
+    alerts: int
+    kf: int
+    team_alerts: np.ndarray
+    group_k: dict[str, float]
+    group_min_impact: dict[str, float]
+    load: float = math.nan
 
 
 @dataclass
@@ -474,6 +490,40 @@ class Evaluator:
 
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
+        parts, teams = self._group_parts(config, scores)
+        j = self._joint(parts, teams, self.goal.max_miss_rate)
+        ev = self._figures(feasible=True, reason="",
+                           k=float(np.median(list(j.group_k.values()))), group_k=j.group_k,
+                           caught=j.caught, alerts=j.alerts, kf=j.kf, team_alerts=j.team_alerts,
+                           teams=tuple(teams))
+        ev.group_min_impact = j.group_min_impact
+        ev.feasible = all(v <= 0 for v in ev.constraints)
+        ev.reason = _reason(ev, self.goal)
+        return ev
+
+    def group_front(self, config: DetectorConfig) -> list[JointSolve]:
+        """Best trade-offs of a grouped `config`: the joint solve (`greedy_multipliers`)
+        at every miss-rate level k/n, kept where no other level catches as many for
+        less load (`scoring.best_tradeoffs`); most incidents caught first."""
+        parts, teams = self._group_parts(config, self.replayer.scores(config))
+        n_inc = len(self.incidents)
+        budgets = {t: self.goal.budget(t) for t in self.ses.analysts}
+        solves = [self._joint(parts, teams, (n_inc - c) / n_inc if n_inc else 0.0)
+                  for c in range(n_inc + 1)]
+        for js in solves:
+            rates, _ = _max_ratio(dict(zip(teams, js.team_alerts, strict=True)),
+                                  self.ses.analysts, self.goal, self.n_days)
+            js.load = load_axis(rates, budgets, self.ses.analysts)[0]
+        n = len(solves)
+        pts = best_tradeoffs(np.array([js.caught for js in solves]),
+                             np.array([js.load for js in solves]),
+                             -np.arange(n, dtype=np.float64), np.zeros(n))
+        # best_tradeoffs' k slot carries -index here, so ties keep the lowest level
+        return [solves[int(-k)] for _, _, k, _ in pts]
+
+    def _group_parts(self, config: DetectorConfig,
+                     scores: dict[tuple[str, str], MetricScores]) -> tuple[list, list[str]]:
+        """Every group's candidates (`_candidates`) and the teams they route to."""
         teams = list(self.ses.analysts)
         parts = []
         # each (level, metric) belongs to the first group matching it (as in replay),
@@ -484,11 +534,15 @@ class Evaluator:
             sub = {key: ms for key, ms in scores.items() if owner[key] == i}
             if sub:
                 parts.append(self._candidates(BASE_GROUP if g is None else g.name, sub, teams))
+        return parts, teams
+
+    def _joint(self, parts: list, teams: list[str], max_miss_rate: float) -> JointSolve:
+        """The groups' joint multipliers (and minimum impacts) at `max_miss_rate`."""
         # a candidate is (multiplier j, minimum impact l) at index l * n_k + j; groups
         # whose minimum impact is not solved have l = 0 only (their own value)
         n_k, n_t = len(self.ks), len(teams)
         cost = [alerts + KNOWN_FALSE_PENALTY * kf for _, _, _, alerts, kf, _ in parts]
-        idx = greedy_multipliers([p[1] for p in parts], cost, self.goal.max_miss_rate,
+        idx = greedy_multipliers([p[1] for p in parts], cost, max_miss_rate,
                                  forward_only=[p[2] is None for p in parts])
         caught = np.zeros(len(self.incidents), dtype=bool)
         ta = np.zeros(n_t, dtype=np.int64)
@@ -505,13 +559,8 @@ class Evaluator:
             group_k[name] = float(self.ks[i % n_k])
             if grid is not None:
                 group_m[name] = float(grid[i // n_k])
-        ev = self._figures(feasible=True, reason="", k=float(np.median(list(group_k.values()))),
-                           group_k=group_k, caught=int(caught.sum()), alerts=alerts, kf=kf,
-                           team_alerts=ta, teams=tuple(teams))
-        ev.group_min_impact = group_m
-        ev.feasible = all(v <= 0 for v in ev.constraints)
-        ev.reason = _reason(ev, self.goal)
-        return ev
+        return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
+                          group_k=group_k, group_min_impact=group_m)
 
     def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
                     teams: list[str]):
@@ -826,18 +875,30 @@ def tune(
     current = ws.detector
     name = study_name or study_name_for(ses, goal, known_false)
     store, store_name = open_storage(ses, storage)
-    rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
-                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False,
-                           cache_bytes=STREAM_CACHE_BYTES)
+    ev = _evaluator(ses, ks, ms, fence_w, first_hour, split, goal, known_false,
+                    executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
-        ev = Evaluator(ses, rp, ks, first_hour, split, goal, known_false,
-                       min_impacts=ms.get(""),
-                       group_min_impacts={g: v for g, v in ms.items() if g})
         study = _run_study(ses, ev, space, starts, name, store, budget, progress)
         result = _result(ses, ev, space, study, name, store_name, current, goal)
     finally:
-        rp.close()
+        ev.replayer.close()
     return result
+
+
+def _evaluator(ses: Session, ks: np.ndarray, ms: dict[str, np.ndarray], fence_w: Sequence[int],
+               first_hour: int, split: int, goal: Goal, known_false: Incidents | None,
+               **where: Any) -> Evaluator:
+    """An `Evaluator` over a new replayer (`where`: executor, engine, workers, scheduler
+    as for `api.make_replayer`); the caller closes ``ev.replayer``."""
+    rp = api.make_replayer(ses, fence_windows=tuple(fence_w), progress=False,
+                           cache_bytes=STREAM_CACHE_BYTES, **where)
+    try:
+        return Evaluator(ses, rp, ks, first_hour, split, goal, known_false,
+                         min_impacts=ms.get(""),
+                         group_min_impacts={g: v for g, v in ms.items() if g})
+    except BaseException:
+        rp.close()
+        raise
 
 
 def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
@@ -922,14 +983,12 @@ def study_result(
     goal = goal or ses.ws.goal
     if "hours" in attrs:
         first_hour, split = (int(h) for h in attrs["hours"])
-    rp = api.make_replayer(ses, executor=executor, engine=engine, workers=workers,
-                           scheduler=scheduler, fence_windows=tuple(fence_w), progress=False)
+    ev = _evaluator(ses, ks, ms, fence_w, first_hour, split, goal, None,
+                    executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
-        ev = Evaluator(ses, rp, ks, first_hour, split, goal, None, min_impacts=ms.get(""),
-                       group_min_impacts={g: v for g, v in ms.items() if g})
         return _result(ses, ev, space, study, name, store_name, ses.ws.detector, goal)
     finally:
-        rp.close()
+        ev.replayer.close()
 
 
 def _config_from(params: dict[str, Any], space: list[Param], ses: Session,
@@ -1073,14 +1132,18 @@ FRONT_COLUMNS = ("number", "caught", "incidents", "recall", "load", "k", "min_im
 
 
 def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
-                 analysts: dict[str, int]) -> pd.DataFrame:
+                 analysts: dict[str, int],
+                 fronts: dict[int, list[list[Any]]] | None = None) -> pd.DataFrame:
     """The best trade-offs of a study: (recall, alert load) pairs no other beats on both.
 
     Each completed trial offers its own front over the multiplier (and minimum
-    impact) grid (`Evaluation.front`); trials without one (grouped settings, older
-    studies) offer their solved point. Columns `FRONT_COLUMNS`, least load first;
-    ``attrs["load_label"]`` names the load (`scoring.load_axis`).
+    impact) grid (`Evaluation.front`), or the one given for its number in `fronts`
+    (`tune` gives the chosen grouped setting's, `Evaluator.group_front`); other
+    trials without one (grouped settings, older studies) offer their solved point.
+    Columns `FRONT_COLUMNS`, least load first; ``attrs["load_label"]`` names the
+    load (`scoring.load_axis`).
     """
+    fronts = fronts or {}
     budgets = {t: goal.budget(t) for t in analysts}
     rows = []
     for t in trials:
@@ -1090,7 +1153,7 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
         n_inc = int(a.get("incidents") or 0)
         # grouped settings: no single multiplier (their `k` is the groups' median)
         k_own = None if a.get("group_k") else a.get("k")
-        pts = a.get("front") or [[a.get("caught", 0), load_axis(
+        pts = fronts.get(t.number) or a.get("front") or [[a.get("caught", 0), load_axis(
             a.get("team_rate") or {}, budgets, analysts)[0], k_own, a.get("min_impact")]]
         for caught, load, k, m in pts:
             rows.append({"number": t.number, "caught": int(caught), "incidents": n_inc,
@@ -1115,28 +1178,23 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     chosen = best if best is not None else _least_infeasible(finished)
     config = _config_from(chosen.params, space, ses, current)
     a = chosen.user_attrs
+    structure = config
     if config.groups:
-        group_k = a["group_k"]
-        config = replace(config, groups=tuple(
-            replace(g, settings=replace(g.settings, fence_multiplier=group_k.get(
-                g.name, g.settings.fence_multiplier)))
-            for g in config.groups))
-        group_m = a.get("group_min_impact") or {}
-        config = replace(config, groups=tuple(
-            replace(g, settings=replace(g.settings, min_impact=group_m[g.name]))
-            if g.name in group_m else g for g in config.groups))
-        if ses.ws.search.tune_by == "group":  # 'base': the series no group matches
-            if BASE_GROUP in group_k:
-                config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
-            if BASE_GROUP in group_m:
-                config = config.with_base(min_impact=group_m[BASE_GROUP])
+        config = with_group_solve(config, a["group_k"], a.get("group_min_impact") or {},
+                                  ses.ws.search.tune_by)
     else:
         config = config.with_base(fence_multiplier=a["k"])
     if a.get("min_impact") is not None:
         config = config.with_base(min_impact=a["min_impact"])
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
-    pareto = pareto_frame(finished, goal, ses.analysts)
+    fronts = {}
+    if config.groups and not a.get("front"):
+        # a grouped trial's front needs one joint solve per recall level: done for the
+        # chosen setting only
+        fronts[chosen.number] = [[js.caught, js.load, None, None]
+                                 for js in ev.group_front(structure)]
+    pareto = pareto_frame(finished, goal, ses.analysts, fronts)
     n = ses.history.n_hours
     episodes = ev.replayer.replay(config).episodes
     tuning = api.score_episodes(ses, episodes, ev.first_hour, ev.split_hour)
@@ -1155,6 +1213,23 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
                       split_hour=ev.split_hour, first_hour=ev.first_hour, tuning=tuning,
                       holdout=holdout, holdout_warning=warning, trials=trials, pareto=pareto,
                       study_name=name, storage=store_name, provenance=prov, goal=goal)
+
+
+def with_group_solve(config: DetectorConfig, group_k: dict[str, float],
+                     group_m: dict[str, float], tune_by: str) -> DetectorConfig:
+    """`config` with each group's solved multiplier and minimum impact filled in (with
+    ``tune_by = "group"`` the `BASE_GROUP` entries go to the base settings)."""
+    config = replace(config, groups=tuple(
+        replace(g, settings=replace(
+            g.settings, fence_multiplier=group_k.get(g.name, g.settings.fence_multiplier),
+            min_impact=group_m.get(g.name, g.settings.min_impact)))
+        for g in config.groups))
+    if tune_by == "group":  # 'base': the series no group matches
+        if BASE_GROUP in group_k:
+            config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
+        if BASE_GROUP in group_m:
+            config = config.with_base(min_impact=group_m[BASE_GROUP])
+    return config
 
 
 def infeasible_reason(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal) -> str:

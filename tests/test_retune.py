@@ -140,6 +140,19 @@ def test_says_why_when_false_alarms_stay(ses, previous, reviewed, tmp_path: Path
             frame = rep.alerts_frame().astype({c: str for c in cols})
             same = (frame[cols] == row[cols].astype(str).to_numpy()).all(axis=1)
             assert bool(same.any()) == raised
+    # reference for the multiplier lever: a full replay at a multiplier just above the
+    # alert's peak fence score no longer raises it, and its miss rate over the compared
+    # hours is the one the line quotes
+    for (_, row), why in zip(marked.set_index("alert_id").loc[
+            [r["alert_id"] for r in c.still_raised]].reset_index().iterrows(), c.why,
+            strict=True):
+        k = float(row["peak_score"]) * 1.0001 + 1e-9
+        rep = api.replay_session(ses, previous.with_base(fence_multiplier=k),
+                                 executor=SerialExecutor(), progress=False)
+        frame = rep.alerts_frame().astype({c: str for c in cols})
+        assert not (frame[cols] == row[cols].astype(str).to_numpy()).all(axis=1).any()
+        f = api.score_episodes(ses, rep.episodes, c.start_hour, c.end_hour)
+        assert f"above {float(row['peak_score']):.3g} (miss rate there {f.miss_rate:.1%})" in why
 
 
 def _warmup(ses, res) -> int:

@@ -27,7 +27,7 @@ from calibrate.executors import SerialExecutor
 from calibrate.incidents import Incidents
 from calibrate.outputs import load_config, load_provenance
 from calibrate.replay import Replayer
-from calibrate.scoring import match, period_filter
+from calibrate.scoring import load_axis, match, period_filter
 from calibrate.workspace import Goal
 from tests.synthetic import make_workspace
 
@@ -436,6 +436,33 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     assert prov["split_hour"] == res.split_hour
     assert prov["tuning"]["alerts"] == tuning.alerts
     assert prov["history_sha256"] == ses.history.source_hash
+
+
+def test_grouped_front_points_replay_to_what_they_claim(tmp_path):
+    """Reference: a full replay of each front point's per-group multipliers, scored as
+    `calibrate score` does, catches the incidents and gives the busiest team's alert
+    load it claims; the tune's trade-off list holds the chosen grouped setting's front."""
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + '\ntune_by = "level"')
+    ses = api.open_session(ws)
+    res = _tune(ses, tmp_path, trials=3)
+    assert res.config.groups
+    goal = ses.ws.goal
+    rp = api.make_replayer(ses, engine="serial", progress=False)
+    ev = search.Evaluator(ses, rp, np.geomspace(1.0, 60.0, 9), res.first_hour,
+                          res.split_hour, goal)
+    front = ev.group_front(res.config)
+    assert len(front) >= 2  # more than one recall level
+    assert all(a.caught > b.caught and a.load > b.load
+               for a, b in zip(front, front[1:], strict=False))
+    budgets = {t: goal.budget(t) for t in ses.analysts}
+    for js in front:
+        cfg = search.with_group_solve(res.config, js.group_k, js.group_min_impact, "level")
+        f = api.score_episodes(ses, rp.replay(cfg).episodes, res.first_hour, res.split_hour)
+        rates = dict(f.per_team["alerts_per_analyst_day"])
+        assert f.caught == js.caught
+        assert load_axis(rates, budgets, ses.analysts)[0] == pytest.approx(js.load)
+    own = res.pareto[res.pareto["number"] == res.provenance["chosen_trial"]]
+    assert len(own) >= 2 and own["k"].isna().all()
 
 
 def test_group_ranges_replace_the_shared_ones_for_that_group_only(tmp_path):
