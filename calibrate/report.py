@@ -976,7 +976,9 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
     t = data.tradeoff
     line = ("The dark step line is the best trade-off the search found for each recall: "
             "the least alert load of any trial at any multiplier (and minimum impact) on "
-            "its grid, so it shows what a stricter or looser recall target would cost."
+            "its grid (for settings tuned per group: the chosen setting's joint solve at "
+            "each recall level), so it shows what a stricter or looser recall target "
+            "would cost."
             if t.front_x else "The dark step line joins the best trade-offs found.")
     what = (f"Each dot is one trial of the search ({len(t.x)} trials) at its solved "
             "multiplier; blue ones meet the goal on the tuning weeks, grey ones do not. "
