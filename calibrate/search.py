@@ -361,13 +361,15 @@ class Evaluation:
 @dataclass
 class JointSolve:
     """One joint solve of grouped settings (`Evaluator._joint`): incidents caught,
-    alerts, known-false alerts, alerts per team (in the evaluator's team order) and the
-    groups' multipliers and solved minimum impacts; `load` is set by `group_front`."""
+    alerts, known-false alerts, alerts per team (in the order of `teams`, the workspace's
+    teams then any other the groups route to) and the groups' multipliers and solved
+    minimum impacts; `load` is set by `group_front`."""
 
     caught: int
     alerts: int
     kf: int
     team_alerts: np.ndarray
+    teams: tuple[str, ...]
     group_k: dict[str, float]
     group_min_impact: dict[str, float]
     load: float = math.nan
@@ -518,7 +520,8 @@ class Evaluator:
         pts = best_tradeoffs(np.array([js.caught for js in solves]),
                              np.array([js.load for js in solves]),
                              -np.arange(n, dtype=np.float64), np.zeros(n))
-        # best_tradeoffs' k slot carries -index here, so ties keep the lowest level
+        # best_tradeoffs' k slot carries -index here, so ties keep the lowest index c
+        # (the most lenient miss-rate level); either solve is valid
         return [solves[int(-k)] for _, _, k, _ in pts]
 
     def _group_parts(self, config: DetectorConfig,
@@ -560,7 +563,7 @@ class Evaluator:
             if grid is not None:
                 group_m[name] = float(grid[i // n_k])
         return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
-                          group_k=group_k, group_min_impact=group_m)
+                          teams=tuple(teams), group_k=group_k, group_min_impact=group_m)
 
     def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
                     teams: list[str]):
@@ -879,7 +882,8 @@ def tune(
                     executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
         study = _run_study(ses, ev, space, starts, name, store, budget, progress)
-        result = _result(ses, ev, space, study, name, store_name, current, goal)
+        result = _result(ses, ev, space, study, name, store_name, current, goal,
+                         store_front=True)
     finally:
         ev.replayer.close()
     return result
@@ -1172,7 +1176,8 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
 
 
 def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
-            store_name: str, current: DetectorConfig, goal: Goal) -> TuneResult:
+            store_name: str, current: DetectorConfig, goal: Goal,
+            store_front: bool = False) -> TuneResult:
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
     best = _best_feasible(finished)
     chosen = best if best is not None else _least_infeasible(finished)
@@ -1191,9 +1196,18 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     fronts = {}
     if config.groups and not a.get("front"):
         # a grouped trial's front needs one joint solve per recall level: done for the
-        # chosen setting only
-        fronts[chosen.number] = [[js.caught, js.load, None, None]
-                                 for js in ev.group_front(structure)]
+        # chosen setting only, and kept in the study, because a later `study_result`
+        # has no known-false windows to penalise with (the study records only whether
+        # there were any)
+        key = f"group_front:{chosen.number}"
+        stored = study.user_attrs.get(key)
+        if stored is not None:
+            fronts[chosen.number] = stored
+        elif ev.false_windows is not None or not study.user_attrs.get("known_false"):
+            fronts[chosen.number] = [[js.caught, js.load, None, None]
+                                     for js in ev.group_front(structure)]
+            if store_front:
+                study.set_user_attr(key, _json_safe(fronts[chosen.number]))
     pareto = pareto_frame(finished, goal, ses.analysts, fronts)
     n = ses.history.n_hours
     episodes = ev.replayer.replay(config).episodes

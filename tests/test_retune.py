@@ -113,7 +113,10 @@ def test_false_verdicts_lower_those_alerts(ses, previous, reviewed, tmp_path: Pa
 
 def test_says_why_when_false_alarms_stay(ses, previous, reviewed, tmp_path: Path) -> None:
     df = reviewed.copy()
-    df.loc[df.index[~df["_true"]][:3], "verdict"] = "false"
+    # false alarms of the highest, a middle and the lowest peak fence score: the miss
+    # rates quoted for their multipliers differ, so a misaligned line would show
+    false = df[~df["_true"]].sort_values("peak_score", ascending=False)
+    df.loc[false.index[[0, len(false) // 2, len(false) - 1]], "verdict"] = "false"
     path = _write(df, tmp_path / "reviewed.csv")
 
     def unchanged(ses, *, warm_start=(), **kw):
@@ -123,6 +126,8 @@ def test_says_why_when_false_alarms_stay(ses, previous, reviewed, tmp_path: Path
     res = retune(ses, path, previous, 2, tuner=unchanged, executor=SerialExecutor())
     c = res.comparison
     assert len(c.still_raised) == 3 and len(c.why) == 3
+    quoted = {why.split("multiplier above ")[1].split("miss rate there ")[1][:5] for why in c.why}
+    assert len(quoted) > 1  # the choice above gives the levers different miss rates
     for row, why in zip(c.still_raised, c.why, strict=True):
         assert why.startswith(f"{row['alert_id']}: dropping it needs a fence multiplier above")
         assert "or a minimum impact above" in why and "miss rate there" in why

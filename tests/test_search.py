@@ -18,6 +18,7 @@ from pathlib import Path
 
 import numpy as np
 import optuna
+import pandas as pd
 import pytest
 
 from calibrate import api, search
@@ -438,31 +439,62 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     assert prov["history_sha256"] == ses.history.source_hash
 
 
-def test_grouped_front_points_replay_to_what_they_claim(tmp_path):
-    """Reference: a full replay of each front point's per-group multipliers, scored as
-    `calibrate score` does, catches the incidents and gives the busiest team's alert
-    load it claims; the tune's trade-off list holds the chosen grouped setting's front."""
-    ws = make_workspace(tmp_path / "ws", search=SEARCH + '\ntune_by = "level"')
+@pytest.mark.parametrize("solved", [False, True])
+def test_grouped_front_points_replay_to_what_they_claim(tmp_path, solved):
+    """Reference: a full replay of each front point's per-group multipliers (and solved
+    minimum impacts), scored as `calibrate score` does, catches the incidents and gives
+    the busiest team's alert load it claims. The tune's trade-off list holds exactly
+    that front (as the tune's own evaluator computes it), minus points other trials
+    beat, and the chosen trial's solved point lies on or behind it; a report of the
+    study reads the same list back."""
+    extra = "\nmin_impact = { low = 0.0, high = 800.0 }" if solved else ""
+    ws = make_workspace(tmp_path / "ws", search=SEARCH + '\ntune_by = "level"' + extra)
     ses = api.open_session(ws)
-    res = _tune(ses, tmp_path, trials=3)
+    storage = str(tmp_path / "study.journal")
+    res = _tune(ses, tmp_path, trials=3, storage=storage)
     assert res.config.groups
     goal = ses.ws.goal
-    rp = api.make_replayer(ses, engine="serial", progress=False)
-    ev = search.Evaluator(ses, rp, np.geomspace(1.0, 60.0, 9), res.first_hour,
-                          res.split_hour, goal)
-    front = ev.group_front(res.config)
-    assert len(front) >= 2  # more than one recall level
-    assert all(a.caught > b.caught and a.load > b.load
-               for a, b in zip(front, front[1:], strict=False))
-    budgets = {t: goal.budget(t) for t in ses.analysts}
-    for js in front:
-        cfg = search.with_group_solve(res.config, js.group_k, js.group_min_impact, "level")
-        f = api.score_episodes(ses, rp.replay(cfg).episodes, res.first_hour, res.split_hour)
-        rates = dict(f.per_team["alerts_per_analyst_day"])
-        assert f.caught == js.caught
-        assert load_axis(rates, budgets, ses.analysts)[0] == pytest.approx(js.load)
-    own = res.pareto[res.pareto["number"] == res.provenance["chosen_trial"]]
+    _, _, _, _, fence_w, ks, ms = search._plan(ses, ())
+    assert bool(ms) == solved
+    ev = search._evaluator(ses, ks, ms, fence_w, res.first_hour, res.split_hour, goal, None,
+                           engine="serial")
+    try:
+        front = ev.group_front(res.config)
+        assert len(front) >= 2  # more than one recall level
+        assert all(a.caught > b.caught and a.load > b.load
+                   for a, b in zip(front, front[1:], strict=False))
+        budgets = {t: goal.budget(t) for t in ses.analysts}
+        for js in front:
+            assert bool(js.group_min_impact) == solved
+            cfg = search.with_group_solve(res.config, js.group_k, js.group_min_impact, "level")
+            eps = ev.replayer.replay(cfg).episodes
+            f = api.score_episodes(ses, eps, res.first_hour, res.split_hour)
+            rates = dict(f.per_team["alerts_per_analyst_day"])
+            assert f.caught == js.caught
+            assert load_axis(rates, budgets, ses.analysts)[0] == pytest.approx(js.load)
+    finally:
+        ev.replayer.close()
+    chosen = res.provenance["chosen_trial"]
+    own = res.pareto[res.pareto["number"] == chosen]
+    pts = {(js.caught, round(js.load, 9)) for js in front}
     assert len(own) >= 2 and own["k"].isna().all()
+    assert {(int(c), round(x, 9)) for c, x in zip(own["caught"], own["load"],
+                                                   strict=True)} <= pts
+    others = res.pareto[res.pareto["number"] != chosen]
+    for c, x in pts - {(int(c), round(x, 9)) for c, x in zip(own["caught"], own["load"],
+                                                              strict=True)}:
+        assert ((others["caught"] >= c) & (others["load"] <= x + 1e-9)).any()
+    row = res.trials.set_index("number").loc[chosen]
+    load = load_axis({t: row[f"alerts_per_analyst_day[{t}]"] for t in ses.analysts},
+                     budgets, ses.analysts)[0]
+    assert any(js.caught >= row["caught"] and js.load <= load + 1e-9 for js in front)
+    # kept in the study (a report of a study tuned with known false alarms cannot
+    # rebuild it: the study holds no windows) and read back from there
+    store, _ = search.open_storage(ses, storage)
+    study = optuna.load_study(study_name=res.study_name, storage=store)
+    assert len(study.user_attrs[f"group_front:{chosen}"]) == len(front)
+    again = search.study_result(ses, storage=storage, engine="serial")
+    pd.testing.assert_frame_equal(again.pareto, res.pareto)
 
 
 def test_group_ranges_replace_the_shared_ones_for_that_group_only(tmp_path):
