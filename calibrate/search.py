@@ -361,15 +361,14 @@ class Evaluation:
 @dataclass
 class JointSolve:
     """One joint solve of grouped settings (`Evaluator._joint`): incidents caught,
-    alerts, known-false alerts, alerts per team (in the order of `teams`, the workspace's
-    teams then any other the groups route to) and the groups' multipliers and solved
-    minimum impacts; `load` is set by `group_front`."""
+    alerts, known-false alerts, alerts per team (in the order of the team list
+    `_group_parts` returns) and the groups' multipliers and solved minimum impacts;
+    `load` is set by `group_front`."""
 
     caught: int
     alerts: int
     kf: int
     team_alerts: np.ndarray
-    teams: tuple[str, ...]
     group_k: dict[str, float]
     group_min_impact: dict[str, float]
     load: float = math.nan
@@ -563,7 +562,7 @@ class Evaluator:
             if grid is not None:
                 group_m[name] = float(grid[i // n_k])
         return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
-                          teams=tuple(teams), group_k=group_k, group_min_impact=group_m)
+                          group_k=group_k, group_min_impact=group_m)
 
     def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
                     teams: list[str]):
@@ -1194,7 +1193,7 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
     fronts = {}
-    if config.groups and not a.get("front"):
+    if config.groups:  # grouped trials store no front of their own
         # a grouped trial's front needs one joint solve per recall level: done for the
         # chosen setting only, and kept in the study, because a later `study_result`
         # has no known-false windows to penalise with (the study records only whether
