@@ -134,14 +134,23 @@ def score_episodes(
     start_hour: int | None = None,
     end_hour: int | None = None,
     related: bool = False,
+    first_scored: int | None = None,
 ) -> Figures:
-    """Figures for alert episodes against the session's incidents over a period."""
+    """Figures for alert episodes against the session's incidents over a period.
+
+    Incidents of the period that begin before `first_scored` (default: the first hour
+    the workspace's `[detector]` settings score, `first_scored_hour`) can never be
+    caught: they are listed apart and left out of recall.
+    """
     if ses.incidents is None:
         raise InputError(str(ses.ws.file), "no [incidents] path: nothing to score against")
     start = 0 if start_hour is None else start_hour
     end = ses.history.n_hours if end_hour is None else end_hour
+    if first_scored is None:
+        first_scored = first_scored_hour(ses.ws.detector, ses.ws)
     eps = period_filter(episodes, start, end)
-    inc = period_filter(ses.incidents, start, end)
+    inc = period_filter(ses.incidents, max(start, first_scored), end)
+    unscorable = period_filter(ses.incidents, start, max(start, min(first_scored, end)))
     m = match(
         eps,
         inc,
@@ -150,7 +159,7 @@ def score_episodes(
         related=ses.history if related else None,
     )
     n_days = max(end - start, 1) / 24.0
-    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal)
+    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal, unscorable=unscorable)
 
 
 def alert_volume(

@@ -132,9 +132,14 @@ def _candidates(score, flat, value, expected, sorted_ks, min_det):
 
 
 @numba.njit(cache=True)
-def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, min_impact,
+def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, ms,
                  start_lo, start_hi):
     """The kept runs of flagged hours of a multiplier grid (see `episode_runs`).
+
+    Per run and ascending minimum impact ``ms[l]``, the raised hour: the first hour
+    at which |impact so far| (the running sum of value - expected) reaches ``ms[l]``
+    (the run's first hour when ``ms[l] <= 0``), -1 when it never does or when that
+    hour lies outside ``[start_lo, start_hi)``. Runs raised at no level are dropped.
 
     A run of consecutive hours flagged at the smallest multiplier is one episode
     for the levels (multipliers in increasing order) below its smallest depth;
@@ -149,8 +154,11 @@ def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, min_impact,
         score, flat, value, expected, sorted_ks, min_det
     )
     m = len(c_s)
+    n_m = len(ms)
     ints = np.empty((8, m), dtype=np.int64)
     floats = np.empty((3, m), dtype=np.float64)
+    raised = np.empty((n_m, m), dtype=np.int64)
+    r_row = np.empty(n_m, dtype=np.int64)
     st_a = np.empty(m, dtype=np.int64)  # stack of runs to visit: candidates [a, b)
     st_b = np.empty(m, dtype=np.int64)
     st_lo = np.empty(m, dtype=np.int64)  # and the level they start at
@@ -172,7 +180,14 @@ def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, min_impact,
             esum = 0.0
             f_hi = 0
             flat_bit = 0
+            cum = 0.0  # impact so far
+            r_row[:] = -1
+            nxt = 0  # next minimum-impact level not yet reached
             for c in range(a, b):  # the same sums, in the same order, as an hour-by-hour scan
+                cum += c_value[c] - c_expected[c]
+                while nxt < n_m and (ms[nxt] <= 0 or abs(cum) >= ms[nxt]):
+                    r_row[nxt] = c_t[c]
+                    nxt += 1
                 hi = min(hi, depth[c])
                 sc = c_score[c]
                 if not np.isnan(sc) and sc > peak:
@@ -183,8 +198,14 @@ def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, min_impact,
                 f_hi = max(f_hi, f_depth[c])
                 if c_flat[c]:
                     flat_bit = FLATLINE_BIT
-            if (start_lo <= c_t[a] < start_hi
-                    and (min_impact <= 0 or abs(vsum - esum) >= min_impact)):
+            kept = False
+            for lv in range(n_m):
+                if not start_lo <= r_row[lv] < start_hi:
+                    r_row[lv] = -1
+                elif r_row[lv] >= 0:
+                    kept = True
+            if kept:
+                raised[:, q] = r_row
                 ints[0, q] = c_s[a]
                 ints[1, q] = c_t[a]
                 ints[2, q] = c_t[b - 1] + 1
@@ -209,11 +230,11 @@ def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, min_impact,
                 else:
                     c -= 1
         a0 = b0
-    return ints[:, :q], floats[:, :q]
+    return ints[:, :q], floats[:, :q], raised[:, :q]
 
 
 @numba.njit(cache=True)
-def _write_kernel(ints, floats, order, out_i, out_f, row0):
+def _write_kernel(ints, floats, raised, order, out_i, out_f, row0):
     """Write the rows of runs `ints`/`floats` from row `row0`, grid index by grid index.
 
     Level by level, the runs of the level are those still open from the level
@@ -267,6 +288,7 @@ def _write_kernel(ints, floats, order, out_i, out_f, row0):
             out_i[3, r] = ints[2, q]
             out_i[4, r] = ints[5, q]
             out_i[5, r] = (FENCE_BIT if j < ints[6, q] else 0) | ints[7, q]
+            out_i[6, r] = raised[0, q]
             out_f[0, r] = floats[0, q]
             out_f[1, r] = floats[1, q]
             out_f[2, r] = floats[2, q]
@@ -281,18 +303,25 @@ class EpisodeRuns(NamedTuple):
     ``ints`` rows: series, start, end (exclusive), first and last-plus-one level
     (index into the ascending grid ``ks[order]``), peak hour, fence levels (the
     fence bit is set below it), flatline bit; ``floats`` rows: peak fence score,
-    sum of values, sum of expected values. `n_rows` is the number of episodes.
+    sum of values, sum of expected values; ``raised`` (n_min_impacts, n_runs): the
+    raised hour at each minimum impact (-1: not raised there). `n_rows` is the
+    number of episodes at the first minimum impact.
     """
 
     ints: np.ndarray
     floats: np.ndarray
+    raised: np.ndarray
     order: np.ndarray
     n_rows: int
 
     def write(self, out_i: np.ndarray, out_f: np.ndarray, row0: int = 0) -> None:
-        """Write the episodes into columns ``out_i`` (6, n) and ``out_f`` (3, n) from
-        column `row0` on, in `episodes_grid` order."""
-        _write_kernel(self.ints, self.floats, self.order, out_i, out_f, row0)
+        """Write the episodes raised at the first minimum impact into columns ``out_i``
+        (7, n: grid index, series, start, end, peak hour, detector bits, raised hour)
+        and ``out_f`` (3, n) from column `row0` on, in `episodes_grid` order."""
+        keep = self.raised[0] >= 0
+        _write_kernel(np.ascontiguousarray(self.ints[:, keep]),
+                      np.ascontiguousarray(self.floats[:, keep]),
+                      np.ascontiguousarray(self.raised[:, keep]), self.order, out_i, out_f, row0)
 
 
 def episode_runs(
@@ -302,13 +331,14 @@ def episode_runs(
     expected: np.ndarray,
     ks: np.ndarray,
     min_detectors: int,
-    min_impact: float = 0.0,
+    min_impact: float | np.ndarray = 0.0,
     start_hours: tuple[int, int] | None = None,
 ) -> EpisodeRuns:
     """Episodes of (n_series, n_hours) arrays for every multiplier in `ks`, as runs.
 
-    Parameters as `episodes_grid`; the rows themselves are written by
-    `EpisodeRuns.write`, so that several tables can share one output.
+    Parameters as `episodes_grid`, except that `min_impact` may be a grid (any order;
+    each run then carries its raised hour at every grid value); the rows themselves
+    are written by `EpisodeRuns.write`, so that several tables can share one output.
     """
     score = np.ascontiguousarray(np.atleast_2d(score), dtype=np.float64)
     flat = np.ascontiguousarray(np.atleast_2d(flat), dtype=np.bool_)
@@ -316,12 +346,19 @@ def episode_runs(
     expected = np.ascontiguousarray(np.atleast_2d(expected), dtype=np.float64)
     ks = np.ascontiguousarray(np.atleast_1d(ks), dtype=np.float64)
     order = np.argsort(ks, kind="stable")  # NaN sorts last
+    ms = np.ascontiguousarray(np.atleast_1d(min_impact), dtype=np.float64)
+    if len(ms) == 0 or np.isnan(ms).any():
+        raise ValueError(f"min_impact must be a number or a grid of numbers, but got {ms}")
     lo, hi = (0, score.shape[1]) if start_hours is None else start_hours
-    ints, floats = _runs_kernel(
-        score, flat, value, expected, ks[order], int(min_detectors), float(min_impact),
-        int(lo), int(hi),
+    by_size = np.argsort(ms, kind="stable")  # the kernel reaches them in ascending order
+    ints, floats, raised_sorted = _runs_kernel(
+        score, flat, value, expected, ks[order], int(min_detectors), ms[by_size], int(lo),
+        int(hi),
     )
-    return EpisodeRuns(ints, floats, order, int((ints[4] - ints[3]).sum()))
+    raised = np.empty_like(raised_sorted)
+    raised[by_size] = raised_sorted
+    keep = raised[0] >= 0
+    return EpisodeRuns(ints, floats, raised, order, int((ints[4] - ints[3])[keep].sum()))
 
 
 def episodes_grid(
@@ -344,23 +381,24 @@ def episodes_grid(
         Multiplier grid (any order).
     min_detectors : int
     min_impact : float
-        When > 0, drop episodes whose |sum of values - sum of expected| is below it
-        (or NaN); 0 keeps every episode.
+        An episode is raised at the first hour where |impact so far| (the running sum
+        of value - expected over its hours) reaches it; episodes never raised are
+        dropped. 0 raises every episode at its first hour.
     start_hours : (int, int), optional
-        Keep only episodes starting in ``[start, end)`` (episodes are still found
+        Keep only episodes raised in ``[start, end)`` (episodes are still found
         over all hours).
 
     Returns
     -------
-    ints : ndarray (m, 6) of int64
-        grid index, series, start, end (exclusive), peak hour, detector bits;
-        rows ordered by grid index, series, start.
+    ints : ndarray (m, 7) of int64
+        grid index, series, start, end (exclusive), peak hour, detector bits, raised
+        hour; rows ordered by grid index, series, start.
     floats : ndarray (m, 3) of float64
         peak fence score (NaN if none), sum of values, sum of expected values.
     Both are column-major (each column is contiguous).
     """
     runs = episode_runs(score, flat, value, expected, ks, min_detectors, min_impact, start_hours)
-    out_i = np.empty((6, runs.n_rows), dtype=np.int64)
+    out_i = np.empty((7, runs.n_rows), dtype=np.int64)
     out_f = np.empty((3, runs.n_rows), dtype=np.float64)
     runs.write(out_i, out_f)
     return out_i.T, out_f.T

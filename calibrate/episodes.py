@@ -43,6 +43,9 @@ class Episodes:
     grid : ndarray of int64
         Index into a multiplier grid when episodes for several fence multipliers are
         held in one table (0 otherwise).
+    raised : ndarray of int64
+        Hour index at which the alert was raised: the first hour where |impact so
+        far| reached the metric's minimum impact (`start` when it is 0).
     """
 
     level: np.ndarray
@@ -57,6 +60,7 @@ class Episodes:
     detectors: np.ndarray
     team: np.ndarray
     grid: np.ndarray
+    raised: np.ndarray
 
     def __len__(self) -> int:
         return len(self.start)
@@ -70,7 +74,8 @@ class Episodes:
         obj = np.array([], dtype=object)
         i64 = np.array([], dtype=np.int64)
         f64 = np.array([], dtype=np.float64)
-        return cls(obj, i64, obj.copy(), i64, i64, i64, f64, f64, f64, obj.copy(), obj.copy(), i64)
+        return cls(obj, i64, obj.copy(), i64, i64, i64, f64, f64, f64, obj.copy(), obj.copy(),
+                   i64, i64)
 
     def take(self, index: np.ndarray) -> Episodes:
         """Rows at `index` (integer positions or boolean mask)."""
@@ -107,12 +112,13 @@ class CodedEpisodes:
     bits: np.ndarray
     team_code: np.ndarray
     grid: np.ndarray
+    raised: np.ndarray
     pairs: tuple[tuple[str, str], ...]
     teams: tuple[str, ...]
 
     _COLUMNS = (
         "pair", "series", "start", "end", "peak_hour", "peak_score", "value", "expected",
-        "bits", "team_code", "grid",
+        "bits", "team_code", "grid", "raised",
     )
 
     def __len__(self) -> int:
@@ -171,6 +177,7 @@ class CodedEpisodes:
             detectors=self.detectors,
             team=self.team,
             grid=self.grid,
+            raised=self.raised,
         )
 
 

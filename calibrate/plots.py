@@ -104,12 +104,13 @@ def multiplier_png(data: CurveData) -> bytes:
 
 def impact_png(data: CurveData, group: str | None = None) -> bytes:
     """Recall (top) and alerts per analyst per day per team (bottom) against the minimum
-    impact (`data.ks`), on a scale linear near 0 and logarithmic above."""
-    chosen = "" if data.chosen_k is None else f" (chosen {data.chosen_k:g}, red line)"
+    impacts (`data.ks`: the share of each metric's range), on a scale linear near 0 and
+    logarithmic above."""
+    chosen = "" if data.chosen_k is None else f" (chosen {data.chosen_k:.3g}, red line)"
     positive = [m for m in data.ks if m > 0]
-    of = "the minimum impact" if group is None else f"group {group}'s minimum impact"
+    of = "the minimum impacts" if group is None else f"group {group}'s minimum impacts"
     return _curve_png(data, f"Moving {of} at the chosen k{chosen}",
-                      "minimum impact (|value - expected| summed over an episode)",
+                      "minimum impact, as a share of each metric's range (in its own units)",
                       symlog=min(positive) if positive else None)
 
 

@@ -330,7 +330,7 @@ def sweep_codes(
     runs, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours)
     # every (level, metric) writes its rows straight into one table
     n = sum(r.n_rows for r in runs)
-    ints = np.empty((6, n), dtype=np.int64)
+    ints = np.empty((7, n), dtype=np.int64)
     floats = np.empty((3, n), dtype=np.float64)
     pair = np.empty(n, dtype=np.int64)
     team = np.zeros(n, dtype=np.int64)
@@ -345,14 +345,15 @@ def sweep_codes(
     return CodedEpisodes(
         pair=pair, series=ints[1], start=ints[2], end=ints[3], peak_hour=ints[4],
         peak_score=floats[0], value=floats[1], expected=floats[2], bits=ints[5],
-        team_code=team, grid=ints[0], pairs=tuple(scores), teams=teams,
+        team_code=team, grid=ints[0], raised=ints[6], pairs=tuple(scores), teams=teams,
     )
 
 
-def _pair_runs(scores, ks, routes, apply_min_impact, start_hours):
+def _pair_runs(scores, ks, routes, apply_min_impact, start_hours, min_impacts=None):
     """`episode_runs` of every (level, metric) (at its own multiplier when `ks` is None),
     the team names rows are coded by ("" first: unrouted) and each routed level's
-    team code per series."""
+    team code per series. `min_impacts` (metric -> ascending grid) replaces each
+    series' own minimum impact by a grid."""
     routes = routes or {}
     names = [t for lv in routes for t in np.asarray(routes[lv]).tolist()]
     teams = tuple(dict.fromkeys(["", *names]))
@@ -362,9 +363,12 @@ def _pair_runs(scores, ks, routes, apply_min_impact, start_hours):
         for lv, r in routes.items()
     }
     runs = []
-    for (_lv, _m), ms in scores.items():
+    for (_lv, m), ms in scores.items():
         grid = np.array([ms.settings.fence_multiplier]) if ks is None else np.asarray(ks, float)
-        min_impact = ms.settings.min_impact if apply_min_impact else 0.0
+        if min_impacts is not None:
+            min_impact = min_impacts[m]
+        else:
+            min_impact = ms.settings.min_impact if apply_min_impact else 0.0
         runs.append(episode_runs(ms.score, ms.flat, ms.value, ms.expected, grid,
                                  ms.settings.min_detectors, min_impact, start_hours))
     return runs, teams, team_of
@@ -377,13 +381,15 @@ class RunTable:
 
     `runs` holds one row per run (its `grid` column is 0 and unused, and `bits` holds
     only the flatline bit: the fence bit depends on the level); expanding each run over
-    its levels gives the rows of `sweep_codes`.
+    its levels gives the rows of `sweep_codes`. `raised` (n_min_impacts, n_runs) is each
+    run's raised hour at every minimum impact of the sweep (-1: not raised).
     """
 
     runs: CodedEpisodes
     lo: np.ndarray
     hi: np.ndarray
     order: np.ndarray
+    raised: np.ndarray
 
 
 def sweep_runs(
@@ -392,11 +398,15 @@ def sweep_runs(
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,
     start_hours: tuple[int, int] | None = None,
+    min_impacts: dict[str, np.ndarray] | None = None,
 ) -> RunTable:
     """`sweep_codes` without expanding runs into one row per multiplier: what counts
-    need (each run is counted once per level range, not once per multiplier)."""
+    need (each run is counted once per level range, not once per multiplier). With
+    `min_impacts` (metric -> ascending grid, one length for all), each run carries its
+    raised hour at every minimum impact of its metric's grid."""
     ks = np.asarray(ks, dtype=np.float64)
-    runs_of, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours)
+    runs_of, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours,
+                                         min_impacts)
     order = np.argsort(ks, kind="stable")  # as episode_runs sorts the grid
     parts = [(p, r, team_of[lv][r.ints[0]] if lv in team_of
               else np.zeros(r.ints.shape[1], dtype=np.int64))
@@ -408,15 +418,18 @@ def sweep_runs(
 
     ints = joined([r.ints for _, r, _ in parts], 8, np.int64)
     floats = joined([r.floats for _, r, _ in parts], 3, np.float64)
+    n_m = len(next(iter(min_impacts.values()))) if min_impacts else 1
+    raised = joined([r.raised for _, r, _ in parts], n_m, np.int64)
     pair = joined([np.full(r.ints.shape[1], p, dtype=np.int64) for p, r, _ in parts], 0,
                   np.int64)
     runs = CodedEpisodes(
         pair=pair, series=ints[0], start=ints[1], end=ints[2], peak_hour=ints[5],
         peak_score=floats[0], value=floats[1], expected=floats[2], bits=ints[7],
         team_code=joined([t for _, _, t in parts], 0, np.int64),
-        grid=np.zeros(len(pair), dtype=np.int64), pairs=tuple(scores), teams=teams,
+        grid=np.zeros(len(pair), dtype=np.int64), raised=raised[0], pairs=tuple(scores),
+        teams=teams,
     )
-    return RunTable(runs=runs, lo=ints[3], hi=ints[4], order=order)
+    return RunTable(runs=runs, lo=ints[3], hi=ints[4], order=order, raised=raised)
 
 
 def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
@@ -439,6 +452,7 @@ def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
         metric=episodes.metric,
         start=_iso(hours[episodes.start]),
         end=_iso(end_hours[episodes.end]),
+        raised_hour=_iso(hours[episodes.raised]),
         peak_hour=_iso(hours[episodes.peak_hour]),
         peak_score=episodes.peak_score,
         value=episodes.value,

@@ -127,6 +127,8 @@ class CurveData:
     target_recall: float
     chosen_k: float | None
     per_group: bool = False  # groups have their own multipliers: the curve moves one k for all
+    # minimum-impact curves: per x, each metric's minimum impact (its own units)
+    impacts: list[dict[str, float]] = field(default_factory=list)
 
 
 @dataclass
@@ -477,18 +479,15 @@ def impact_data(
 ) -> CurveData | None:
     """Recall and alerts per analyst per day over minimum impacts at the chosen k.
 
-    The grid is the search's when it solves the minimum impact, else round values from
-    0 to ten times the chosen one (at least the smallest metric's typical hourly
-    level). None when groups have their own multiplier or minimum impact.
+    Every metric's minimum impact moves over the same share of its range (the search's
+    grid). None when groups have their own multiplier or minimum impacts.
     """
-    from calibrate import search
-
     base = chosen.config.base
-    if any((g.settings.fence_multiplier, g.settings.min_impact)
-           != (base.fence_multiplier, base.min_impact) for g in chosen.config.groups):
+    key = (base.fence_multiplier, base.min_impact, base.min_impact_per_metric)
+    if any((g.settings.fence_multiplier, g.settings.min_impact,
+            g.settings.min_impact_per_metric) != key for g in chosen.config.groups):
         return None
-    return _impact_curve(ses, chosen, chosen.scores, {}, base, search.solved_min_impact(ses),
-                         start, end, teams, budgets)
+    return _impact_curve(ses, chosen, chosen.scores, {}, base, None, start, end, teams, budgets)
 
 
 def group_impact_data(
@@ -502,7 +501,6 @@ def group_impact_data(
     """For a config with groups: per group, recall and alerts per analyst per day (of
     every group together) as that group's minimum impact moves at its chosen k, every
     other group at its chosen settings. Grids as in `impact_data`, per group."""
-    from calibrate import search
     from calibrate.workspace import BASE_GROUP
 
     config = chosen.config
@@ -515,21 +513,20 @@ def group_impact_data(
             continue
         name = BASE_GROUP if i is None else config.groups[i].name
         rest = {key: ms for key, ms in chosen.scores.items() if owner[key] != i}
-        solved = search.solved_min_impact(ses, name if ses.ws.search.tune_by != "all" else None)
+        group = name if ses.ws.search.tune_by != "all" else None
         out.append((name, _impact_curve(
             ses, chosen, mine, rest, config.base if i is None else config.groups[i].settings,
-            solved, start, end, teams, budgets)))
+            group, start, end, teams, budgets)))
     return out
 
 
-def _impact_curve(ses, chosen, mine, rest, s, solved, start, end, teams, budgets) -> CurveData:
-    """Recall and load of all series as the minimum impact of those in `mine` (settings
-    `s`) moves over its grid (`solved`, or 0 to ten times `s.min_impact`, at least their
-    metrics' typical hourly level), those in `rest` at their own settings."""
+def _impact_curve(ses, chosen, mine, rest, s, group, start, end, teams, budgets) -> CurveData:
+    """Recall and load of all series as the minimum impacts of those in `mine` (settings
+    `s`, search group `group`) move together over their per-metric grids (x: the share of
+    each metric's range, `search.impact_grids`), those in `rest` at their own settings."""
     from calibrate import search
     from calibrate.replay import sweep, sweep_runs
-    from calibrate.scoring import impact_curves_of_runs, wilson
-    from calibrate.workspace import SearchParam
+    from calibrate.scoring import impact_curves, wilson
 
     inc = period_filter(ses.incidents, start, end)
     early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
@@ -540,27 +537,37 @@ def _impact_curve(ses, chosen, mine, rest, s, solved, start, end, teams, budgets
                 else np.zeros(len(inc), dtype=bool))
     team_o = {} if others is None else pd.Series(others.team).value_counts().to_dict()
     n_o = 0 if others is None else len(others)
-    spec = solved or SearchParam(name="min_impact", kind="float", low=0.0, high=max(
-        10.0 * s.min_impact, search.typical_level(ses, sorted({m for _, m in mine}))))
-    ms = search.impact_grid(spec, [s.min_impact])
+    metrics = sorted({m for _, m in mine})
+    ranges = {m: r for m, r in search.impact_ranges(ses, group, end).items() if m in metrics}
+    ranges.update({m: (0.0, search.typical_level(ses, m, end)) for m in metrics
+                   if m not in ranges})
+    own = {m: s.impact_for(m) for m in metrics}
+    grids = search.impact_grids(ranges, [own])
+    first = metrics[0]
+    lo, hi = ranges[first]
+    share = (grids[first] - lo) / (hi - lo) if hi > lo else np.zeros(len(grids[first]))
+    chosen_share = float((own[first] - lo) / (hi - lo)) if hi > lo else 0.0
     k = np.array([s.fence_multiplier])
-    runs = sweep_runs(mine, k, chosen.routes, apply_min_impact=False, start_hours=(start, end))
-    curves, best = impact_curves_of_runs(runs, k, ms, inc, early, late, ses.analysts, days,
-                                         with_best=True)
-    caught = np.array([int((caught_o | (best[0] >= lv)).sum()) for lv in range(len(ms))])
-    n = np.full(len(ms), len(inc))
+    runs = sweep_runs(mine, k, chosen.routes, start_hours=(start, end), min_impacts=grids)
+    curves, caught_lk = impact_curves(runs, k, inc, early, late, ses.analysts, days)
+    caught = np.array([int((caught_o | caught_lk[lv, 0]).sum()) for lv in range(len(curves))])
+    n = np.full(len(curves), len(inc))
     low, high = wilson(n - caught, n)
-    miss = (n - caught) / np.where(n > 0, n, 1) if len(inc) else np.full(len(ms), np.nan)
+    miss = (n - caught) / np.where(n > 0, n, 1) if len(inc) else np.full(len(curves), np.nan)
     rates = []
     for t in shown:
         mine_t = np.array([c.team_alerts[0, c.teams.index(t)] if t in c.teams else 0
                            for c in curves])
-        rates.append(_floats((mine_t + team_o.get(t, 0)) / (ses.analysts[t] * days)))
+        rates.append((mine_t + team_o.get(t, 0)) / (ses.analysts[t] * days))
+    order = np.argsort(share, kind="stable")
     return CurveData(
-        ks=ms.tolist(), recall=_floats(1.0 - miss), recall_low=_floats(1.0 - high),
-        recall_high=_floats(1.0 - low), alerts=[int(c.alerts[0]) + n_o for c in curves],
-        teams=shown, team_rate=rates, budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
-        target_recall=1.0 - ses.ws.goal.max_miss_rate, chosen_k=s.min_impact)
+        ks=share[order].tolist(), recall=_floats((1.0 - miss)[order]),
+        recall_low=_floats((1.0 - high)[order]), recall_high=_floats((1.0 - low)[order]),
+        alerts=[int(curves[i].alerts[0]) + n_o for i in order],
+        teams=shown, team_rate=[_floats(r[order]) for r in rates],
+        budgets=[_finite(budgets.get(t, math.inf)) for t in shown],
+        target_recall=1.0 - ses.ws.goal.max_miss_rate, chosen_k=chosen_share,
+        impacts=[{m: float(g[i]) for m, g in grids.items()} for i in order])
 
 
 def volume_data(
@@ -999,10 +1006,12 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
     if data.impact is not None:
         parts.append(img("impact.png", "recall and alert load against minimum impact",
                          "The same weeks at the chosen multiplier. An alert episode whose "
-                         "|impact| (value minus expected, summed over its hours) is below "
-                         "the minimum impact is dropped: a larger one means fewer alerts, "
-                         "and eventually missed incidents with a small impact. The red line "
-                         "is the chosen minimum impact."))
+                         "An alert is raised once its episode's |impact so far| (value "
+                         "minus expected, summed over its hours) reaches its metric's "
+                         "minimum impact. Each metric's minimum impact moves over the same "
+                         "share of its own range (x axis): a larger one means fewer and "
+                         "later alerts, and eventually missed incidents with a small impact. "
+                         "The red line is the chosen setting."))
     for i, (name, _c) in enumerate(data.impact_groups):
         parts.append(img(_impact_file(i, name), f"recall and alert load against the minimum "
                          f"impact of group {name}",

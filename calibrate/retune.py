@@ -278,6 +278,14 @@ def compare(
     )
 
 
+def _peak_impact(new: ReplayResult, ep: Episodes, i: int) -> float:
+    """Largest |impact so far| over episode i's hours (from the replay's scores)."""
+    ms = new.scores[(ep.level[i], ep.metric[i])]
+    hours = slice(int(ep.start[i]), int(ep.end[i]))
+    diff = ms.value[ep.series[i], hours] - ms.expected[ep.series[i], hours]
+    return float(np.max(np.abs(np.cumsum(diff)))) if len(diff) else float("nan")
+
+
 def explain_still_raised(
     ses: api.Session, new: ReplayResult, still: Incidents, start: int, end: int
 ) -> list[str]:
@@ -295,7 +303,6 @@ def explain_still_raised(
     days = max(end - start, 1) / 24.0
     goal = _pct(ses.ws.goal.max_miss_rate)
     hours = (start, end)
-    own = sweep_codes(new.scores, None, new.routes, start_hours=hours)
     alerts = [m.alerts_of(j) for j in range(len(still))]
     peaks = np.array([np.nanmax(ep.peak_score[i]) if len(i) and np.isfinite(
         ep.peak_score[i]).any() else np.nan for i in alerts])
@@ -315,12 +322,16 @@ def explain_still_raised(
         if j in k_miss:
             levers.append(f"a fence multiplier above {peak:.3g} (miss rate there "
                           f"{_pct(float(k_miss[j]))})")
-        size = float(np.nanmax(np.abs(ep.impact[idx]))) if len(idx) else float("nan")
+        # an alert is raised once |impact so far| reaches the minimum impact: it is
+        # dropped by one above the largest |impact so far| of its episode
+        sizes = [_peak_impact(new, ep, i) for i in idx]
+        size = float(np.nanmax(sizes)) if len(sizes) else float("nan")
         if np.isfinite(size):
-            # the next representable minimum impact above it drops the alert
             m_next = float(np.nextafter(size, np.inf))
-            kept = own.take(np.abs(own.impact) >= m_next)
-            c = multiplier_curve(kept, np.array([0.0]), inc, early, late, ses.analysts, days)
+            at_m = {key: replace(ms, settings=replace(ms.settings, min_impact=m_next))
+                    for key, ms in new.scores.items()}
+            c = multiplier_curve(sweep_codes(at_m, None, new.routes, start_hours=hours),
+                                 np.array([0.0]), inc, early, late, ses.analysts, days)
             levers.append(f"a minimum impact above {size:.3g} (miss rate there "
                           f"{_pct(float(c.miss_rate[0]))})")
         if not levers:

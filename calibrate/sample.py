@@ -180,24 +180,24 @@ flatline_hours = 6
 min_impact = 0.0
 combine = "any"
 
-# Settings the tuner searches; the fence multiplier and the minimum impact are solved
-# exactly within their ranges.
+# Settings the tuner searches; the fence multiplier is solved within its range, and the
+# minimum impact per watched metric, in that metric's own units: by default from 0 to the
+# metric's typical hourly level on the tuning weeks.
 # The last quarter of the history is held out to check the tuned settings.
 [search]
 decomposition_window_hours = [336, 504]
 seasonal_span = [7, 11, 15]
 fence_window_hours = [72, 120, 168, 240]
 flatline_hours = [0, 6, 10]
-min_impact = {{ low = 0.0, high = 500.0 }}
 sides = ["both"]
 fence_multiplier = {{ low = 1.0, high = 12.0 }}
 trials = 40
 holdout_fraction = 0.25
-# To tune each metric on its own, add tune_by = "metric" above and give min_impact a
-# range per metric, in the metric's units (the README's "How tuning works" says what that
-# gained and cost on this data):
+# A metric's own minimum-impact range, in its units, replaces the default, e.g.:
 #   [search.groups.ctr]
 #   min_impact = {{ low = 0.0, high = 0.02 }}
+# To tune every setting per metric, add tune_by = "metric" above (the README's "How
+# tuning works" says what that gained and cost on this data).
 """
 
 

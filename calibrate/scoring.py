@@ -5,11 +5,13 @@ Pipeline stage 6 (second half). Pure functions on the column tables `Episodes` a
 
 Event rule (one rule for catches and for true alerts): an episode and an incident
 meet when they share level and series, the incident's metric is blank or equals the
-episode's, and the episode's hours ``[start, end)`` overlap the incident's window
+episode's, and the episode's raised hour lies in the incident's window
 ``[start - early_hours, end + late_hours)``. An incident is caught when some episode
-meets it; an episode is a true alert when it meets some incident. Alerts on an
-ancestor or descendant series are credited only when asked (``related=history``) and
-then reported separately, never in the main figures.
+meets it; an episode is a true alert when it meets some incident. An episode raised
+before the window and still running at the incident's start does not catch it: the
+incident is counted apart as "already alerting" (a long episode cannot inflate
+recall). Alerts on an ancestor or descendant series are credited only when asked
+(``related=history``) and then reported separately, never in the main figures.
 
 Teams come from the ``team`` column of both tables; `route_teams` fills it from a
 routing array per level (the seam to ``calibrate.owners``).
@@ -69,12 +71,14 @@ def route_teams(table: Table, routes: Mapping[str, np.ndarray]) -> Table:
 
 
 def period_filter(table: Table, start_hour: int | None, end_hour: int | None) -> Table:
-    """Rows of `table` that start in ``[start_hour, end_hour)`` (None = unbounded)."""
+    """Rows of `table` in ``[start_hour, end_hour)`` (None = unbounded): incidents by
+    their start, alerts by the hour they were raised."""
+    at = table.raised if isinstance(table, Episodes) else table.start
     keep = np.ones(len(table), dtype=bool)
     if start_hour is not None:
-        keep &= table.start >= start_hour
+        keep &= at >= start_hour
     if end_hour is not None:
-        keep &= table.start < end_hour
+        keep &= at < end_hour
     return table.take(keep)
 
 
@@ -90,10 +94,13 @@ class Match:
     early_hours, late_hours : int
     caught : ndarray of bool, per incident
     first_alert : ndarray of int64, per incident
-        Episode index of the earliest-starting episode meeting the incident (-1 if missed).
+        Episode index of the earliest-raised episode meeting the incident (-1 if missed).
     delay : ndarray of float64, per incident
-        Hours from incident start to that episode's start (NaN if missed; negative
-        when caught inside the early tolerance).
+        Hours from incident start to that episode's raised hour (NaN if missed;
+        negative when caught inside the early tolerance).
+    already_alerting : ndarray of bool, per incident
+        Not caught, but an episode raised before the incident's window was still
+        running at the incident's start (reported apart, never a catch).
     alert_true : ndarray of bool, per episode
     alert_incident : ndarray of int64, per episode
         First incident (lowest index) the episode meets, -1 for a false alert.
@@ -112,6 +119,7 @@ class Match:
     caught: np.ndarray
     first_alert: np.ndarray
     delay: np.ndarray
+    already_alerting: np.ndarray
     alert_true: np.ndarray
     alert_incident: np.ndarray
     pair_alert: np.ndarray
@@ -156,10 +164,16 @@ def match(
     if early_hours < 0 or late_hours < 0:
         raise ValueError(f"tolerances must be >= 0, but got {early_hours=}, {late_hours=}")
     n_inc, n_ep = len(incidents), len(episodes)
-    pa, pi = _overlap_pairs(episodes, incidents, early_hours, late_hours)
-    caught, first = _first_per_incident(pa, pi, episodes.start, n_inc)
+    oa, oi = _overlap_pairs(episodes, incidents, early_hours, late_hours)
+    pa, pi = _raised_inside(oa, oi, episodes, incidents, early_hours, late_hours)
+    caught, first = _first_per_incident(pa, pi, episodes.raised, n_inc)
     delay = np.full(n_inc, np.nan)
-    delay[caught] = episodes.start[first[caught]] - incidents.start[caught]
+    delay[caught] = episodes.raised[first[caught]] - incidents.start[caught]
+    running = ((episodes.raised[oa] < incidents.start[oi] - early_hours)
+               & (episodes.end[oa] > incidents.start[oi]))
+    already = np.zeros(n_inc, dtype=bool)
+    already[oi[running]] = True
+    already &= ~caught
     alert_true = np.zeros(n_ep, dtype=bool)
     alert_true[pa] = True
     alert_incident = np.full(n_ep, -1, dtype=np.int64)
@@ -171,7 +185,8 @@ def match(
     alert_related = np.zeros(n_ep, dtype=bool)
     if related is not None:
         ra, ri = _related_pairs(episodes, incidents, early_hours, late_hours, related)
-        rc, rfirst = _first_per_incident(ra, ri, episodes.start, n_inc)
+        ra, ri = _raised_inside(ra, ri, episodes, incidents, early_hours, late_hours)
+        rc, rfirst = _first_per_incident(ra, ri, episodes.raised, n_inc)
         caught_related = rc & ~caught
         related_first = np.where(caught_related, rfirst, -1)
         alert_related[ra] = True
@@ -182,6 +197,7 @@ def match(
         caught=caught,
         first_alert=first,
         delay=delay,
+        already_alerting=already,
         alert_true=alert_true,
         alert_incident=alert_incident,
         pair_alert=pa,
@@ -192,10 +208,29 @@ def match(
     )
 
 
+def _raised_inside(pa: np.ndarray, pi: np.ndarray, episodes: Episodes | CodedEpisodes,
+                   incidents: Incidents, early: int, late: int) -> tuple[np.ndarray, np.ndarray]:
+    """The pairs whose episode was raised inside the incident's window (the catch rule)."""
+    r = np.asarray(episodes.raised, dtype=np.int64)[pa]
+    inside = (r >= incidents.start[pi] - early) & (r < incidents.end[pi] + late)
+    return pa[inside], pi[inside]
+
+
+def catch_pairs(
+    episodes: Episodes | CodedEpisodes, incidents: Incidents, early: int, late: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """All (episode, incident) pairs that meet (the module's event rule), sorted by
+    incident then episode."""
+    pa, pi = _overlap_pairs(episodes, incidents, early, late)
+    return _raised_inside(pa, pi, episodes, incidents, early, late)
+
+
 def _overlap_pairs(
     episodes: Episodes | CodedEpisodes, incidents: Incidents, early: int, late: int
 ) -> tuple[np.ndarray, np.ndarray]:
-    """All (episode, incident) pairs that meet, sorted by incident then episode."""
+    """All (episode, incident) pairs on the same series and metric whose hours overlap
+    the incident's window (a superset of the meeting pairs), sorted by incident then
+    episode."""
     n_ep, n_inc = len(episodes), len(incidents)
     if n_ep == 0 or n_inc == 0:
         return np.array([], dtype=np.int64), np.array([], dtype=np.int64)
@@ -318,7 +353,8 @@ def _related_pairs(
 def _first_per_incident(
     pa: np.ndarray, pi: np.ndarray, ep_start: np.ndarray, n_inc: int
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Per incident: caught flag and the earliest-starting meeting episode (ties: lowest)."""
+    """Per incident: caught flag and the earliest meeting episode by `ep_start` (the
+    raised hours; ties: lowest)."""
     caught = np.zeros(n_inc, dtype=bool)
     first = np.full(n_inc, -1, dtype=np.int64)
     if len(pa):
@@ -414,9 +450,16 @@ class Figures:
     related_alerts: int
     n_days: float
     confidence: float
+    # incidents not caught because an alert raised before them was still running
+    already_alerting: int = 0
+    # incidents of the period that begin before the first scored hour: never catchable,
+    # listed apart and left out of every figure above
+    before_first_scored: int = 0
+    before_first_scored_ids: list[str] = field(default_factory=list)
     per_team: pd.DataFrame = field(default_factory=pd.DataFrame)
     per_level: pd.DataFrame = field(default_factory=pd.DataFrame)
     per_metric: pd.DataFrame = field(default_factory=pd.DataFrame)
+    per_detector: pd.DataFrame = field(default_factory=pd.DataFrame)
     per_incident: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     def to_json_dict(self) -> dict[str, Any]:
@@ -427,7 +470,7 @@ class Figures:
             if isinstance(value, pd.DataFrame):
                 continue
             out[name] = _json_value(value)
-        for name in ("per_team", "per_level", "per_metric"):
+        for name in ("per_team", "per_level", "per_metric", "per_detector"):
             frame: pd.DataFrame = getattr(self, name)
             out[name] = {
                 str(idx): {k: _json_value(v) for k, v in row.items()}
@@ -460,6 +503,7 @@ def figures(
     n_days: float,
     confidence: float = 0.95,
     goal: Goal | None = None,
+    unscorable: Incidents | None = None,
 ) -> Figures:
     """Miss rate, recall, precision (Wilson intervals), delay and load per team.
 
@@ -475,6 +519,9 @@ def figures(
     confidence : float
     goal : Goal, optional
         Adds each team's alert budget to ``per_team``.
+    unscorable : Incidents, optional
+        Incidents of the period that begin before the first scored hour (left out of
+        `incidents`); counted and listed apart.
     """
     _check_lengths(match, episodes, incidents)
     if not n_days > 0:
@@ -487,10 +534,15 @@ def figures(
         related_alerts=int(match.alert_related.sum()),
         n_days=float(n_days),
         confidence=confidence,
+        already_alerting=int(match.already_alerting.sum()),
+        before_first_scored=0 if unscorable is None else len(unscorable),
+        before_first_scored_ids=[] if unscorable is None else [
+            str(x) for x in unscorable.to_frame()["incident_id"].tolist()],
         per_team=breakdown(*args, by="team", teams_analysts=teams_analysts, n_days=n_days,
                            confidence=confidence, goal=goal),
         per_level=breakdown(*args, by="level", confidence=confidence),
         per_metric=breakdown(*args, by="metric", confidence=confidence),
+        per_detector=detector_table(match, episodes),
         per_incident=incident_table(match, episodes, incidents),
     )
 
@@ -558,6 +610,17 @@ def breakdown(
     return frame
 
 
+def detector_table(match: Match, episodes: Episodes) -> pd.DataFrame:
+    """Alerts, true alerts and precision per combination of detectors that fired
+    (e.g. "fence", "flatline", "fence+flatline")."""
+    det = pd.Series(np.asarray(episodes.detectors, dtype=object), dtype=object)
+    frame = pd.DataFrame({"detectors": det, "true": match.alert_true})
+    out = frame.groupby("detectors", sort=True)["true"].agg(["size", "sum"])
+    out.columns = ["alerts", "true_alerts"]
+    out["precision"] = _ratio(out["true_alerts"].to_numpy(), out["alerts"].to_numpy())
+    return out.astype({"alerts": np.int64, "true_alerts": np.int64})
+
+
 def incident_table(match: Match, episodes: Episodes, incidents: Incidents) -> pd.DataFrame:
     """One row per incident: what it is, whether and by which alert it was caught."""
     df = incidents.to_frame().rename(columns={"label": "series_label"})
@@ -566,10 +629,12 @@ def incident_table(match: Match, episodes: Episodes, incidents: Incidents) -> pd
     df["first_alert"] = pd.array(np.where(match.caught, match.first_alert, 0), dtype="Int64")
     df.loc[~match.caught, "first_alert"] = pd.NA
     df["delay_hours"] = match.delay
+    df["already_alerting"] = match.already_alerting
     df["caught_related"] = match.caught_related
     cols = ["incident_id", "level", "series", "series_label", "metric", "team"]
     cols += [c for c in ("start", "end") if c in df.columns]
-    cols += ["start_hour", "end_hour", "caught", "first_alert", "delay_hours", "caught_related"]
+    cols += ["start_hour", "end_hour", "caught", "first_alert", "delay_hours",
+             "already_alerting", "caught_related"]
     return df[cols].reset_index(drop=True)
 
 
@@ -713,7 +778,7 @@ def multiplier_curve(
     grid = _grid_of(ep, n_k)
     if not n_days > 0:
         raise ValueError(f"n_days must be positive, but got {n_days=}")
-    pa, pi = _overlap_pairs(ep, incidents, early, late)
+    pa, pi = catch_pairs(ep, incidents, early, late)
     caught_mat = np.zeros((n_k, n_inc), dtype=bool)
     caught_mat[grid[pa], pi] = True
     caught = caught_mat.sum(axis=1).astype(np.int64)
@@ -780,150 +845,100 @@ def _curve(ks, n_inc, caught, alerts, true_alerts, teams, teams_analysts, team_a
     )
 
 
-def impact_curves(
-    episodes_by_grid: Episodes | CodedEpisodes,
-    ks: np.ndarray,
-    min_impacts: np.ndarray,
-    incidents: Incidents,
-    early: int,
-    late: int,
-    teams_analysts: Mapping[str, int],
-    n_days: float,
-    confidence: float = 0.95,
-) -> list[Curve]:
-    """`multiplier_curve` for every minimum impact of a grid at once.
+def impact_curves(runs: Any, ks: np.ndarray, incidents: Incidents, early: int, late: int,
+                  teams_analysts: Mapping[str, int], n_days: float,
+                  confidence: float = 0.95) -> tuple[list[Curve], np.ndarray]:
+    """`multiplier_curve` for every minimum impact of a run table's grid at once.
 
     Parameters
     ----------
-    episodes_by_grid : Episodes or CodedEpisodes
-        Episodes of all multipliers (``grid`` = index into `ks`), none dropped for
-        impact beyond what ``min_impacts[0]`` would drop.
-    min_impacts : array of float
-        Ascending. Curve l keeps the episodes with ``|impact| >= min_impacts[l]``,
-        the detector's rule, so it equals `multiplier_curve` of those episodes.
+    runs : calibrate.replay.RunTable
+        A multiplier grid's episodes as runs, each with its raised hour at every
+        minimum impact of its metric's grid (``runs.raised``, -1: not raised there).
     ks, incidents, early, late, teams_analysts, n_days, confidence
         As for `multiplier_curve`.
 
     Returns
     -------
-    list of Curve
-        One per minimum impact. Every curve lists the teams of the unfiltered
-        episodes (a team whose alerts are all filtered out shows 0).
+    curves : list of Curve
+        One per minimum-impact level; curve l equals `multiplier_curve` of the episodes
+        a replay at minimum impact level l raises (each run counts once for its whole
+        range of multipliers). Every curve lists the teams of all runs.
+    caught : ndarray of bool (n_min_impacts, n_k, n_incidents)
+        Whether incident i is caught at multiplier j and minimum-impact level l.
     """
-    n_k = len(np.atleast_1d(ks))
-    grid = _grid_of(episodes_by_grid, n_k)
-    # a row is a run of one level: grid index g alone
-    return _impact_curves(episodes_by_grid, grid, grid + 1, np.arange(n_k), ks, min_impacts,
-                          incidents, early, late, teams_analysts, n_days, confidence)[0]
-
-
-def impact_curves_of_runs(runs: Any, ks: np.ndarray, min_impacts: np.ndarray,
-                          incidents: Incidents, early: int, late: int,
-                          teams_analysts: Mapping[str, int], n_days: float,
-                          confidence: float = 0.95, with_best: bool = False):
-    """`impact_curves` of a `calibrate.replay.RunTable`: equal to `impact_curves` of the
-    rows `sweep_codes` would write, without writing them (each run counts once for
-    its whole range of multipliers). With `with_best`, also the (n_k, n_incidents)
-    array of the highest minimum-impact level keeping an episode that meets each
-    incident at each multiplier (-1: none), so incident i is caught at (j, l) when
-    ``best[j, i] >= l``."""
-    curves, best = _impact_curves(runs.runs, runs.lo, runs.hi, runs.order, ks, min_impacts,
-                                  incidents, early, late, teams_analysts, n_days, confidence)
-    return (curves, best) if with_best else curves
-
-
-def _impact_curves(ep, lo, hi, order, ks, min_impacts, incidents, early, late,
-                   teams_analysts, n_days, confidence) -> tuple[list[Curve], np.ndarray]:
-    """Row e is one episode at every grid index ``order[lo[e]:hi[e]]``."""
     ks = np.asarray(ks, dtype=np.float64)
-    ms = np.asarray(min_impacts, dtype=np.float64)
-    if len(ms) == 0 or np.any(np.diff(ms) <= 0):
-        raise ValueError("min_impacts must be a non-empty ascending grid")
     if not n_days > 0:
         raise ValueError(f"n_days must be positive, but got {n_days=}")
-    n_k, n_m, n_inc = len(ks), len(ms), len(incidents)
-    lo = np.asarray(lo, dtype=np.int64)
-    hi = np.asarray(hi, dtype=np.int64)
-    order = np.asarray(order, dtype=np.int64)
+    ep = runs.runs
+    raised = np.ascontiguousarray(runs.raised, dtype=np.int64)
+    n_k, n_m, n_inc = len(ks), raised.shape[0], len(incidents)
     teams, tp = _curve_teams(ep, teams_analysts)
     n_t = len(teams)
     pa, pi = _overlap_pairs(ep, incidents, early, late)
-    alert_true = np.zeros(len(ep), dtype=bool)
-    alert_true[pa] = True
-    # level[e]: the last grid minimum impact that keeps episode e (-1: none keeps it);
-    # counts and best levels come per ascending multiplier level j, then go to order[j]
-    level, counts, best = _impact_kernel(
-        lo, hi, np.asarray(ep.value, dtype=np.float64),
-        np.asarray(ep.expected, dtype=np.float64), tp, alert_true, ms, n_k, n_t, pa, pi,
-        n_inc)
+    counts, caught_asc = _online_kernel(
+        np.asarray(runs.lo, dtype=np.int64), np.asarray(runs.hi, dtype=np.int64), raised, tp,
+        pa, pi, incidents.start - early, incidents.end + late, n_k, max(n_t, 1), n_inc)
+    order = np.asarray(runs.order, dtype=np.int64)
     grid_counts = np.empty_like(counts)
     grid_counts[:, order] = counts
-    grid_best = np.empty_like(best)
-    grid_best[order] = best
-    # an incident is caught at (k, m) when one of its episodes at k is kept at m
-    caught = _at_least(np.bincount((np.arange(n_k)[:, None] * (n_m + 1) + grid_best + 1)
-                                   .ravel(), minlength=n_k * (n_m + 1))
-                       .reshape(n_k, n_m + 1)[:, 1:])
-    team_alerts, team_true = _at_least(grid_counts[0]), _at_least(grid_counts[1])
+    caught = np.empty_like(caught_asc)
+    caught[:, order] = caught_asc
+    n_caught = caught.sum(axis=2)
+    team_alerts, team_true = grid_counts[0][..., :n_t], grid_counts[1][..., :n_t]
     alerts, true_alerts = team_alerts.sum(axis=2), team_true.sum(axis=2)
-    return [
-        _curve(ks, n_inc, caught[:, lv], alerts[:, lv], true_alerts[:, lv], teams,
+    curves = [
+        _curve(ks, n_inc, n_caught[lv], alerts[:, lv], true_alerts[:, lv], teams,
                teams_analysts, team_alerts[:, lv], team_alerts[:, lv] - team_true[:, lv],
                n_days, confidence)
         for lv in range(n_m)
-    ], grid_best
+    ]
+    return curves, caught
 
 
 @numba.njit(cache=True)
-def _impact_kernel(lo, hi, value, expected, team, true, ms, n_k, n_t, pa, pi, n_inc):
-    """Per row the last grid minimum impact keeping it (-1: none); counts of rows (all,
-    true) per ascending multiplier level, exact impact level and team; and per level
-    and incident the highest impact level among the rows meeting it (-1: none)."""
-    n, n_m = lo.shape[0], ms.shape[0]
-    level = np.empty(n, dtype=np.int64)
+def _online_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, n_k, n_t, n_inc):
+    """Counts of raised runs (all, true) per ascending multiplier level, minimum-impact
+    level and team, and per (minimum-impact level, multiplier level, incident) whether
+    some run raised inside the incident's window exists there. `pa`/`pi` are pairs
+    that overlap in time (a superset of the catches)."""
+    n_m, n = raised.shape
+    head = np.zeros(n + 1, dtype=np.int64)  # pairs grouped by run
+    for q in range(pa.shape[0]):
+        head[pa[q] + 1] += 1
+    head = np.cumsum(head)
+    fill = head.copy()
+    inc = np.empty(pa.shape[0], dtype=np.int64)
+    for q in range(pa.shape[0]):
+        inc[fill[pa[q]]] = pi[q]
+        fill[pa[q]] += 1
     diff = np.zeros((2, n_k + 1, n_m, n_t), dtype=np.int64)
-    nan_level = -1  # a NaN impact is kept only where nothing is filtered (m <= 0)
-    while nan_level + 1 < n_m and ms[nan_level + 1] <= 0:
-        nan_level += 1
+    caught = np.zeros((n_m, n_k, n_inc), dtype=np.bool_)
     for e in range(n):
-        # |impact| as the detector computes it (value and expected are sums)
-        x = abs(value[e] - expected[e])
-        if np.isnan(x):
-            lv = nan_level
-        else:
-            a, b = 0, n_m  # first grid value above x (numpy's searchsorted, right)
-            while a < b:
-                mid = (a + b) // 2
-                if ms[mid] <= x:
-                    a = mid + 1
-                else:
-                    b = mid
-            lv = a - 1
-        level[e] = lv
-        if lv >= 0:
-            diff[0, lo[e], lv, team[e]] += 1
-            diff[0, hi[e], lv, team[e]] -= 1
-            if true[e]:
-                diff[1, lo[e], lv, team[e]] += 1
-                diff[1, hi[e], lv, team[e]] -= 1
+        t = max(team[e], 0)
+        for lv in range(n_m):
+            r = raised[lv, e]
+            if r < 0:
+                continue
+            diff[0, lo[e], lv, t] += 1
+            diff[0, hi[e], lv, t] -= 1
+            true = False
+            for q in range(head[e], head[e + 1]):
+                i = inc[q]
+                if win_lo[i] <= r < win_hi[i]:
+                    true = True
+                    for j in range(lo[e], hi[e]):
+                        caught[lv, j, i] = True
+            if true:
+                diff[1, lo[e], lv, t] += 1
+                diff[1, hi[e], lv, t] -= 1
     counts = np.zeros((2, n_k, n_m, n_t), dtype=np.int64)
     for w in range(2):
         run = np.zeros((n_m, n_t), dtype=np.int64)
         for j in range(n_k):
             run += diff[w, j]
             counts[w, j] = run
-    best = np.full((n_k, n_inc), -1, dtype=np.int64)
-    for q in range(pa.shape[0]):
-        e, i = pa[q], pi[q]
-        for j in range(lo[e], hi[e]):
-            if level[e] > best[j, i]:
-                best[j, i] = level[e]
-    return level, counts, best
-
-
-def _at_least(counts: np.ndarray) -> np.ndarray:
-    """counts[:, l, ...] of items at level exactly l -> of items at level >= l (axis 1)."""
-    return np.flip(np.cumsum(np.flip(counts, axis=1), axis=1), axis=1).astype(np.int64)
+    return counts, caught
 
 
 def solve_multiplier(
@@ -1085,9 +1100,9 @@ def episodes_from_alerts_frame(
     """Convert an alerts frame (Alerts CSV contract) back to `Episodes`.
 
     Required columns: alert_id, level, <key columns of each row's level>, metric,
-    start, end. Optional: peak_hour (blank = start), peak_score, value, expected
-    (blank = NaN), team, detectors (blank = ""). ``impact`` is derived, so it is
-    not read. ``grid`` is 0.
+    start, end. Optional: raised_hour (blank or absent = start), peak_hour (blank =
+    start), peak_score, value, expected (blank = NaN), team, detectors (blank = "").
+    ``impact`` is derived, so it is not read. ``grid`` is 0.
 
     Raises
     ------
@@ -1108,6 +1123,16 @@ def episodes_from_alerts_frame(
         if len(outside):
             raise InputError(
                 rows.at(outside[0], "peak_hour"), "must lie within the alert's start .. end"
+            )
+
+    raised = start.copy()
+    if "raised_hour" in rows.columns:
+        given = resolve_hours(rows, "raised_hour", history.hours, is_end=False, optional=True)
+        raised = np.where(given >= 0, given, start)
+        outside = np.flatnonzero((raised < start) | (raised >= end))
+        if len(outside):
+            raise InputError(
+                rows.at(outside[0], "raised_hour"), "must lie within the alert's start .. end"
             )
 
     def numbers(column: str) -> np.ndarray:
@@ -1137,6 +1162,7 @@ def episodes_from_alerts_frame(
         detectors=text("detectors"),
         team=text("team"),
         grid=np.zeros(n, dtype=np.int64),
+        raised=raised,
     )
 
 

@@ -8,14 +8,16 @@ once (text columns as integer codes), `multiplier_curve` scores every grid point
 the tuning hours, and `solve_multiplier` picks the largest multiplier meeting the
 miss-rate target and every team's alert budget.
 
-Minimum impact: when `[search]` gives it as a float range and there are no groups,
-it is solved too, not searched. Dropping an episode whose |impact| is below it is
-another threshold applied after the scores, so the sweep at the range's lowest
-value holds the episodes of every (multiplier, minimum impact) pair, and
-`impact_curves` scores a grid of round minimum impacts (`impact_grid`) at once. For
-each minimum impact the multiplier is solved as above; the pair with the fewest
-(penalised) alerts wins, ties to the larger multiplier, then the smaller minimum
-impact. As a list, or per group, Optuna samples it like any other setting.
+Minimum impact: solved per watched metric, in the metric's own units, together with
+the multiplier (unless `[search]` lists values for Optuna to sample). Each metric has
+a range (`impact_ranges`: its own, or 0 to its typical hourly level on the tuning
+weeks); level l of the grid is the same share of every metric's range
+(`impact_grids`). An alert is raised when its episode's |impact so far| reaches the
+metric's minimum impact, so one sweep (`sweep_runs` with the grids) gives every
+run's raised hour at every level, and `impact_curves` scores every (multiplier,
+level) pair at once. For each level the multiplier is solved as above; the pair with
+the fewest (penalised) alerts wins, ties to the larger multiplier, then the lower
+level.
 
 Objective (minimised): alerts per analyst per day over all teams at the solved
 multiplier, i.e. ``(alerts + KNOWN_FALSE_PENALTY * known_false_alerts) /
@@ -71,10 +73,10 @@ from calibrate.replay import MetricScores, Replayer, sweep_codes, sweep_runs
 from calibrate.scoring import (
     Curve,
     Figures,
-    _overlap_pairs,
     best_tradeoffs,
+    catch_pairs,
     curve_loads,
-    impact_curves_of_runs,
+    impact_curves,
     load_axis,
     multiplier_curve,
     pareto_front,
@@ -122,32 +124,26 @@ class Param:
 
 
 def default_params(ses: Session, metrics: Sequence[str] | None = None) -> tuple[SearchParam, ...]:
-    """Search space used when `[search]` names no setting.
-
-    Fence window, seasonal span (odd), flatline hours and minimum impact, the
-    last from 0 to the typical hourly level of the smallest watched metric (so the
-    filter never wipes out a whole metric).
-    """
-    scale = typical_level(ses, metrics)
+    """Search space used when `[search]` names no setting: fence window, seasonal span
+    (odd) and flatline hours (the minimum impact is solved per metric, see
+    `impact_ranges`)."""
     return (
         SearchParam(name="fence_window_hours", kind="choice", values=(72, 120, 168, 240)),
         SearchParam(name="seasonal_span", kind="choice", values=(7, 11, 15)),
         SearchParam(name="flatline_hours", kind="choice", values=(0, 6, 10)),
-        SearchParam(name="min_impact", kind="float", low=0.0, high=float(scale)),
     )
 
 
-def typical_level(ses: Session, metrics: Sequence[str] | None = None) -> float:
-    """Smallest, over metrics, of the median |hourly value| across series and hours."""
-    metrics = list(metrics or ses.ws.metric_names)
-    levels = []
-    for m in metrics:
-        vals = [np.abs(ls.values[m]) for ls in ses.history.levels.values() if m in ls.values]
-        if vals:
-            med = float(np.nanmedian(np.concatenate([v.ravel() for v in vals])))
-            if math.isfinite(med) and med > 0:
-                levels.append(med)
-    return min(levels) if levels else 1.0
+def typical_level(ses: Session, metric: str, end_hour: int | None = None) -> float:
+    """Median |hourly value| of `metric` over every series of every level and the hours
+    before `end_hour` (the tuning weeks: held-out hours are never read); 1 when undefined."""
+    vals = [np.abs(ls.values[metric][:, :end_hour]).ravel()
+            for ls in ses.history.levels.values() if metric in ls.values]
+    if not vals:
+        return 1.0
+    with np.errstate(all="ignore"):
+        med = float(np.nanmedian(np.concatenate(vals))) if sum(len(v) for v in vals) else 0.0
+    return med if math.isfinite(med) and med > 0 else 1.0
 
 
 def _with_current(spec: SearchParam, value: Any) -> SearchParam:
@@ -171,58 +167,113 @@ def _with_current(spec: SearchParam, value: Any) -> SearchParam:
     return replace(spec, low=lo, high=hi)
 
 
-def solved_min_impact(ses: Session, group: str | None = None) -> SearchParam | None:
-    """The `min_impact` range of the search (of one group, with tune_by level, metric or
-    group) when it is solved with the multiplier rather than searched: a float range."""
+def group_metrics(ses: Session, group: str | None) -> list[str]:
+    """Watched metrics of one search group (None: every watched metric)."""
+    tune_by = ses.ws.search.tune_by
+    if tune_by == "metric" and group:
+        return [group]
+    if tune_by == "group" and group and group != BASE_GROUP:
+        own = [m for g in ses.ws.detector.groups if g.name == group for m in g.metrics]
+        return [m for m in ses.ws.metric_names if m in own] or list(ses.ws.metric_names)
+    return list(ses.ws.metric_names)
+
+
+def _shared_impact_spec(ses: Session, group: str | None) -> SearchParam | None:
+    return next((p for p in _group_specs(ses, group) if p.name == "min_impact"), None)
+
+
+def solved_min_impact(ses: Session, group: str | None = None) -> bool:
+    """Whether the minimum impact of a group (None: no groups) is solved per metric with
+    the multiplier: always, unless `[search]` lists values for Optuna to sample."""
     if (group is None) != (ses.ws.search.tune_by == "all"):
-        return None
-    for spec in _group_specs(ses, group):
-        if spec.name == "min_impact":
-            return spec if spec.kind == "float" else None
-    return None
+        return False
+    spec = _shared_impact_spec(ses, group)
+    return spec is None or spec.kind == "float"
+
+
+def impact_ranges(ses: Session, group: str | None, end_hour: int) -> dict[str, tuple[float, float]]:
+    """Per watched metric of the group, the (low, high) range its minimum impact is solved
+    in, in the metric's own units: its `[search.groups.METRIC]` range, else the group's
+    own range when the group has one metric, else 0 to the metric's typical hourly level
+    on the hours before `end_hour` (the tuning weeks).
+
+    Raises
+    ------
+    InputError
+        When one range is given for several metrics: impacts of different metrics are in
+        different units, so one number would silence some metrics and never filter others.
+    """
+    s = ses.ws.search
+    metrics = group_metrics(ses, group)
+    shared = _shared_impact_spec(ses, group)
+    if shared is not None and len(metrics) > 1 and float(shared.high) > 0:
+        raise InputError(
+            f"{ses.ws.file.name} [search] key 'min_impact'",
+            "one range for several metrics mixes their units; leave it out to solve each "
+            "metric's minimum impact from 0 to its typical hourly level, or give each metric "
+            "its range in [search.groups.METRIC]")
+    out = {}
+    for m in metrics:
+        own = next((p for p in s.group_params.get(m, ()) if p.name == "min_impact"
+                    and p.kind == "float"), None)
+        spec = own or shared
+        if spec is not None:
+            out[m] = (max(float(spec.low), 0.0), max(float(spec.high), 0.0))
+        else:
+            out[m] = (0.0, typical_level(ses, m, end_hour))
+    return out
+
+
+def relative_grid() -> np.ndarray:
+    """Shares of each metric's range the minimum impact is solved on: 0 and round values
+    (`IMPACT_STEPS` per decade) from a thousandth to the whole range."""
+    nice = [m * 10.0**d for d in range(-3, 1) for m in IMPACT_STEPS]
+    return np.unique(np.r_[0.0, [v for v in nice if v <= 1.0], 1.0])
+
+
+def impact_grids(ranges: dict[str, tuple[float, float]],
+                 current: Sequence[dict[str, float]]) -> dict[str, np.ndarray]:
+    """Per metric, its minimum impacts to solve on: level l is the same share
+    (`relative_grid`) of every metric's range, at four significant digits; then one
+    level per distinct `current` assignment (today's values and any warm start's), so
+    those are exactly reachable."""
+    shares = relative_grid()
+    grids = {m: np.array([float(f"{lo + t * (hi - lo):.4g}") for t in shares])
+             for m, (lo, hi) in ranges.items()}
+    extra = []
+    for cur in current:
+        row = {m: float(cur.get(m, 0.0)) for m in ranges}
+        on_grid = any(all(grids[m][lv] == row[m] for m in ranges) for lv in range(len(shares)))
+        if not on_grid and row not in extra:
+            extra.append(row)
+    return {m: np.r_[g, [row[m] for row in extra]] for m, g in grids.items()}
+
+
+def current_impacts(ses: Session, config: DetectorConfig, group: str | None) -> dict[str, float]:
+    """Each metric's minimum impact under `config`, for one search group."""
+    tune_by = ses.ws.search.tune_by
+    level = group if tune_by == "level" and group else next(iter(ses.history.levels))
+    return {m: config.for_series(level, m).min_impact for m in group_metrics(ses, group)}
+
+
+def impact_label(values: dict[str, float] | None) -> str:
+    """'metric=value, ...' of per-metric minimum impacts ('' for None)."""
+    return ", ".join(f"{m}={v:g}" for m, v in (values or {}).items())
 
 
 def _group_specs(ses: Session, group: str | None) -> list[SearchParam]:
     """Searched settings of one group: its `[search.groups.NAME]` ranges, then the shared
     `[search]` ones it does not name (defaults when `[search]` names none)."""
     s = ses.ws.search
-    metrics = [group] if s.tune_by == "metric" and group else None
-    if s.tune_by == "group":
-        metrics = [m for grp in ses.ws.detector.groups if grp.name == group
-                   for m in grp.metrics] or None
     own = s.group_params.get(group or "", ())
-    return [*own, *(p for p in s.params or default_params(ses, metrics)
+    return [*own, *(p for p in s.params or default_params(ses)
                     if p.name not in {o.name for o in own})]
 
 
-def solved_groups(ses: Session) -> dict[str, SearchParam]:
-    """Every group (\"\" without groups) whose minimum impact is solved, with its range."""
+def solved_groups(ses: Session) -> list[str]:
+    """Every group (\"\" without groups) whose minimum impact is solved per metric."""
     names = group_names(ses, ses.ws.search.tune_by) or [None]
-    out = {}
-    for g in names:
-        spec = solved_min_impact(ses, g)
-        if spec is not None:
-            out[g or ""] = spec
-    return out
-
-
-def impact_grid(spec: SearchParam, current: float | Sequence[float]) -> np.ndarray:
-    """Ascending minimum impacts to solve on: the range's ends, today's value (and any
-    warm start's) and the round values between them (`IMPACT_STEPS` per decade)."""
-    current = [float(c) for c in np.atleast_1d(current)]
-    for c in current:
-        spec = _with_current(spec, c)
-    # a minimum impact is zero or positive (the workspace checks ranges; this guards API use)
-    low, high = max(float(spec.low), 0.0), max(float(spec.high), 0.0)
-    if high <= low:
-        return np.array([low])
-    # round values people can read in a config (1, 1.5, 2, 3, 5, 7 per decade), from
-    # a thousandth of the range's top when the range starts at 0
-    start = low if low > 0 else high / 1000.0
-    decades = range(math.floor(math.log10(start)), math.ceil(math.log10(high)) + 1)
-    nice = np.array([float(f"{m * 10.0**d:.6g}") for d in decades for m in IMPACT_STEPS])
-    nice = nice[(nice >= start) & (nice <= high)]
-    return np.unique(np.r_[low, nice, high, np.asarray(current, dtype=np.float64)])
+    return [g or "" for g in names if solved_min_impact(ses, g)]
 
 
 def group_names(ses: Session, tune_by: str) -> list[str]:
@@ -347,8 +398,10 @@ class Evaluation:
     max_budget_ratio: float
     value: float
     constraints: list[float]
-    min_impact: float | None = None  # solved minimum impact (None: the config's own)
-    group_min_impact: dict[str, float] = field(default_factory=dict)  # solved, per group
+    # solved minimum impact per metric (None: the config's own)
+    min_impact: dict[str, float] | None = None
+    # the same per group: group -> metric -> minimum impact
+    group_min_impact: dict[str, dict[str, float]] = field(default_factory=dict)
     # best trade-offs over the solved multiplier (and minimum impact) grid: [caught,
     # load (`scoring.load_axis`), k, min_impact or None]; empty for grouped settings
     # (`tune` computes the chosen grouped setting's with `Evaluator.group_front`)
@@ -370,7 +423,7 @@ class JointSolve:
     kf: int
     team_alerts: np.ndarray
     group_k: dict[str, float]
-    group_min_impact: dict[str, float]
+    group_min_impact: dict[str, dict[str, float]]
     load: float = math.nan
 
 
@@ -385,11 +438,12 @@ class Evaluator:
     split_hour: int
     goal: Goal
     known_false: Incidents | None = None
-    # ascending grid: the minimum impact is solved on it with the multiplier (configs
-    # without groups); None keeps each config's own minimum impact
-    min_impacts: np.ndarray | None = None
+    # metric -> grid (one length for all; level l of every metric is one candidate): the
+    # minimum impacts are solved on it with the multiplier (configs without groups);
+    # None keeps each config's own minimum impact
+    min_impacts: dict[str, np.ndarray] | None = None
     # the same per group (tune_by level, metric or group), by group name
-    group_min_impacts: dict[str, np.ndarray] = field(default_factory=dict)
+    group_min_impacts: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
     incidents: Incidents = field(init=False)
     false_windows: Incidents | None = field(init=False)
 
@@ -445,15 +499,15 @@ class Evaluator:
         (penalised) alerts; ties go to the larger multiplier, then the smaller minimum
         impact. An infeasible setting reports the pair closest to the goal: the lowest
         miss-rate excess, then the lowest worst budget ratio."""
-        ms = np.asarray(self.min_impacts, dtype=np.float64)
-        curves, kfs, _ = self._impact_curves(self.replayer.scores(config), ms)
+        grids = self.min_impacts
+        curves, kfs, _ = self._impact_curves(self.replayer.scores(config), grids)
         best: tuple[tuple[float, float, float], int, int, str] | None = None
         for lv, c in enumerate(curves):
             k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
             if k is None:
                 continue
             j = int(np.flatnonzero(c.ks == k)[0])
-            rank = (float(c.alerts[j] + KNOWN_FALSE_PENALTY * kfs[lv][j]), -k, float(ms[lv]))
+            rank = (float(c.alerts[j] + KNOWN_FALSE_PENALTY * kfs[lv][j]), -k, float(lv))
             if best is None or rank < best[0]:
                 best = (rank, lv, j, reason)
         if best is None:
@@ -464,7 +518,7 @@ class Evaluator:
                 j = _fallback_index(c, self.goal)
                 miss = 0.0 if np.isnan(c.miss_rate[j]) else float(c.miss_rate[j])
                 picks.append((max(miss - self.goal.max_miss_rate, 0.0),
-                              self._budget_ratio(c, j), -float(c.ks[j]), float(ms[lv]), lv, j))
+                              self._budget_ratio(c, j), -float(c.ks[j]), float(lv), lv, j))
             *_, lv, j = min(picks)
             c, feasible = curves[lv], False
             _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
@@ -474,20 +528,21 @@ class Evaluator:
         ev = self._figures(
             feasible=feasible, reason=reason, k=float(c.ks[j]), group_k={},
             caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
-            team_alerts=c.team_alerts[j], teams=c.teams, min_impact=float(ms[lv]))
-        ev.front = self._front(curves, ms)
+            team_alerts=c.team_alerts[j], teams=c.teams, min_impact=_level(grids, lv))
+        ev.front = self._front(curves, grids)
         return ev
 
-    def _front(self, curves: Sequence[Curve], ms: np.ndarray | None) -> list[list[Any]]:
+    def _front(self, curves: Sequence[Curve],
+               grids: dict[str, np.ndarray] | None) -> list[list[Any]]:
         """`scoring.best_tradeoffs` over every (multiplier, minimum impact) pair of
-        `curves` (curve l at minimum impact ms[l]; None: the config's own)."""
-        grid = np.zeros(len(curves)) if ms is None else np.asarray(ms, dtype=np.float64)
+        `curves` (curve l at minimum impact level l of `grids`; None: the config's own)."""
         pts = best_tradeoffs(
             np.concatenate([c.caught for c in curves]),
             np.concatenate([curve_loads(c, self.ses.analysts, self.goal) for c in curves]),
             np.concatenate([c.ks for c in curves]),
-            np.concatenate([np.full(len(c.ks), m) for c, m in zip(curves, grid, strict=True)]))
-        return [[c, x, k, None if ms is None else m] for c, x, k, m in pts]
+            np.concatenate([np.full(len(c.ks), float(lv)) for lv, c in enumerate(curves)]))
+        return [[c, x, k, None if grids is None else _level(grids, int(lv))]
+                for c, x, k, lv in pts]
 
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
@@ -560,7 +615,7 @@ class Evaluator:
             kf += int(kfs[i])
             group_k[name] = float(self.ks[i % n_k])
             if grid is not None:
-                group_m[name] = float(grid[i // n_k])
+                group_m[name] = _level(grid, i // n_k)
         return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
                           group_k=group_k, group_min_impact=group_m)
 
@@ -573,34 +628,34 @@ class Evaluator:
         if grid is None:
             c, kf, eps = self.curve(sub)
             caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
-            pa, pi = _overlap_pairs(eps, self.incidents, self.ses.ws.incidents.early_hours,
-                                    self.ses.ws.incidents.late_hours)
+            pa, pi = catch_pairs(eps, self.incidents, self.ses.ws.incidents.early_hours,
+                                 self.ses.ws.incidents.late_hours)
             caught[np.asarray(eps.grid, dtype=np.int64)[pa], pi] = True
             curves, kfs = [c], [kf]
         else:
-            curves, kfs, best = self._impact_curves(sub, grid)
-            # caught at (j, l): an episode meeting the incident is kept at level l
-            caught = (best[None, :, :] >= np.arange(len(grid))[:, None, None]).reshape(
-                len(grid) * len(self.ks), len(self.incidents))
+            grid = {m: g for m, g in grid.items() if any(key[1] == m for key in sub)}
+            curves, kfs, caught_lk = self._impact_curves(sub, grid)
+            caught = caught_lk.reshape(len(curves) * len(self.ks), len(self.incidents))
         for c in curves:
             teams.extend(t for t in c.teams if t not in teams)
         alerts = np.concatenate([c.alerts for c in curves])
         return name, caught, grid, alerts, np.concatenate(kfs), curves
 
-    def _impact_curves(self, scores: dict[tuple[str, str], MetricScores], grid: np.ndarray):
-        """Curves over the multiplier grid for every minimum impact of `grid` (tuning
-        hours), the known-false alerts of each, and the incidents' best levels."""
+    def _impact_curves(self, scores: dict[tuple[str, str], MetricScores],
+                       grids: dict[str, np.ndarray]):
+        """Curves over the multiplier grid for every minimum-impact level of `grids`
+        (tuning hours), the known-false alerts of each, and which incidents each
+        (level, multiplier) catches."""
         ws = self.ses.ws
-        runs = sweep_runs(scores, self.ks, self.replayer.routes, apply_min_impact=False,
-                          start_hours=(self.first_hour, self.split_hour))
-        curves, best = impact_curves_of_runs(runs, self.ks, grid, self.incidents,
-                                             ws.incidents.early_hours, ws.incidents.late_hours,
-                                             self.ses.analysts, self.n_days, with_best=True)
-        kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(grid)
+        runs = sweep_runs(scores, self.ks, self.replayer.routes,
+                          start_hours=(self.first_hour, self.split_hour), min_impacts=grids)
+        curves, caught = impact_curves(runs, self.ks, self.incidents, ws.incidents.early_hours,
+                                       ws.incidents.late_hours, self.ses.analysts, self.n_days)
+        kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(curves)
         if self.false_windows is not None:
-            kfs = [c.true_alerts for c in impact_curves_of_runs(
-                runs, self.ks, grid, self.false_windows, 0, 0, self.ses.analysts, self.n_days)]
-        return curves, kfs, best
+            kfs = [c.true_alerts for c in impact_curves(
+                runs, self.ks, self.false_windows, 0, 0, self.ses.analysts, self.n_days)[0]]
+        return curves, kfs, caught
 
     def _budget_ratio(self, c: Curve, j: int) -> float:
         return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
@@ -608,7 +663,7 @@ class Evaluator:
 
     def _figures(self, *, feasible: bool, reason: str, k: float, group_k: dict[str, float],
                  caught: int, alerts: int, kf: int, team_alerts: np.ndarray,
-                 teams: Sequence[str], min_impact: float | None = None) -> Evaluation:
+                 teams: Sequence[str], min_impact: dict[str, float] | None = None) -> Evaluation:
         n_inc = len(self.incidents)
         miss = (n_inc - caught) / n_inc if n_inc else 0.0
         high = float(wilson(n_inc - caught, n_inc)[1]) if n_inc else 0.0
@@ -623,6 +678,11 @@ class Evaluator:
             known_false_alerts=kf, team_rate=rates, max_budget_ratio=ratio, value=value,
             constraints=constraints, min_impact=min_impact,
         )
+
+
+def _level(grids: dict[str, np.ndarray], lv: int) -> dict[str, float]:
+    """Each metric's minimum impact at level `lv` of per-metric `grids`."""
+    return {m: float(g[lv]) for m, g in grids.items()}
 
 
 def _max_ratio(team_alerts: dict[str, Any], analysts: dict[str, int], goal: Goal,
@@ -793,7 +853,7 @@ def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> s
     # impact must not be continued by a search that solves it (its trials lack it)
     solved = sorted(solved_groups(ses))
     if solved:  # (nothing solved but k: the same name as before minimum impacts were solved)
-        h.update(f"solved: fence_multiplier, min_impact of {solved}".encode())
+        h.update(f"solved: fence_multiplier, min_impact per metric of {solved}".encode())
     return f"tune-{h.hexdigest()[:16]}"
 
 
@@ -931,10 +991,9 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
     ks = np.unique(np.r_[ks, extra])
-    tune_by = ws.search.tune_by
-    ms = {g: impact_grid(spec, [_settings_of(c, tune_by, g or None, ses).min_impact
-                                for c in starts])
-          for g, spec in solved_groups(ses).items()}
+    ms = {g: impact_grids(impact_ranges(ses, g or None, split),
+                          [current_impacts(ses, c, g or None) for c in starts])
+          for g in solved_groups(ses)}
     return space, starts, first_hour, split, fence_w, ks, ms
 
 
@@ -1062,10 +1121,8 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         best = _best_feasible(study.get_trials(deepcopy=False, states=BUDGET_STATES))
         if best is not None:
             a = best.user_attrs
-            impact = a.get("min_impact")
             bar.set_postfix(miss=f"{a['miss_rate']:.2f}", per_analyst_day=f"{best.value:.2f}",
-                            k=f"{a['k']:.2f}",
-                            **({} if impact is None else {"min_impact": f"{impact:g}"}))
+                            k=f"{a['k']:.2f}")
         else:
             bar.set_postfix(feasible="none yet")
 
@@ -1111,12 +1168,13 @@ def trials_frame(study: optuna.Study, space: list[Param], teams: Sequence[str]) 
         for p in space:
             row[p.name] = t.params.get(p.name)
         row["k"] = a.get("k", math.nan)
-        if a.get("min_impact") is not None:
-            row["min_impact"] = a["min_impact"]
+        for m, v in (a.get("min_impact") or {}).items():
+            row[f"min_impact[{m}]"] = v
         for g, k in (a.get("group_k") or {}).items():
             row[f"k[{g}]"] = k
-        for g, m in (a.get("group_min_impact") or {}).items():
-            row[f"min_impact[{g}]"] = m
+        for g, per_metric in (a.get("group_min_impact") or {}).items():
+            for m, v in per_metric.items():
+                row[f"min_impact[{g}/{m}]"] = v
         for key in ("incidents", "caught", "miss_rate", "miss_rate_high", "alerts",
                     "known_false_alerts"):
             row[key] = a.get(key, math.nan)
@@ -1163,7 +1221,7 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
                          "recall": caught / n_inc if n_inc else 1.0,
                          "load": math.nan if load is None else float(load),
                          "k": math.nan if k is None else float(k),
-                         "min_impact": math.nan if m is None else float(m)})
+                         "min_impact": impact_label(m)})
     df = pd.DataFrame(rows, columns=list(FRONT_COLUMNS))
     if len(df):
         keep = pareto_front(np.nan_to_num(df["load"].to_numpy(dtype=np.float64), nan=0.0),
@@ -1189,7 +1247,7 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     else:
         config = config.with_base(fence_multiplier=a["k"])
     if a.get("min_impact") is not None:
-        config = config.with_base(min_impact=a["min_impact"])
+        config = config.with_base(**_per_metric_impact(a["min_impact"]))
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
     fronts = {}
@@ -1211,6 +1269,11 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     n = ses.history.n_hours
     episodes = ev.replayer.replay(config).episodes
     tuning = api.score_episodes(ses, episodes, ev.first_hour, ev.split_hour)
+    # incidents before the tuning hours begin (the longest decomposition window's
+    # warm-up) can never be caught: listed apart
+    early = period_filter(ses.incidents, 0, ev.first_hour)
+    tuning.before_first_scored = len(early)
+    tuning.before_first_scored_ids = [str(x) for x in early.incident_id.tolist()]
     holdout = api.score_episodes(ses, episodes, ev.split_hour, n) if ev.split_hour < n else None
     feasible = best is not None
     if feasible:
@@ -1228,20 +1291,24 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
                       study_name=name, storage=store_name, provenance=prov, goal=goal)
 
 
+def _per_metric_impact(values: dict[str, float]) -> dict[str, Any]:
+    """Settings changes that give each metric its own minimum impact."""
+    return {"min_impact": 0.0, "min_impact_per_metric": tuple(
+        (m, float(v)) for m, v in values.items())}
+
+
 def with_group_solve(config: DetectorConfig, group_k: dict[str, float],
-                     group_m: dict[str, float], tune_by: str) -> DetectorConfig:
-    """`config` with each group's solved multiplier and minimum impact filled in (with
-    ``tune_by = "group"`` the `BASE_GROUP` entries go to the base settings)."""
+                     group_m: dict[str, dict[str, float]], tune_by: str) -> DetectorConfig:
+    """`config` with each group's solved multiplier and per-metric minimum impacts filled
+    in (with ``tune_by = "group"`` the `BASE_GROUP` entries go to the base settings)."""
+    def solved(name: str, s: DetectorSettings) -> DetectorSettings:
+        changes = _per_metric_impact(group_m[name]) if name in group_m else {}
+        return replace(s, fence_multiplier=group_k.get(name, s.fence_multiplier), **changes)
+
     config = replace(config, groups=tuple(
-        replace(g, settings=replace(
-            g.settings, fence_multiplier=group_k.get(g.name, g.settings.fence_multiplier),
-            min_impact=group_m.get(g.name, g.settings.min_impact)))
-        for g in config.groups))
-    if tune_by == "group":  # 'base': the series no group matches
-        if BASE_GROUP in group_k:
-            config = config.with_base(fence_multiplier=group_k[BASE_GROUP])
-        if BASE_GROUP in group_m:
-            config = config.with_base(min_impact=group_m[BASE_GROUP])
+        replace(g, settings=solved(g.name, g.settings)) for g in config.groups))
+    if tune_by == "group" and (BASE_GROUP in group_k or BASE_GROUP in group_m):
+        config = replace(config, base=solved(BASE_GROUP, config.base))
     return config
 
 
@@ -1385,6 +1452,34 @@ def side_by_side(result: TuneResult) -> list[str]:
     return lines
 
 
+def metric_lines(result: TuneResult) -> list[str]:
+    """Recall and alerts per watched metric and alerts per detector on the tuning weeks
+    (in-sample), and a warning for every metric with labelled incidents but no alert."""
+    f = result.tuning
+    pm = f.per_metric
+    lines = ["per metric, tuning weeks (in-sample, chosen on these labels):"]
+    warnings = []
+    for metric, row in pm.iterrows():
+        n, caught, alerts = int(row["incidents"]), int(row["caught"]), int(row["alerts"])
+        rec = (f"recall {_pct(row['recall'])} [{_pct(row['recall_low'])}, "
+               f"{_pct(row['recall_high'])}] ({caught} of {n})" if n else "no incidents")
+        lines.append(f"  {metric}: {rec}, {alerts} alerts")
+        if n and alerts == 0 and metric != "(any)":
+            warnings.append(f"WARNING: metric '{metric}' has {n} labelled incident(s) in the "
+                            "tuning weeks but the tuned settings raise no alert on it: it is "
+                            "switched off in effect; check its minimum impact")
+    det = ", ".join(f"{d}: {int(r['alerts'])} alerts ({_pct(r['precision'])} true)"
+                    for d, r in f.per_detector.iterrows())
+    lines.append(f"per detector, tuning weeks: {det or 'no alerts'}")
+    if f.before_first_scored:
+        lines.append(f"{f.before_first_scored} incident(s) begin before the first scored hour "
+                     "and cannot be caught: listed apart, left out of recall")
+    if f.already_alerting:
+        lines.append(f"{f.already_alerting} incident(s) missed while an earlier alert was "
+                     "still running (already alerting, not counted as caught)")
+    return lines + warnings
+
+
 def changed_settings_line(result: TuneResult) -> str:
     """One line: the settings the tuned config changes, today's value -> the new one."""
     cur, new = result.current.base, result.config.base
@@ -1404,7 +1499,7 @@ def pareto_lines(result: TuneResult) -> list[str]:
     rows = front.sort_values("recall", ascending=False, kind="stable")
     for d in rows.to_dict("records"):
         impact = d["min_impact"]
-        shown = "" if impact != impact else f", min_impact={impact:g}"
+        shown = f", min_impact: {impact}" if isinstance(impact, str) and impact else ""
         k = "multipliers per group" if d["k"] != d["k"] else f"k={d['k']:.3g}"
         lines.append(f"  recall {_pct(d['recall'])} ({d['caught']} of {d['incidents']}), "
                      f"load {d['load']:.3g}: trial {d['number']}, {k}" + shown)
@@ -1461,6 +1556,8 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
                   progress=True)
     print(f"study {result.study_name} ({len(result.trials)} trials) in {result.storage}")
     for line in side_by_side(result):
+        print(line)
+    for line in metric_lines(result):
         print(line)
     if result.holdout_warning:
         print(f"warning: {result.holdout_warning}")

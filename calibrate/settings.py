@@ -9,6 +9,7 @@ the settings one series and metric are replayed with.
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields, replace
 from typing import Any
@@ -64,7 +65,12 @@ class DetectorSettings:
         Sustained-flat detector: flag once the value has not changed for this many
         hours while it was expected to move; 0 switches the detector off.
     min_impact : float
-        Episodes whose |sum(value - expected)| is below this are dropped.
+        An alert is raised at the first hour its episode's |impact so far| (the sum of
+        value - expected over its hours up to then) reaches this; an episode that
+        never does raises no alert. In the metric's own units.
+    min_impact_per_metric : tuple of (str, float)
+        Per watched metric minimum impacts, which replace `min_impact` for the metrics
+        they name (written as a TOML table ``min_impact = { metric = value, ... }``).
     combine : str
         `any` (an hour is flagged when any detector flags it), `all`, or an
         integer n as a string ("2": at least n detectors).
@@ -84,6 +90,7 @@ class DetectorSettings:
     flatline_hours: int = 0
     min_impact: float = 0.0
     combine: str = "any"
+    min_impact_per_metric: tuple[tuple[str, float], ...] = ()
 
     @classmethod
     def from_mapping(
@@ -100,14 +107,22 @@ class DetectorSettings:
         base : DetectorSettings, optional
             Settings the table overrides.
         """
-        known = {f.name: f for f in fields(cls)}
+        known = {f.name: f for f in fields(cls) if f.name != "min_impact_per_metric"}
         values = dataclasses.asdict(base) if base is not None else {}
         for key, value in data.items():
             if key not in known:
                 raise InputError(
                     f"{where} key '{key}'", f"unknown setting (known: {', '.join(known)})"
                 )
+            if key == "min_impact" and isinstance(value, Mapping):
+                values["min_impact_per_metric"] = _per_metric(value, f"{where} key '{key}'")
+                values["min_impact"] = 0.0
+                continue
+            if key == "min_impact":
+                values["min_impact_per_metric"] = ()
             values[key] = _coerce(key, value, known[key].type, where)
+        values["min_impact_per_metric"] = tuple(
+            tuple(p) for p in values.get("min_impact_per_metric", ()))
         settings = cls(**values)
         settings.validate(where)
         return settings
@@ -149,8 +164,11 @@ class DetectorSettings:
             raise bad("sides", "must be 'up', 'down' or 'both'")
         if self.flatline_hours < 0 or self.flatline_hours == 1:
             raise bad("flatline_hours", "must be 0 (off) or at least 2")
-        if self.min_impact < 0:
+        if not self.min_impact >= 0 or not all(v >= 0 for _, v in self.min_impact_per_metric):
             raise bad("min_impact", "must be zero or positive")
+        if not all(math.isfinite(v) for _, v in self.min_impact_per_metric) or not math.isfinite(
+                self.min_impact):
+            raise bad("min_impact", "must be finite (an infinite minimum impact never alerts)")
         if self.combine not in COMBINE_RULES and not (
             self.combine.isdigit() and int(self.combine) >= 1
         ):
@@ -171,6 +189,10 @@ class DetectorSettings:
             return n
         return min(int(self.combine), n)
 
+    def impact_for(self, metric: str) -> float:
+        """The minimum impact of `metric` (its own, else `min_impact`)."""
+        return dict(self.min_impact_per_metric).get(metric, self.min_impact)
+
     def decomposition_key(self) -> tuple:
         """The settings a remainder stream depends on (cache key for decompositions)."""
         return (
@@ -184,8 +206,21 @@ class DetectorSettings:
         )
 
     def to_table(self) -> dict[str, Any]:
-        """Plain dict for writing to TOML."""
-        return dataclasses.asdict(self)
+        """Plain dict for writing to TOML (per-metric minimum impacts as a table)."""
+        out = dataclasses.asdict(self)
+        per_metric = out.pop("min_impact_per_metric")
+        if per_metric:
+            out["min_impact"] = {m: float(v) for m, v in per_metric}
+        return out
+
+
+def _per_metric(value: Mapping[str, Any], loc: str) -> tuple[tuple[str, float], ...]:
+    out = []
+    for metric, v in value.items():
+        if isinstance(v, bool) or not isinstance(v, int | float):
+            raise InputError(f"{loc} metric '{metric}'", f"must be a number, but got {v!r}")
+        out.append((str(metric), float(v)))
+    return tuple(out)
 
 
 def _coerce(key: str, value: Any, typ: Any, where: str) -> Any:
@@ -238,11 +273,13 @@ class DetectorConfig:
     groups: tuple[DetectorGroup, ...] = ()
 
     def for_series(self, level: str, metric: str) -> DetectorSettings:
-        """Settings for one level and metric: the first matching group wins."""
-        for group in self.groups:
-            if group.matches(level, metric):
-                return group.settings
-        return self.base
+        """Settings for one level and metric: the first matching group wins; its
+        minimum impact is the metric's own."""
+        settings = next((g.settings for g in self.groups if g.matches(level, metric)), self.base)
+        if settings.min_impact_per_metric:
+            return replace(settings, min_impact=settings.impact_for(metric),
+                           min_impact_per_metric=())
+        return settings
 
     @classmethod
     def from_table(cls, table: Mapping[str, Any], where: str) -> DetectorConfig:

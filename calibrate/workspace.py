@@ -501,8 +501,11 @@ def _check_search_groups(ws: Workspace, name: str) -> None:
         return
     known = {"level": tuple(ws.levels), "metric": ws.metric_names,
              "group": (*named, BASE_GROUP)}.get(s.tune_by)
-    for group in s.group_params:
+    for group, params in s.group_params.items():
         where = f"{name} [search.groups.{group}]"
+        # a watched metric's own minimum-impact range, whatever the groups (its units)
+        if group in ws.metric_names and all(p.name == "min_impact" for p in params):
+            continue
         if known is None:
             raise InputError(where, 'per-group ranges need tune_by = "level", "metric" or '
                              '"group"')

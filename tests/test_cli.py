@@ -15,7 +15,7 @@ from tests.synthetic import make_workspace
 
 ALERT_COLUMNS = [
     "alert_id", "level", "market", "advertiser", "campaign", "metric", "start", "end",
-    "peak_hour", "peak_score", "value", "expected", "impact", "team", "detectors",
+    "raised_hour", "peak_hour", "peak_score", "value", "expected", "impact", "team", "detectors",
 ]
 SCORE_COLUMNS = [
     "level", "market", "advertiser", "campaign", "metric", "hour", "value", "expected",

@@ -4,12 +4,16 @@ The reference below is the rule of calibrate/detectors.py written out for one k 
 time: an hour is flagged when (score > k) + flatline >= min_detectors (a NaN score
 never passes the fence); consecutive flagged hours of a series form one episode; its
 peak is the highest non-NaN score (first hour on ties; NaN and the start hour if none),
-its value/expected are summed hour by hour, its bits OR the detectors that fired.
+its value/expected are summed hour by hour, its bits OR the detectors that fired. It is
+raised at the first hour where |impact so far| (the running sum of value - expected)
+reaches the minimum impact (its first hour when that is 0), and kept only if raised
+(the online alert rule of the project's README, "The detector, exactly").
 """
 
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -19,7 +23,6 @@ from calibrate.incidents import Incidents
 from calibrate.replay import MetricScores, sweep, sweep_codes, sweep_runs
 from calibrate.scoring import (
     impact_curves,
-    impact_curves_of_runs,
     match,
     multiplier_curve,
     period_filter,
@@ -44,18 +47,22 @@ def reference_episodes(score, flat, value, expected, ks, min_det, min_impact=0.0
                     t += 1
                     continue
                 start, peak, peak_h, v, e, bits = t, math.nan, t, 0.0, 0.0, 0
+                so_far, raised = 0.0, -1
                 while t < n and flagged(s, t):
                     sc = float(score[s, t])
                     if not math.isnan(sc) and (math.isnan(peak) or sc > peak):
                         peak, peak_h = sc, t
                     v += float(value[s, t])
                     e += float(expected[s, t])
+                    so_far += float(value[s, t]) - float(expected[s, t])
+                    if raised < 0 and (min_impact <= 0 or abs(so_far) >= min_impact):
+                        raised = t
                     bits |= (1 if sc > k else 0) | (2 if flat[s, t] else 0)
                     t += 1
-                if lo <= start < hi and (min_impact <= 0 or abs(v - e) >= min_impact):
-                    ints.append((g, s, start, t, peak_h, bits))
+                if raised >= 0 and lo <= raised < hi:
+                    ints.append((g, s, start, t, peak_h, bits, raised))
                     floats.append((peak, v, e))
-    return (np.array(ints, dtype=np.int64).reshape(-1, 6),
+    return (np.array(ints, dtype=np.int64).reshape(-1, 7),
             np.array(floats, dtype=np.float64).reshape(-1, 3))
 
 
@@ -125,10 +132,28 @@ def test_flatline_only_hours_and_no_flags() -> None:
         np.testing.assert_array_equal(got_f, ref_f)
     # min_detectors 1: hours 0-1 flatline only (NaN peak at the start hour), 3-4 one run
     got_i, got_f = episodes_grid(score, flat, value, expected, ks, 1)
-    assert got_i[got_i[:, 0] == 2].tolist() == [[2, 0, 0, 2, 0, 2], [2, 0, 3, 5, 3, 2]]
+    assert got_i[got_i[:, 0] == 2].tolist() == [[2, 0, 0, 2, 0, 2, 0], [2, 0, 3, 5, 3, 2, 3]]
     assert np.isnan(got_f[0, 0]) and got_f[1, 0] == 4.0
     none_i, none_f = episodes_grid(score, np.zeros_like(flat), value, expected, [9.0], 1)
-    assert none_i.shape == (0, 6) and none_f.shape == (0, 3)
+    assert none_i.shape == (0, 7) and none_f.shape == (0, 3)
+
+
+def test_raised_hour_is_where_impact_so_far_reaches_the_minimum() -> None:
+    """Hand-worked: one episode over hours 2..5 with impacts +3, -1, +4, +2; impact so far
+    3, 2, 6, 8. Minimum impact 3 raises it at hour 2, 5 at hour 4, 8 at hour 5, 9 never;
+    the episode's start stays hour 2 whatever hour raised it."""
+    score = np.array([[0.0, 0.0, 5.0, 5.0, 5.0, 5.0, 0.0]])
+    flat = np.zeros_like(score, dtype=bool)
+    value = np.array([[0.0, 0.0, 3.0, -1.0, 4.0, 2.0, 0.0]])
+    expected = np.zeros_like(value)
+    for m, raised in ((0.0, 2), (3.0, 2), (5.0, 4), (8.0, 5)):
+        got_i, _ = episodes_grid(score, flat, value, expected, [1.0], 1, m)
+        assert got_i.tolist() == [[0, 0, 2, 6, 2, 1, raised]]
+    got_i, _ = episodes_grid(score, flat, value, expected, [1.0], 1, 9.0)
+    assert len(got_i) == 0
+    # the raised hour decides the period an alert belongs to
+    got_i, _ = episodes_grid(score, flat, value, expected, [1.0], 1, 5.0, (3, 7))
+    assert got_i[:, 6].tolist() == [4]
 
 
 def test_runs_never_join_across_series() -> None:
@@ -186,7 +211,7 @@ def naive_pairs(ep, inc, early: int, late: int) -> list[tuple[int, int]]:
         for a in range(len(ep))
         if level[a] == inc.level[i] and ep.series[a] == inc.series[i]
         and inc.metric[i] in ("", metric[a])
-        and ep.start[a] < inc.end[i] + late and ep.end[a] > inc.start[i] - early
+        and inc.start[i] - early <= ep.raised[a] < inc.end[i] + late
     ]
 
 
@@ -220,22 +245,37 @@ def test_coded_sweep_scores_like_the_text_table(seed: int) -> None:
 
 
 @pytest.mark.parametrize("seed", range(3))
-def test_run_table_curves_equal_the_written_rows(seed: int) -> None:
-    """Reference: `impact_curves` of the rows `sweep_codes` writes (itself checked against
-    figures() one (k, min impact) at a time in test_scoring); the run table must count
-    the same without writing them. The grid is given unsorted to exercise `order`."""
+def test_run_table_curves_equal_replays_at_each_minimum_impact(seed: int) -> None:
+    """Reference: for each minimum-impact level, `multiplier_curve` of the rows
+    `sweep_codes` writes with every series at that level's minimum impact (the online
+    rule, checked against the loop above); the run table must count the same from one
+    sweep. Per-metric grids differ in units; the multiplier grid is unsorted to
+    exercise `order`."""
     scores = random_scores(seed)
     ks = np.array([3.0, 0.8, 6.0, 1.5])
     inc = random_incidents(seed)
-    ms = np.array([0.0, 0.5, 2.0, 5.0])
+    grids = {"clicks": np.array([0.0, 5.0, 40.0, 120.0]),
+             "ctr": np.array([0.0, 2.0, 30.0, 90.0]),
+             "spend": np.array([0.0, 20.0, 60.0, 200.0])}
     analysts = {"red": 2, "green": 1, "gray": 3}
-    rows = sweep_codes(scores, ks, ROUTES, apply_min_impact=False, start_hours=(10, 100))
-    runs = sweep_runs(scores, ks, ROUTES, apply_min_impact=False, start_hours=(10, 100))
-    assert len(runs.runs) < len(rows)  # runs span several multipliers
-    a = impact_curves(rows, ks, ms, inc, 1, 2, analysts, 3.0)
-    b = impact_curves_of_runs(runs, ks, ms, inc, 1, 2, analysts, 3.0)
-    assert max(c.alerts.max() for c in a) > 0 and max(c.caught.max() for c in a) > 0
-    for ca, cb in zip(a, b, strict=True):
-        assert ca.teams == cb.teams
-        for f in ("caught", "alerts", "true_alerts", "team_alerts", "team_false_alerts"):
+    runs = sweep_runs(scores, ks, ROUTES, start_hours=(10, 100), min_impacts=grids)
+    curves, caught = impact_curves(runs, ks, inc, 1, 2, analysts, 3.0)
+    # runs span several multipliers
+    assert len(runs.runs) < len(sweep_codes(scores, ks, ROUTES, apply_min_impact=False,
+                                            start_hours=(10, 100)))
+    moved = False
+    for lv, cb in enumerate(curves):
+        at_level = {key: replace(ms, settings=replace(ms.settings, min_impact=grids[key[1]][lv]))
+                    for key, ms in scores.items()}
+        rows = sweep_codes(at_level, ks, ROUTES, start_hours=(10, 100))
+        ca = multiplier_curve(rows, ks, inc, 1, 2, analysts, 3.0)
+        for f in ("caught", "alerts", "true_alerts"):
             np.testing.assert_array_equal(getattr(ca, f), getattr(cb, f))
+        # the run table lists the teams of every run; a team raising nothing here shows 0
+        for j, t in enumerate(cb.teams):
+            for f in ("team_alerts", "team_false_alerts"):
+                want = getattr(ca, f)[:, ca.teams.index(t)] if t in ca.teams else 0
+                np.testing.assert_array_equal(getattr(cb, f)[:, j], want)
+        np.testing.assert_array_equal(caught[lv].sum(axis=1), ca.caught)
+        moved |= lv > 0 and bool((cb.alerts != curves[0].alerts).any())
+    assert moved and max(c.caught.max() for c in curves) > 0

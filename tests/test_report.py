@@ -140,15 +140,17 @@ def test_impact_curve_agrees_with_replays_at_each_minimum_impact(ses, chosen_con
     rep = _replay(ses, chosen_config)
     data = build_report_data(ses, rep, first_hour=200, split_hour=SPLIT)
     imp = data.impact
-    assert imp is not None and imp.chosen_k == chosen_config.base.min_impact
-    assert imp.ks[0] == 0.0 and all(np.diff(imp.ks) > 0)
+    assert imp is not None and imp.chosen_k == 0.0 == chosen_config.base.min_impact
+    assert imp.ks[0] == 0.0 and all(np.diff(imp.ks) >= 0)
+    # each metric moves in its own units: the points differ between metrics
+    assert imp.impacts[-1]["impressions"] != imp.impacts[-1]["clicks"]
     for j in (0, len(imp.ks) // 2, len(imp.ks) - 1):
-        cfg = chosen_config.with_base(min_impact=imp.ks[j])
+        cfg = chosen_config.with_base(min_impact_per_metric=tuple(imp.impacts[j].items()))
         f = api.score_episodes(ses, _replay(ses, cfg).episodes, data.periods[0].start_hour,
-                               SPLIT)
+                               SPLIT, first_scored=0)
         assert imp.alerts[j] == f.alerts
         assert imp.recall[j] == pytest.approx(f.recall)
-    # a larger minimum impact never adds alerts
+    # a larger minimum impact never adds alerts (an episode is raised later or never)
     assert all(np.diff(imp.alerts) <= 0) and imp.alerts[-1] < imp.alerts[0]
     lv = next(iter(ses.history.levels))
     from calibrate.settings import DetectorGroup
@@ -178,13 +180,15 @@ def test_group_impact_curves_agree_with_replays(ses, chosen_config) -> None:
     assert set(curves) == {"top", "base"}
     start = data.periods[0].start_hour
     for name, cd in curves.items():
-        assert cd.chosen_k == (20.0 if name == "top" else chosen_config.base.min_impact)
-        for j in (0, cd.ks.index(cd.chosen_k), len(cd.ks) - 1):
-            m = cd.ks[j]
+        chosen = [j for j, p in enumerate(cd.impacts)
+                  if set(p.values()) == {20.0 if name == "top" else 0.0}]
+        assert chosen
+        for j in (0, chosen[0], len(cd.ks) - 1):
+            per_metric = tuple(cd.impacts[j].items())
             cfg = (replace(grouped, groups=(replace(group, settings=replace(
-                group.settings, min_impact=m)),)) if name == "top"
-                else grouped.with_base(min_impact=m))
-            f = api.score_episodes(ses, _replay(ses, cfg).episodes, start, SPLIT)
+                group.settings, min_impact_per_metric=per_metric)),)) if name == "top"
+                else grouped.with_base(min_impact_per_metric=per_metric))
+            f = api.score_episodes(ses, _replay(ses, cfg).episodes, start, SPLIT, first_scored=0)
             assert cd.alerts[j] == f.alerts
             assert cd.recall[j] == pytest.approx(f.recall)
             for t, rate in zip(cd.teams, cd.team_rate, strict=True):

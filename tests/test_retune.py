@@ -132,13 +132,20 @@ def test_says_why_when_false_alarms_stay(ses, previous, reviewed, tmp_path: Path
         assert why.startswith(f"{row['alert_id']}: dropping it needs a fence multiplier above")
         assert "or a minimum impact above" in why and "miss rate there" in why
     # reference for the minimum-impact lever: a replay with every series' minimum impact
-    # just above the alert's |impact| no longer raises it, and one at it still does
-    # (the detector keeps |impact| >= min_impact)
+    # just above the largest |impact so far| of the alert's hours (summed from the
+    # per-hour scores) no longer raises it, and one at it still does
     ids = {r["alert_id"] for r in c.still_raised}
     marked = df[df["alert_id"].isin(ids)]
-    cols = ["level", *ses.history.key_columns, "metric", "start", "end"]
+    cols = ["level", *ses.history.key_columns, "metric", "start"]
+    scores = api.replay_session(ses, previous, executor=SerialExecutor(),
+                                progress=False).scores_frame()
     for _, row in marked.iterrows():
-        size = abs(float(row["impact"]))
+        keys = (scores["level"] == row["level"]) & (scores["metric"] == row["metric"])
+        for col in ses.history.key_columns:
+            keys &= scores[col].astype(str) == str(row[col])
+        hours = scores[keys & (scores["hour"] >= pd.Timestamp(row["start"]))
+                       & (scores["hour"] < pd.Timestamp(row["end"]))].sort_values("hour")
+        size = float(np.max(np.abs(np.cumsum(hours["value"] - hours["expected"]))))
         for m, raised in ((float(np.nextafter(size, np.inf)), False), (size * (1 - 1e-9), True)):
             rep = api.replay_session(ses, previous.with_base(min_impact=m),
                                      executor=SerialExecutor(), progress=False)

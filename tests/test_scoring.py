@@ -26,7 +26,6 @@ from calibrate.scoring import (
     breakdown,
     episodes_from_alerts_frame,
     figures,
-    impact_curves,
     intervals_mask,
     match,
     multiplier_curve,
@@ -43,18 +42,21 @@ from tests.test_incidents import make_history, make_workspace
 
 
 def eps(rows: list[tuple]) -> Episodes:
-    """Episodes from (level, series, metric, start, end[, team[, grid]]) tuples."""
+    """Episodes from (level, series, metric, start, end[, team[, grid[, raised]]]) tuples
+    (raised defaults to start: a minimum impact of 0)."""
     n = len(rows)
     if n == 0:
         return Episodes.empty()
     full = [r + ("",) * (6 - len(r)) if len(r) < 6 else r for r in rows]
-    full = [r if len(r) == 7 else r + (0,) for r in full]
+    full = [r if len(r) >= 7 else r + (0,) for r in full]
+    full = [r if len(r) == 8 else r + (r[3],) for r in full]
     obj = lambda i: np.array([r[i] for r in full], dtype=object)  # noqa: E731
     i64 = lambda i: np.array([r[i] for r in full], dtype=np.int64)  # noqa: E731
     return Episodes(
         level=obj(0), series=i64(1), metric=obj(2), start=i64(3), end=i64(4),
         peak_hour=i64(3), peak_score=np.full(n, 5.0), value=np.ones(n), expected=np.zeros(n),
         detectors=np.array(["fence"] * n, dtype=object), team=obj(5), grid=i64(6),
+        raised=i64(7),
     )
 
 
@@ -110,13 +112,44 @@ def test_alert_straddling_two_incidents() -> None:
     inc = Incidents.make([C, C], [0, 0], [10, 18], [15, 25])
     ep = eps([(C, 0, "ctr", 13, 20)])
     m = match(ep, inc, 0, 0)
-    # by hand: both incidents caught by the one alert; it is one true alert
-    assert m.caught.tolist() == [True, True]
-    assert m.delay.tolist() == [3.0, -5.0]  # 13 - 10, 13 - 18
-    assert m.incidents_of(0).tolist() == [0, 1]
+    # by hand: raised at 13, inside [10, 15) only: it catches the first incident; it is
+    # still running when the second starts (hour 18), which is "already alerting", not
+    # caught (a long episode cannot catch what begins after it was raised)
+    assert m.caught.tolist() == [True, False]
+    assert m.already_alerting.tolist() == [False, True]
+    assert m.delay[0] == 3.0 and math.isnan(m.delay[1])  # 13 - 10
+    assert m.incidents_of(0).tolist() == [0]
     assert m.alert_incident.tolist() == [0]
     f = figures(m, ep, inc, {}, n_days=1.0)
-    assert (f.caught, f.alerts, f.true_alerts, f.false_alerts) == (2, 1, 1, 0)
+    assert (f.caught, f.alerts, f.true_alerts, f.false_alerts) == (1, 1, 1, 0)
+    assert f.already_alerting == 1
+
+
+# Hand-worked table of the catch rule (README "Matching alerts to incidents"): incident
+# on campaign #0, hours [20, 30), early 2, late 3, so its window is [18, 33). Each row:
+# alert start, end, raised hour -> caught, already alerting, delay (raised - 20).
+CATCH_TABLE = [
+    (10, 12, 10, False, False, None),  # over before the incident: neither
+    (10, 25, 10, False, True, None),   # raised at 10, still running at 20: already alerting
+    (10, 25, 19, True, False, -1),     # same episode raised at 19 (inside early 2): caught
+    (10, 19, 17, False, False, None),  # raised at 17 < 18, over at 19 <= 20: neither
+    (18, 19, 18, True, False, -2),     # raised on the window's first hour: caught
+    (25, 40, 25, True, False, 5),      # raised during the incident: caught
+    (25, 40, 34, False, False, None),  # started inside but raised at 34 >= 33: neither
+    (32, 35, 32, True, False, 12),     # raised on the window's last hour (late 3): caught
+    (33, 35, 33, False, False, None),  # raised at 33: one hour past the window
+]
+
+
+@pytest.mark.parametrize("row", CATCH_TABLE)
+def test_catch_rule_hand_worked_table(row: tuple) -> None:
+    start, end, raised, caught, already, delay = row
+    inc = Incidents.make([C], [0], [20], [30])
+    m = match(eps([(C, 0, "clicks", start, end, "", 0, raised)]), inc, 2, 3)
+    assert m.caught.tolist() == [caught]
+    assert m.already_alerting.tolist() == [already]
+    assert m.alert_true.tolist() == [caught]
+    assert (m.delay[0] == delay) if delay is not None else math.isnan(m.delay[0])
 
 
 def test_false_alert_on_another_metric_and_blank_metric_incident() -> None:
@@ -181,8 +214,8 @@ def naive_match(ep: Episodes, inc: Incidents, early: int, late: int) -> tuple[li
         for j in range(len(ep)):
             same = ep.level[j] == inc.level[i] and ep.series[j] == inc.series[i]
             metric_ok = inc.metric[i] == "" or inc.metric[i] == ep.metric[j]
-            overlap = ep.start[j] < inc.end[i] + late and ep.end[j] > inc.start[i] - early
-            if same and metric_ok and overlap:
+            inside = inc.start[i] - early <= ep.raised[j] < inc.end[i] + late
+            if same and metric_ok and inside:
                 caught[i] = true[j] = True
     return caught, true
 
@@ -456,47 +489,6 @@ def test_curve_equals_figures_one_k_at_a_time(seed: int) -> None:
                 row["alerts_per_analyst_day"], nan_ok=True)
             assert curve.false_alerts_per_analyst_day[g, j] == pytest.approx(
                 row["false_alerts_per_analyst_day"], nan_ok=True)
-
-
-@pytest.mark.parametrize("seed", range(3))
-def test_impact_curves_equal_figures_of_the_kept_episodes(seed: int) -> None:
-    n_grid = 4
-    ks = np.linspace(1.0, 4.0, n_grid)
-    ep, inc = random_tables(seed, n_ep=500, n_grid=n_grid)
-    rng = np.random.default_rng(seed)
-    # impacts of both signs, some exactly on a grid value (kept: |impact| >= m), one NaN
-    ep.value = rng.choice([-3.0, -1.0, 0.0, 0.5, 1.0, 2.0, 7.0], len(ep)) + 0.0
-    ep.value[::7] = rng.normal(0.0, 4.0, len(ep.value[::7]))
-    ep.value[5] = np.nan
-    # a grid below 0 too: the API allows it, and every m <= 0 keeps everything
-    for ms in (np.array([0.0, 0.5, 1.0, 2.5, 7.0]), np.array([-1.0, 0.0, 1.0])):
-        curves = impact_curves(ep, ks, ms, inc, 1, 2, TEAMS, n_days=12.5)
-        assert len(curves) == len(ms)
-        for lv, m in enumerate(ms):
-            c = curves[lv]
-            for g in range(n_grid):
-                # reference: the detector's rule (calibrate/detectors.py, _runs_kernel:
-                # kept when min_impact <= 0 or |impact| >= min_impact, so a NaN impact
-                # only at m <= 0), then figures() on what is left, one (k, m) at a time
-                size = np.abs(ep.impact)
-                keep = (ep.grid == g) & ((size >= m) | (m <= 0))
-                ep_km = ep.take(keep)
-                f = figures(match(ep_km, inc, 1, 2), ep_km, inc, TEAMS, n_days=12.5)
-                assert c.caught[g] == f.caught
-                assert (c.alerts[g], c.false_alerts[g]) == (f.alerts, f.false_alerts)
-                assert c.true_alerts[g] == f.alerts - f.false_alerts
-                assert c.miss_rate[g] == pytest.approx(f.miss_rate)
-                for j, team in enumerate(c.teams):
-                    row = f.per_team.loc[team] if team in f.per_team.index else None
-                    assert c.team_alerts[g, j] == (0 if row is None else row["alerts"])
-                    assert c.team_false_alerts[g, j] == (
-                        0 if row is None else row["false_alerts"])
-
-
-def test_impact_curves_need_an_ascending_grid() -> None:
-    ep, inc = random_tables(0, n_ep=10)
-    with pytest.raises(ValueError, match="ascending"):
-        impact_curves(ep, np.array([1.0]), np.array([1.0, 1.0]), inc, 0, 0, TEAMS, 1.0)
 
 
 def brute_force(curve: Curve, max_miss: float, budgets: dict[str, float]) -> float | None:

@@ -24,6 +24,7 @@ import pytest
 from calibrate import api, search
 from calibrate.cli import main
 from calibrate.episodes import Episodes
+from calibrate.errors import InputError
 from calibrate.executors import SerialExecutor
 from calibrate.incidents import Incidents
 from calibrate.outputs import load_config, load_provenance
@@ -112,21 +113,43 @@ def test_solved_multiplier_and_min_impact_equal_brute_force(ses):
     solved = []
     for goal in (Goal(max_miss_rate=0.0, max_alerts_per_analyst_day=3.0),
                  Goal(max_miss_rate=0.4, max_alerts_per_analyst_day=1e6)):
-        ev = search.Evaluator(ses, rp, ks, first, split, goal, min_impacts=ms).evaluate(config)
+        ev = search.Evaluator(ses, rp, ks, first, split, goal,
+                              min_impacts=_grids(ses, ms)).evaluate(config)
         best = None
-        for m in ms:
-            cfg = config.with_base(min_impact=float(m))
+        for lv in range(len(ms)):
+            cfg = _at(ses, config, ms, lv)
             ref = _brute_force_k(ses, cfg, ks, first, split, goal)
             if ref is not None:
-                rank = (ref[1].alerts, -ref[0], float(m))
+                rank = (ref[1].alerts, -ref[0], lv)
                 best = min(best, (rank, ref), key=lambda b: b[0]) if best else (rank, ref)
         assert best is not None and ev.feasible
-        (alerts, neg_k, m), (_, f) = best
-        assert (ev.k, ev.min_impact) == (-neg_k, m)
+        (alerts, neg_k, lv), (_, f) = best
+        want = {m: float(g[lv]) for m, g in _grids(ses, ms).items()}
+        assert (ev.k, ev.min_impact) == (-neg_k, want)
         assert (ev.caught, ev.alerts) == (f.caught, f.alerts) == (ev.caught, alerts)
-        solved.append((ev.k, ev.min_impact))
-    # the two goals pick different pairs, one of them filtering on impact
-    assert solved[0] != solved[1] and max(m for _, m in solved) > 0
+        solved.append((ev.k, lv))
+    # the two goals pick different pairs
+    assert solved[0] != solved[1]
+
+
+# per-metric ranges of the solved minimum impact ([search.groups.METRIC]), and a list
+# that has Optuna sample it (not solved)
+OWN_RANGES = ("\n[search.groups.impressions]\nmin_impact = { low = 0.0, high = 800.0 }"
+              "\n[search.groups.clicks]\nmin_impact = { low = 0.0, high = 40.0 }")
+SEARCHED_IMPACT = "\nmin_impact = [0.0]"
+
+
+def _grids(ses, ms):
+    """Per-metric minimum-impact grids for the evaluator; impressions move on `ms` and
+    clicks on half of it (their own units), so level l is one pair of values."""
+    return {m: np.asarray(ms, dtype=float) * (1.0 if m == "impressions" else 0.5)
+            for m in ses.ws.metric_names}
+
+
+def _at(ses, config, ms, lv):
+    """`config` with every metric at minimum-impact level `lv` of `_grids`."""
+    return config.with_base(min_impact_per_metric=tuple(
+        (m, float(g[lv])) for m, g in _grids(ses, ms).items()))
 
 
 def _naive_front(caught, load):
@@ -192,14 +215,14 @@ def test_trade_off_front_equals_brute_force_replays(ses):
     ms = np.array([0.0, 30.0, 2000.0])
     goal = Goal(max_miss_rate=0.25, max_alerts_per_analyst_day=1e6)
     rp = api.make_replayer(ses, engine="serial", progress=False)
-    ev = search.Evaluator(ses, rp, ks, first, split, goal, min_impacts=ms).evaluate(
-        ses.ws.detector)
+    ev = search.Evaluator(ses, rp, ks, first, split, goal,
+                          min_impacts=_grids(ses, ms)).evaluate(ses.ws.detector)
     fixed = search.Evaluator(ses, rp, ks, first, split, goal).evaluate(ses.ws.detector)
     pairs = []
-    for m in ms:
+    for lv, m in enumerate(ms):
         for k in ks:
-            cfg = ses.ws.detector.with_base(fence_multiplier=float(k), min_impact=float(m))
-            f = api.score_episodes(ses, rp.replay(cfg).episodes, first, split)
+            cfg = _at(ses, ses.ws.detector, ms, lv).with_base(fence_multiplier=float(k))
+            f = api.score_episodes(ses, rp.replay(cfg).episodes, first, split, first_scored=0)
             teams = f.per_team[f.per_team["analysts"] > 0]
             load = max(teams["alerts_per_analyst_day"], default=0.0)
             pairs.append((f.caught, float(load), float(k), float(m)))
@@ -207,7 +230,8 @@ def test_trade_off_front_equals_brute_force_replays(ses):
     assert [(c, pytest.approx(x)) for c, x, _, _ in ev.front] == ref
     assert len(ref) >= 3  # more than the solved point: the front spans recall levels
     for c, x, k, m in ev.front:  # each point replays to what it claims
-        assert any(p[0] == c and p[1] == pytest.approx(x) and p[2:] == (k, m) for p in pairs)
+        assert any(p[0] == c and p[1] == pytest.approx(x)
+                   and p[2:] == (k, m["impressions"]) for p in pairs)
     # without a minimum-impact grid, the front is that of the config's own impact (0)
     own = [(c, x) for c, x, _, m in pairs if m == 0.0]
     assert [(c, pytest.approx(x)) for c, x, _, m in fixed.front] == _naive_front(
@@ -224,17 +248,17 @@ def test_infeasible_solved_pair_is_the_closest_fixed_minimum_impact(ses):
     ms = np.array([0.0, 5.0, 30.0, 200.0])
     rp = api.make_replayer(ses, engine="serial", progress=False)
     goal = Goal(max_miss_rate=0.0, max_alerts_per_analyst_day=0.01)  # no budget is met
-    ev = search.Evaluator(ses, rp, ks, first, split, goal, min_impacts=ms).evaluate(
-        ses.ws.detector)
-    fixed = [(max(e.miss_rate - goal.max_miss_rate, 0.0), e.max_budget_ratio, -e.k, m, e)
-             for m in ms
+    ev = search.Evaluator(ses, rp, ks, first, split, goal,
+                          min_impacts=_grids(ses, ms)).evaluate(ses.ws.detector)
+    fixed = [(max(e.miss_rate - goal.max_miss_rate, 0.0), e.max_budget_ratio, -e.k, lv, e)
+             for lv in range(len(ms))
              for e in [search.Evaluator(ses, rp, ks, first, split, goal).evaluate(
-                 ses.ws.detector.with_base(min_impact=float(m)))]]
-    *_, m, ref = min(fixed, key=lambda f: f[:4])
+                 _at(ses, ses.ws.detector, ms, lv))]]
+    *_, lv, ref = min(fixed, key=lambda f: f[:4])
     assert not ev.feasible and not ref.feasible
     assert (ev.k, ev.min_impact, ev.alerts, ev.max_budget_ratio) == (
-        ref.k, m, ref.alerts, ref.max_budget_ratio)
-    assert ev.max_budget_ratio < fixed[0][1]  # filtering on impact lowers the load here
+        ref.k, {m: float(g[lv]) for m, g in _grids(ses, ms).items()}, ref.alerts,
+        ref.max_budget_ratio)
 
 
 def test_known_false_alerts_with_a_solved_min_impact(ses):
@@ -250,45 +274,58 @@ def test_known_false_alerts_with_a_solved_min_impact(ses):
     kf = Incidents.make(level=eps.level[:3], series=eps.series[:3], start=eps.start[:3],
                         end=eps.end[:3], metric=eps.metric[:3])
     goal = Goal(max_miss_rate=1.0, max_alerts_per_analyst_day=1e6)
-    ev = search.Evaluator(ses, rp, ks, first, split, goal, kf, min_impacts=ms).evaluate(config)
-    chosen = config.with_base(fence_multiplier=ev.k, min_impact=ev.min_impact)
+    ev = search.Evaluator(ses, rp, ks, first, split, goal, kf,
+                          min_impacts=_grids(ses, ms)).evaluate(config)
+    chosen = config.with_base(fence_multiplier=ev.k, min_impact_per_metric=tuple(
+        ev.min_impact.items()))
     got = period_filter(rp.replay(chosen).episodes, first, split)
     expected = int(match(got, kf, 0, 0).alert_true.sum())
     assert ev.alerts == len(got)
-    assert ev.known_false_alerts == expected >= 1 and ev.min_impact == 30.0
+    assert ev.known_false_alerts == expected >= 1
+    assert ev.min_impact == {"impressions": 30.0, "clicks": 15.0}
     analysts = sum(ses.analysts.values())
     assert ev.value == pytest.approx(
         (len(got) + search.KNOWN_FALSE_PENALTY * expected) / (analysts * (split - first) / 24))
 
 
-def test_min_impact_is_solved_for_a_float_range_per_group_too(tmp_path, monkeypatch):
-    ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
-    ses = api.open_session(make_workspace(tmp_path / "a", search=ranged))
-    assert search.solved_min_impact(ses) is not None
+def test_min_impact_is_solved_per_metric_in_its_own_units(tmp_path, monkeypatch):
+    ses = api.open_session(make_workspace(tmp_path / "a", search=SEARCH))
+    assert search.solved_min_impact(ses)  # solved by default
     assert "min_impact" not in {p.name for p in search.build_space(ses)}
-    # round grid values, today's 0 included
-    grid = search.impact_grid(search.solved_min_impact(ses), 0.0)
-    assert grid[0] == 0.0 and grid[-1] == 800.0 and 1.5 in grid and 700.0 in grid
+    split = ses.history.n_hours - 168
+    ranges = search.impact_ranges(ses, None, split)
+    # by default each metric from 0 to its median |hourly value| on the tuning hours only
+    for m in ("impressions", "clicks"):
+        vals = np.concatenate([np.abs(ls.values[m][:, :split]).ravel()
+                               for ls in ses.history.levels.values()])
+        assert ranges[m] == (0.0, float(np.nanmedian(vals)))
+    assert ranges["impressions"][1] > 5 * ranges["clicks"][1]  # different units
+    grids = search.impact_grids(ranges, [{"impressions": 0.0, "clicks": 0.0}])
+    assert len(grids["impressions"]) == len(grids["clicks"]) == len(search.relative_grid())
+    assert grids["clicks"][0] == 0.0 and grids["clicks"][-1] == pytest.approx(
+        ranges["clicks"][1], rel=1e-3)
+    # today's values off the grid get one more level of their own
+    more = search.impact_grids(ranges, [{"impressions": 7.0, "clicks": 0.3}])
+    assert [more[m][-1] for m in ("impressions", "clicks")] == [7.0, 0.3]
+    # one range for several metrics mixes units: refused with one line
+    ranged = SEARCH + "\nmin_impact = { low = 0.0, high = 800.0 }"
+    bad = api.open_session(make_workspace(tmp_path / "b", search=ranged))
+    with pytest.raises(InputError, match="mixes their units"):
+        search.impact_ranges(bad, None, split)
+    # a metric's own range ([search.groups.METRIC]) is used as it is
+    own = SEARCH + "\n[search.groups.clicks]\nmin_impact = { low = 1.0, high = 9.0 }"
+    ses_o = api.open_session(make_workspace(tmp_path / "c", search=own))
+    assert search.impact_ranges(ses_o, None, split)["clicks"] == (1.0, 9.0)
+    # listed values are searched, not solved
     solved_name = search.study_name_for(ses, ses.ws.goal, None)
-    listed = SEARCH + "\nmin_impact = [0.0, 50.0]"
-    ses = api.open_session(make_workspace(tmp_path / "b", search=listed))
-    assert search.solved_min_impact(ses) is None
-    assert "min_impact" in {p.name for p in search.build_space(ses)}
+    listed = SEARCH + "\nmin_impact = [0.0]"
+    ses_l = api.open_session(make_workspace(tmp_path / "d", search=listed))
+    assert not search.solved_min_impact(ses_l)
+    assert "min_impact" in {p.name for p in search.build_space(ses_l)}
     # a study whose trials sampled the minimum impact is never continued by one solving
     # it (its trials lack the solved value): the name records what is solved
-    ses_a = api.open_session(make_workspace(tmp_path / "a2", search=ranged))
-    assert search.study_name_for(ses_a, ses_a.ws.goal, None) == solved_name
-    monkeypatch.setattr(search, "solved_min_impact", lambda *a: None)  # as before solving
-    assert search.study_name_for(ses_a, ses_a.ws.goal, None) != solved_name
-    monkeypatch.undo()
-    # per group it is solved too, each group on its own grid; a group listing values
-    # ([search.groups.NAME]) has it searched
-    grouped = ranged + '\ntune_by = "level"\n[search.groups.market]\nmin_impact = [0.0, 9.0]'
-    ses = api.open_session(make_workspace(tmp_path / "c", search=grouped))
-    assert search.solved_min_impact(ses) is None  # no base group with tune_by level
-    assert set(search.solved_groups(ses)) == set(ses.history.levels) - {"market"} != set()
-    names = {p.name for p in search.build_space(ses)}
-    assert "campaign/min_impact" not in names and "market/min_impact" in names
+    monkeypatch.setattr(search, "solved_min_impact", lambda *a: False)
+    assert search.study_name_for(ses, ses.ws.goal, None) != solved_name
 
 
 def test_known_false_alerts_are_counted_and_penalised(ses):
@@ -390,10 +427,10 @@ NAMED = '\n[detector.group.leaf_volume]\nlevels = ["campaign"]\nmetrics = ["impr
 @pytest.mark.parametrize("tune_by", ["all", "all-solved", "level", "metric", "group",
                                      "group-solved"])
 def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
-    extra = PER_METRIC if tune_by == "metric" else ""
+    extra = PER_METRIC if tune_by == "metric" else SEARCHED_IMPACT
     if tune_by.endswith("-solved"):  # minimum impact solved with the multiplier(s)
         tune_by = tune_by.removesuffix("-solved")
-        extra = "\nmin_impact = { low = 0.0, high = 800.0 }"
+        extra = OWN_RANGES
     ws = make_workspace(tmp_path / "ws", search=SEARCH + f'\ntune_by = "{tune_by}"' + extra,
                         detector=NAMED if tune_by == "group" else "")
     ses = api.open_session(ws)
@@ -409,13 +446,14 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
         # the base's multiplier is solved as one more group
         assert res.config.base.fence_multiplier in set(res.trials["k[base]"])
         assert g.settings.fence_multiplier in set(res.trials["k[leaf_volume]"])
-        if extra:  # and so are both minimum impacts, each on its grid
-            assert "min_impact[base]" in res.trials.columns
-            assert res.config.base.min_impact in set(res.trials["min_impact[base]"])
-            assert g.settings.min_impact in set(res.trials["min_impact[leaf_volume]"])
+        if extra == OWN_RANGES:  # and so are both groups' per-metric minimum impacts
+            for m in ses.ws.metric_names:
+                assert res.config.base.impact_for(m) in set(res.trials[f"min_impact[base/{m}]"])
+            assert g.settings.impact_for("impressions") in set(
+                res.trials["min_impact[leaf_volume/impressions]"])
     if tune_by == "metric":
         assert [g.name for g in res.config.groups] == list(ses.ws.metric_names)
-        got = {g.name: g.settings.min_impact for g in res.config.groups}
+        got = {g.name: g.settings.impact_for(g.name) for g in res.config.groups}
         assert got["clicks"] <= 4.0 and max(got.values()) <= 200.0
     from calibrate.outputs import write_config
 
@@ -425,7 +463,14 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
     fresh = api.replay_session(api.open_session(ws), config, engine="serial", progress=False)
     tuning = api.score_episodes(ses, fresh.episodes, res.first_hour, res.split_hour)
     holdout = api.score_episodes(ses, fresh.episodes, res.split_hour, ses.history.n_hours)
-    assert tuning.to_json_dict() == res.tuning.to_json_dict()
+    # the tune also lists the incidents before its first scored hour (never catchable)
+    claimed_tuning = res.tuning.to_json_dict()
+    early = search.period_filter(ses.incidents, 0, res.first_hour)
+    assert claimed_tuning.pop("before_first_scored") == len(early)
+    assert claimed_tuning.pop("before_first_scored_ids") == list(early.incident_id)
+    got_tuning = tuning.to_json_dict()
+    del got_tuning["before_first_scored"], got_tuning["before_first_scored_ids"]
+    assert got_tuning == claimed_tuning
     assert holdout.to_json_dict() == res.holdout.to_json_dict()
     # and the figures the search itself claimed for the chosen trial (not a replay)
     claimed = res.trials.set_index("number").loc[res.provenance["chosen_trial"]]
@@ -447,7 +492,7 @@ def test_grouped_front_points_replay_to_what_they_claim(tmp_path, solved):
     that front (as the tune's own evaluator computes it), minus points other trials
     beat, and the chosen trial's solved point lies on or behind it; a report of the
     study reads the same list back."""
-    extra = "\nmin_impact = { low = 0.0, high = 800.0 }" if solved else ""
+    extra = OWN_RANGES if solved else SEARCHED_IMPACT
     ws = make_workspace(tmp_path / "ws", search=SEARCH + '\ntune_by = "level"' + extra)
     ses = api.open_session(ws)
     storage = str(tmp_path / "study.journal")
@@ -502,9 +547,10 @@ def test_group_ranges_replace_the_shared_ones_for_that_group_only(tmp_path):
     ses = api.open_session(ws)
     spec = {p.name: p.spec for p in search.build_space(ses)}
     # min_impact ranges are solved per group, each on its own range
-    solved = search.solved_groups(ses)
-    assert (solved["clicks"].low, solved["clicks"].high) == (0.0, 4.0)
-    assert solved["impressions"].high == 200.0
+    assert set(search.solved_groups(ses)) == {"clicks", "impressions"}
+    split = ses.history.n_hours - 168
+    assert search.impact_ranges(ses, "clicks", split) == {"clicks": (0.0, 4.0)}
+    assert search.impact_ranges(ses, "impressions", split)["impressions"][1] == 200.0
     # settings the group does not name come from the shared [search] keys
     assert spec["clicks/seasonal_span"].values == spec["impressions/seasonal_span"].values \
         == (7, 11)

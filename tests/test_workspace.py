@@ -169,7 +169,7 @@ BAD = [
      "[search.groups.campaign] key 'window'", "unknown searched setting"),
     ({"search": 'tune_by = "level"'}, "[search.groups.campaign]\nmin_impact = 3\n",
      "[search.groups.campaign] key 'min_impact'", "must be a list of values"),
-    ({"search": "trials = 3"}, "[search.groups.ctr]\nmin_impact = [1.0]\n",
+    ({"search": "trials = 3"}, "[search.groups.ctr]\nseasonal_span = [7]\n",
      "[search.groups.ctr]", 'per-group ranges need tune_by = "level", "metric" or "group"'),
     ({"search": 'groups = 3'}, "", "[search] key 'groups'", "must be a table of groups"),
     ({"search": 'tune_by = "group"'}, "", "[search] key 'tune_by'",
