@@ -42,7 +42,10 @@ class Stream:
 
 
 def _fill_window(window: np.ndarray) -> np.ndarray | None:
-    """Linear interpolation of NaN hours inside one fit window (edges held)."""
+    """Linear interpolation of NaN hours inside one fit window (edges held).
+
+    Reads only the window's own hours, none after its last: causal.
+    """
     ok = ~np.isnan(window)
     if ok.all():
         return window

@@ -2,6 +2,11 @@
 
 Pipeline stage 2. Everything downstream works on `History`: one `LevelSeries` per
 level, each holding (series x hours) float64 numpy arrays on one common UTC grid.
+
+Gap filling is causal: a missing hour (or blank cell) is filled from earlier hours
+only, so the value at hour t, and every roll-up and metric above it, is what an online
+detector has at hour t. Fill rules: `zero` (nothing happened) and `carry_forward`
+(the last known value; `interpolate` is its old name, still accepted).
 """
 
 from __future__ import annotations
@@ -36,8 +41,9 @@ class LevelSeries:
     keys : pandas.DataFrame
         One row per series (position = series index), columns `key_columns`, as str.
     values : dict of str to ndarray
-        metric name -> (n_series, n_hours) float64; measures summed from the rows,
-        derived metrics recomputed from the summed measures; NaN where undefined (0/0).
+        metric name -> (n_series, n_hours) float64; measures summed from the gap-filled
+        rows, derived metrics recomputed from the summed measures; NaN where undefined
+        (0/0).
     """
 
     level: str
@@ -94,7 +100,8 @@ def load_history(ws: Workspace) -> History:
     Parameters
     ----------
     ws : Workspace
-        Gives the source, measures (with fill rules), derived metrics and levels.
+        Gives the source, measures (with fill rules, see the module docstring),
+        derived metrics and levels.
 
     Returns
     -------
@@ -289,8 +296,8 @@ class RowParser:
             filled[m] = np.isnan(grid).sum(axis=1)
             if rule == "zero":
                 fill_zero(grid)
-            else:
-                fill_interpolate(grid)
+            else:  # "carry_forward", or its old name "interpolate"
+                fill_carry_forward(grid)
             grids[m] = grid
         del cell
 
@@ -385,30 +392,21 @@ def fill_zero(grid: np.ndarray) -> None:
     grid[np.isnan(grid)] = 0.0
 
 
-def fill_interpolate(grid: np.ndarray) -> None:
-    """Fill NaN cells of each row linearly in time, in place.
+def fill_carry_forward(grid: np.ndarray) -> None:
+    """Fill NaN cells of each row with the row's last known value before them, in place.
 
-    Leading and trailing gaps take the nearest known value; an all-missing row becomes 0.
+    Causal: a filled hour reads only earlier hours, so it is what an online detector
+    sees at that hour. Hours before a row's first known value become 0, what a series
+    that has not started yet adds to a roll-up; an all-missing row becomes 0.
     """
     gappy = np.flatnonzero(np.isnan(grid).any(axis=1))
     if not len(gappy):
         return
     sub = grid[gappy]
-    n = sub.shape[1]
     valid = ~np.isnan(sub)
-    idx = np.arange(n)
-    prev = np.maximum.accumulate(np.where(valid, idx, -1), axis=1)
-    nxt = np.minimum.accumulate(np.where(valid, idx, n)[:, ::-1], axis=1)[:, ::-1]
-    r = np.arange(len(gappy))[:, None]
-    pv = sub[r, np.clip(prev, 0, n - 1)]
-    nv = sub[r, np.clip(nxt, 0, n - 1)]
-    has_p, has_n = prev >= 0, nxt < n
-    with np.errstate(divide="ignore", invalid="ignore"):
-        w = (idx - prev) / (nxt - prev)
-        between = pv + (nv - pv) * w
-    out = np.where(has_p & has_n, between, np.where(has_p, pv, np.where(has_n, nv, 0.0)))
-    sub[~valid] = out[~valid]
-    grid[gappy] = sub
+    prev = np.maximum.accumulate(np.where(valid, np.arange(sub.shape[1]), -1), axis=1)
+    last = np.take_along_axis(sub, np.maximum(prev, 0), axis=1)
+    grid[gappy] = np.where(valid, sub, np.where(prev >= 0, last, 0.0))
 
 
 def roll_up(

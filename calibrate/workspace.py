@@ -16,7 +16,8 @@ from calibrate.errors import InputError
 from calibrate.formulas import parse_formula
 from calibrate.settings import DetectorConfig, DetectorSettings
 
-FILL_RULES = ("zero", "interpolate")
+# "interpolate" is the old name of "carry_forward" (kept for existing workspace files)
+FILL_RULES = ("zero", "carry_forward", "interpolate")
 GROUPINGS = ("all", "level", "metric", "group")
 # with tune_by = "group", the series no [detector.group.NAME] matches form this group
 BASE_GROUP = "base"
@@ -317,7 +318,9 @@ def _measures(t: Mapping[str, Any], history: HistorySource, where: str) -> dict[
             raise InputError(_loc(where, name), "is a key or time column, not a measure")
         if rule not in FILL_RULES:
             raise InputError(
-                _loc(where, name), f"fill rule must be 'zero' or 'interpolate', but got {rule!r}"
+                _loc(where, name),
+                "fill rule must be 'zero' or 'carry_forward' (old name 'interpolate'), "
+                f"but got {rule!r}",
             )
         out[name] = rule
     return out

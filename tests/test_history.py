@@ -13,7 +13,7 @@ import pytest
 
 from calibrate.checks import check_workspace
 from calibrate.errors import InputError
-from calibrate.history import History, fill_interpolate, load_history
+from calibrate.history import History, fill_carry_forward, load_history
 from calibrate.owners import load_owners
 from calibrate.workspace import load_workspace
 
@@ -96,33 +96,55 @@ GAPS = f"""{HEADER}
 """
 
 
-def test_gap_filling_zero_and_interpolate(write_workspace) -> None:
+def test_gap_filling_zero_and_carry_forward(write_workspace) -> None:
     h = load(write_workspace, GAPS.replace(",,\n", ",\n"))
     c = h.levels["campaign"]
     # impressions fill rule "zero": c1 hours 1, 2, 4 missing; c2 hours 0, 1, 3 missing
     np.testing.assert_array_equal(c.values["impressions"], [[100, 0, 0, 400, 0], [0, 0, 7, 0, 9]])
-    # clicks "interpolate": c1 10 .. 40 linear over hours 0-3, last hour nearest (40);
-    # c2 has 2 at hour 2, hour 4 blank: edges take the nearest value, 2
-    np.testing.assert_array_equal(c.values["clicks"], [[10, 20, 30, 40, 40], [2, 2, 2, 2, 2]])
+    # clicks "interpolate" (= carry forward): c1 10 held over hours 1-2, 40 held at hour 4;
+    # c2 starts at hour 2 (hours 0-1: 0, not started), hour 3 missing and hour 4 blank: 2
+    np.testing.assert_array_equal(c.values["clicks"], [[10, 10, 10, 40, 40], [0, 0, 2, 2, 2]])
+    # the roll-up adds what each campaign had at that hour: 10+0, 10+0, 10+2, 40+2, 40+2
+    np.testing.assert_array_equal(h.levels["market"].values["clicks"], [[10, 10, 12, 42, 42]])
     f = h.filled.set_index(["market", "advertiser", "campaign"])
     assert f.loc[("m1", "a1", "c1")].tolist() == [3, 3]
     assert f.loc[("m1", "a1", "c2")].tolist() == [3, 4]  # blank clicks cell counts as filled
 
 
-def test_interpolation_matches_pandas() -> None:
+def test_carry_forward_is_the_new_name_of_interpolate(write_workspace) -> None:
+    csv = GAPS.replace(",,\n", ",\n")
+    old = load(write_workspace, csv)
+    new = load(write_workspace, csv, {"measures": 'impressions = "zero"\nclicks = "carry_forward"'})
+    for level, ls in old.levels.items():
+        for m, v in ls.values.items():
+            np.testing.assert_array_equal(new.levels[level].values[m], v)
+
+
+def test_carry_forward_matches_pandas() -> None:
     rng = np.random.default_rng(5)
     grid = rng.random((6, 40)) * 100
     grid[rng.random(grid.shape) < 0.4] = np.nan
     grid[0, :] = np.nan  # nothing known: becomes 0
     grid[1, :] = np.nan
-    grid[1, 17] = 3.0  # one value: everywhere
-    # reference: pandas linear interpolation, both directions (edges = nearest value)
-    ref = pd.DataFrame(grid.T).interpolate(method="linear", limit_direction="both")
-    ref = ref.T.to_numpy().copy()
-    ref[0] = 0.0
+    grid[1, 17] = 3.0  # one value: 0 before it, 3 from it on
+    # reference: pandas forward fill; hours before the first value 0
+    ref = pd.DataFrame(grid.T).ffill().fillna(0.0).T.to_numpy()
     got = grid.copy()
-    fill_interpolate(got)
-    np.testing.assert_allclose(got, ref)
+    fill_carry_forward(got)
+    np.testing.assert_array_equal(got, ref)
+    assert (got[1, :17] == 0).all() and (got[1, 17:] == 3).all()
+
+
+def test_filling_never_reads_a_later_hour() -> None:
+    rng = np.random.default_rng(8)
+    grid = rng.random((5, 30)) * 100
+    grid[rng.random(grid.shape) < 0.5] = np.nan
+    full = grid.copy()
+    fill_carry_forward(full)
+    for t in range(grid.shape[1]):
+        cut = grid[:, : t + 1].copy()
+        fill_carry_forward(cut)
+        np.testing.assert_array_equal(cut, full[:, : t + 1], err_msg=f"cut at hour {t}")
 
 
 def test_hours_are_utc_naive_and_offsets_converted(write_workspace) -> None:

@@ -106,7 +106,7 @@ BAD = [
      "[history] key 'time_column'", "also a key column"),
     ({"history": None}, "", "[history]", "section is missing"),
     ({"measures": 'impressions = "mean"'}, "", "[measures] key 'impressions'",
-     "fill rule must be 'zero' or 'interpolate', but got 'mean'"),
+     "fill rule must be 'zero' or 'carry_forward' (old name 'interpolate'), but got 'mean'"),
     ({"measures": "impressions = 0"}, "", "[measures] key 'impressions'", "fill rule"),
     ({"measures": 'market = "zero"'}, "", "[measures] key 'market'", "is a key or time column"),
     ({"metrics": 'ctr = "clicks / views"'}, "", "[metrics] key 'ctr'", "unknown measure 'views'"),
