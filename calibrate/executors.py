@@ -5,8 +5,9 @@ every task reads (the history arrays) and is handed to each worker only once.
 `SerialExecutor` runs in this process; `LocalExecutor` uses processes on this
 machine (started through a fork server, which is safe with the compiled kernels'
 threads, and handed the shared arrays once per worker, not once per task);
-`DaskExecutor` sends the shared data to a dask.distributed cluster once
-(`Client.scatter(broadcast=True)`) and submits tasks against it.
+`DaskExecutor` sends the shared data to each worker of a dask.distributed
+cluster once (a copy per worker under its own key) and runs each batch of tasks
+on a worker holding its copy.
 """
 
 from __future__ import annotations
@@ -14,8 +15,9 @@ from __future__ import annotations
 import os
 import socket
 import threading
+from collections import Counter, deque
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import CancelledError, ProcessPoolExecutor, as_completed
 from multiprocessing import get_context
 from typing import Any
 
@@ -138,6 +140,8 @@ def dask_batch_size(n_tasks: int, workers: int) -> int:
 
 BATCHES_PER_WORKER = 8
 MAX_BATCH = 16
+BATCHES_IN_FLIGHT = 2  # per worker thread: the next batch is queued while one runs
+LIVENESS_SECONDS = 2.0  # how often a run with nothing finishing checks for departed workers
 
 
 def _check_reachable(address: str, timeout: float = 5.0) -> None:
@@ -165,11 +169,16 @@ def _check_reachable(address: str, timeout: float = 5.0) -> None:
 class DaskExecutor(Executor):
     """A dask.distributed cluster: `address` of a scheduler, or a LocalCluster.
 
-    The shared data (the history arrays) is scattered once to every worker with
-    `broadcast=True` and kept there while it is the same object, so repeated
-    replays (search trials) ship nothing but the small task descriptions. Tasks
-    are grouped into batches (`dask_batch_size`) to keep the scheduler's
-    per-task overhead small.
+    Every worker gets its own copy of the shared data (the history arrays): one
+    scatter per worker, under a key of its own, kept while the data is the same
+    object, so repeated replays (search trials) ship nothing but the small task
+    descriptions. Each batch of tasks (`dask_batch_size`) runs on a worker that
+    holds its copy; batches are handed out as workers finish earlier ones. A
+    broadcast of one key would not stay put: Dask's active memory manager (on by
+    default) drops the extra replicas of a key between replays, after which
+    workers fetch the history again or sit idle. A key held by one worker only is
+    never dropped. A worker that leaves gets its batches rerun elsewhere; a worker
+    that joins gets its copy at the start of the next run.
 
     Parameters
     ----------
@@ -210,52 +219,110 @@ class DaskExecutor(Executor):
             self._client = Client(self._cluster)
         self.workers = max(1, sum(self._client.nthreads().values()))
         self._shared: Any = None  # held so its id cannot be reused by other data
-        self._shared_future: Any = None
+        self._blocks: dict[str, Any] = {}  # worker address -> future of its own copy
 
-    def _scatter(self, shared: Any) -> Any:
-        """The future of `shared` on every worker, scattered only when it changed."""
-        if self._shared is not shared or self._shared_future is None:
-            if self._shared_future is not None:
-                self._shared_future.release()
-            # a one-element list: one unique key for the whole dict, never the dict's
-            # own keys (two histories with the same levels would share names)
-            [self._shared_future] = self._client.scatter([shared], broadcast=True, hash=False)
+    def _blocks_for(self, shared: Any) -> dict[str, int]:
+        """Scatter `shared` to every worker that has no copy of it yet (each copy
+        under its own key, held by that worker only) and forget the copies of
+        workers that left. Returns the threads of each worker holding a copy."""
+        if self._shared is not shared:
+            self._release()
             self._shared = shared
-        return self._shared_future
+        nthreads = self._client.nthreads()
+        for addr in [a for a in self._blocks if a not in nthreads]:
+            self._blocks.pop(addr).release()
+        for addr in nthreads:
+            if addr not in self._blocks:
+                # a one-element list: one unique key for the whole dict, never the
+                # dict's own keys (two histories with the same levels would share names)
+                [self._blocks[addr]] = self._client.scatter([shared], workers=[addr], hash=False)
+        return {a: nthreads[a] for a in self._blocks}
+
+    def _release(self) -> None:
+        for fut in self._blocks.values():
+            fut.release()
+        self._blocks = {}
+        self._shared = None
 
     @property
-    def shared_key(self) -> str | None:
-        """Dask key of the scattered shared data (None before the first run)."""
-        return None if self._shared_future is None else self._shared_future.key
+    def shared_keys(self) -> dict[str, str]:
+        """Dask key of each worker's copy of the shared data, by worker address."""
+        return {addr: fut.key for addr, fut in self._blocks.items()}
 
     def run(self, fn: Callable, shared: Any, tasks: list) -> Iterator[tuple[int, Any]]:
-        from dask.distributed import as_completed as dask_completed
+        from dask.distributed import wait
 
         if not tasks:
             return
-        self.workers = max(1, sum(self._client.nthreads().values()))  # clusters scale
-        shared_future = self._scatter(shared)
-        size = dask_batch_size(len(tasks), self.workers)
-        batches = batched(enumerate(tasks), size)
-        futures = [
-            self._client.submit(_dask_batch, fn, shared_future, b, pure=False) for b in batches
-        ]
-        done: set[str] = set()
+        threads = self._blocks_for(shared)
+        self.workers = max(1, sum(threads.values()))  # clusters scale
+        todo = deque(batched(enumerate(tasks), dask_batch_size(len(tasks), self.workers)))
+        running: dict[Any, tuple[str, list]] = {}  # future -> (worker, batch)
+
+        def hand_out() -> None:
+            load = Counter(addr for addr, _ in running.values())
+            while todo:
+                free = [a for a in threads if load[a] < BATCHES_IN_FLIGHT * threads[a]]
+                if not free:
+                    return
+                for addr in free:
+                    if not todo:
+                        return
+                    batch = todo.popleft()
+                    fut = self._client.submit(
+                        _dask_batch, fn, self._blocks[addr], batch,
+                        workers=[addr], allow_other_workers=False, pure=False,
+                    )
+                    running[fut] = (addr, batch)
+                    load[addr] += 1
+
+        def requeue(lost: list) -> None:
+            nonlocal threads
+            for fut in lost:
+                todo.appendleft(running.pop(fut)[1])
+                fut.cancel()
+            threads = self._blocks_for(shared)
+            if not threads:
+                raise CalibrationError("the Dask cluster has no workers left")
+
         try:
-            for fut in dask_completed(futures):
-                yield from fut.result()
-                done.add(fut.key)
-                fut.release()  # the batch's results now live here only
+            hand_out()
+            while running:
+                try:
+                    wait(list(running), timeout=LIVENESS_SECONDS, return_when="FIRST_COMPLETED")
+                except CancelledError:
+                    pass  # sorted out below
+                except TimeoutError:
+                    # a worker that retired gracefully took its copy along: its
+                    # batches would wait for it for ever
+                    alive = self._client.nthreads()
+                    requeue([f for f, (a, _) in running.items() if a not in alive])
+                    hand_out()
+                    continue
+                lost = []
+                for fut in [f for f in running if f.done()]:
+                    if fut.status == "finished":
+                        try:
+                            results = fut.result()
+                        except CancelledError:  # its worker died before we got them
+                            lost.append(fut)
+                            continue
+                        del running[fut]
+                        fut.release()  # the batch's results now live here only
+                        yield from results
+                    elif fut.status == "error":
+                        fut.result()  # the task's own error, raised here
+                    else:  # cancelled: its worker died and took its copy along
+                        lost.append(fut)
+                if lost:
+                    requeue(lost)
+                hand_out()
         finally:
-            pending = [f for f in futures if f.key not in done]
-            if pending:
-                self._client.cancel(pending)
+            if running:
+                self._client.cancel(list(running))
 
     def close(self) -> None:
-        if self._shared_future is not None:
-            self._shared_future.release()
-            self._shared_future = None
-            self._shared = None
+        self._release()
         self._client.close()
         if self._cluster is not None:
             self._cluster.close()

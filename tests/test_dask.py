@@ -8,6 +8,8 @@ once for the module and always closed.
 from __future__ import annotations
 
 import dataclasses
+import os
+import signal
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -63,30 +65,42 @@ def test_local_cluster_matches_serial(ses, dask_ex):
         assert np.isfinite(ms.score).any()
 
 
+def _fetched(dask_worker) -> list[str]:
+    """Keys this worker ever fetched from another worker."""
+    log = getattr(dask_worker, "transfer_incoming_log", None)
+    if log is None:
+        log = dask_worker.state.transfer_incoming_log
+    return [str(k) for entry in log for k in entry.get("keys", ())]
+
+
 def test_history_is_shipped_once(ses, dask_ex):
+    """Each worker gets its own copy of the history once, and a pass of Dask's
+    active memory manager (on by default, run here on demand instead of on its
+    2-second timer) neither removes a copy nor makes a worker fetch one."""
     rp, _ = _replay(ses, dask_ex)
-    key = dask_ex.shared_key
+    client = dask_ex._client
+    workers = set(client.scheduler_info()["workers"])
+    keys = dask_ex.shared_keys
+    assert set(keys) == workers and len(set(keys.values())) == len(workers)
+
+    def holders() -> dict[str, set[str]]:
+        who = client.who_has(list(dask_ex._blocks.values()))
+        return {addr: set(who[key]) for addr, key in keys.items()}
+
+    assert holders() == {addr: {addr} for addr in workers}  # its own, on it alone
+    client.amm.run_once()
+    assert holders() == {addr: {addr} for addr in workers}
+    # a second replay that must refit (other seasonal span) reuses the copies
     base = ses.ws.detector.base
-    # a second replay that must refit (other seasonal span) reuses the scattered data
     refit = DetectorConfig(base=dataclasses.replace(base, seasonal_span=base.seasonal_span + 2))
     fits = rp.fits
     rp.replay(refit)
     assert rp.fits > fits  # it did run tasks on the cluster
-    assert dask_ex.shared_key == key
-    client = dask_ex._client
-    workers = set(client.scheduler_info()["workers"])
-    holders = client.who_has(dask_ex._shared_future)
-    assert set(holders[key]) == workers  # on every worker (broadcast)
-
-    def fetched(dask_worker) -> list:
-        log = getattr(dask_worker, "transfer_incoming_log", None)
-        if log is None:
-            log = dask_worker.state.transfer_incoming_log
-        return [str(k) for entry in log for k in entry.get("keys", ())]
-
-    # no worker ever fetched the history from another worker: tasks ran where it was
-    for keys in client.run(fetched).values():
-        assert str(key) not in keys
+    assert dask_ex.shared_keys == keys
+    assert holders() == {addr: {addr} for addr in workers}
+    # no worker ever fetched a copy from another worker: tasks ran where it was
+    for fetched in client.run(_fetched).values():
+        assert not set(fetched) & set(keys.values())
 
 
 def test_every_task_runs_once(dask_ex):
@@ -215,3 +229,28 @@ def test_stream_cache_stays_within_its_budget_and_refits_what_it_dropped(ses):
     tiny = api.make_replayer(ses, executor=SerialExecutor(), progress=False, cache_bytes=1)
     got = tiny.scores(b)
     assert set(got) == set(ref_b) and len(tiny.cache) == len(ref_b)
+
+
+def _slow_square(shared: dict, task: int) -> int:
+    import time
+
+    time.sleep(0.002)
+    return shared["offset"] + task * task
+
+
+def test_a_worker_that_dies_mid_run_has_its_batches_rerun(dask_ex):
+    """A worker killed mid-run takes its copy of the shared data along; its batches
+    run on the other worker (or on the one that replaces it), each task once."""
+    client = dask_ex._client
+    tasks = list(range(300))
+    run = dask_ex.run(_slow_square, {"offset": 3}, tasks)
+    got = dict([next(run)])
+    victim = sorted(dask_ex.shared_keys)[0]
+    pid = client.run(os.getpid, workers=[victim])[victim]
+    os.kill(pid, signal.SIGKILL)
+    for i, value in run:
+        assert i not in got  # each task's result arrives once
+        got[i] = value
+    assert got == {i: 3 + t * t for i, t in enumerate(tasks)}
+    assert victim not in dask_ex.shared_keys  # its copy is forgotten
+    client.wait_for_workers(2, timeout=30)  # the nanny restarts it for later tests
