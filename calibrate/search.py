@@ -1417,10 +1417,11 @@ def cli_tune(args: Any) -> int:
     Exit 0 with the config written; 2 when no setting meets the goal (nothing
     written, the best trade-offs printed).
     """
+    from calibrate.outputs import check_outputs
+
     out = Path(args.out)
     force = bool(getattr(args, "force", False))
-    if out.exists() and not force:
-        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    check_outputs([out], force, folders=[getattr(args, "report", None)])
     ses = api.open_session(args.workspace)
     goal = ses.ws.goal
     mm = getattr(args, "max_miss_rate", None)
@@ -1475,6 +1476,6 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
     write_config(out, result.config, result.provenance, force=force)
     print(f"tuned config written to {out}")
     if getattr(args, "report", None):
-        write_report(ses, result, Path(args.report), executor=executor)
+        write_report(ses, result, Path(args.report), force=force, executor=executor)
         print(f"report written to {args.report}")
     return 0
