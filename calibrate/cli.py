@@ -7,6 +7,7 @@ Every command is one function `cmd_NAME(args) -> int`; expected errors
 from __future__ import annotations
 
 import argparse
+import errno
 import json
 import sys
 from pathlib import Path
@@ -311,6 +312,15 @@ def main(argv: list[str] | None = None) -> int:
         return COMMANDS[args.command](args)
     except CalibrationError as exc:
         print(f"calibrate {args.command}: {exc}", file=sys.stderr)
+        return 1
+    except OSError as exc:
+        # a full disk or a read-only folder met outside the writers that say so themselves
+        if exc.errno not in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
+            raise
+        from calibrate.outputs import os_error
+
+        print(f"calibrate {args.command}: {os_error(exc.filename or 'a file', exc)}",
+              file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         print(f"calibrate {args.command}: interrupted", file=sys.stderr)
