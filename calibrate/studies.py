@@ -50,8 +50,11 @@ OWNER = "calibrate:owner"
 UNTAGGED_STALE_SECONDS = 300.0
 RECORD_START = b'{"op_code":'
 LOCK_SUFFIX = ".calibrate-lock"
+# a bare postgresql:// URL uses psycopg 3 (SQLAlchemy 2.0 would pick psycopg2), the
+# driver of the `postgres` extra
+DEFAULT_DRIVERS = {"postgresql": "postgresql+psycopg"}
 DRIVER_HINTS = {
-    "postgresql": "pip install 'calibrate[postgres]'",
+    "postgresql+psycopg": "pip install 'calibrate[postgres]'",
     "mysql": "pip install a MySQL driver such as PyMySQL (mysql+pymysql://...)",
 }
 # the file each storage is locked by while trials are recovered (none: no lock)
@@ -244,6 +247,9 @@ def _open_rdb(url: str) -> tuple[Any, str]:
         raise StorageError(f"{shown}: not a storage URL; give a journal file path or a URL "
                            "such as sqlite:///study.db or postgresql://user@host/db") from None
     backend = parsed.get_backend_name()
+    if parsed.drivername in DEFAULT_DRIVERS:
+        parsed = parsed.set(drivername=DEFAULT_DRIVERS[parsed.drivername])
+        url = parsed.render_as_string(hide_password=False)
     lock = None
     if backend == "sqlite" and parsed.database not in (None, "", ":memory:"):
         db = Path(parsed.database).expanduser().resolve()
@@ -254,7 +260,8 @@ def _open_rdb(url: str) -> tuple[Any, str]:
                 store = optuna.storages.RDBStorage(url)
             break
         except ImportError:
-            hint = DRIVER_HINTS.get(backend, f"install the SQLAlchemy driver for {backend}")
+            hint = DRIVER_HINTS.get(parsed.drivername) or DRIVER_HINTS.get(
+                backend, f"install the driver of '{parsed.drivername}'")
             raise StorageError(f"{shown}: the database driver for {backend} is not "
                                f"installed: {hint}") from None
         except sa_exc.NoSuchModuleError:
