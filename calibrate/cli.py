@@ -7,6 +7,7 @@ Every command is one function `cmd_NAME(args) -> int`; expected errors
 from __future__ import annotations
 
 import argparse
+import errno
 import json
 import sys
 from pathlib import Path
@@ -39,6 +40,11 @@ def _period_args(p: argparse.ArgumentParser) -> None:
     p.add_argument("--to", dest="end", default=None, help="end day/hour, exclusive (ISO-8601)")
 
 
+def _force_arg(p: argparse.ArgumentParser, what: str) -> None:
+    p.add_argument("--force", action="store_true",
+                   help=f"replace {what} (default: refuse to write over anything)")
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(
         prog="calibrate",
@@ -56,7 +62,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--out", required=True, help="alerts file (.csv)")
     p.add_argument("--scores", default=None, help="per-hour scores file (.parquet or .csv)")
-    p.add_argument("--force", action="store_true", help="replace existing output files")
+    _force_arg(p, "existing --out and --scores files")
     _subset_args(p)
     _engine_args(p)
 
@@ -64,6 +70,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("workspace")
     p.add_argument("--alerts", required=True)
     p.add_argument("--json", default=None, help="write the figures as JSON here")
+    _force_arg(p, "an existing --json file")
     p.add_argument(
         "--related",
         action="store_true",
@@ -76,6 +83,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--config", default=None, help="config to replay (default: [detector])")
     p.add_argument("--alerts", default=None, help="count an existing alerts file instead")
     p.add_argument("--csv", default=None, help="write the table here")
+    _force_arg(p, "an existing --csv file")
     _period_args(p)
     _engine_args(p)
 
@@ -97,7 +105,8 @@ def build_parser() -> argparse.ArgumentParser:
         default=None,
         help="override [goal] for every team",
     )
-    p.add_argument("--force", action="store_true", help="replace an existing --out file")
+    _force_arg(p, "an existing --out file and this tool's files in an existing --report "
+                  "folder (other files there are kept)")
     _engine_args(p)
 
     p = sub.add_parser("report", help="write the calibration report for a config or a study")
@@ -110,7 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--storage", default=None,
                    help="the study's Optuna storage URL or journal file (with --study)")
     p.add_argument("--out", required=True, help="report folder")
-    p.add_argument("--force", action="store_true", help="replace an existing report folder")
+    _force_arg(p, "this tool's files in an existing --out folder (other files there are kept)")
     _engine_args(p)
 
     p = sub.add_parser("retune", help="merge analysts' verdicts and tune again")
@@ -120,12 +129,14 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", required=True)
     p.add_argument("--report", default=None)
     p.add_argument("--trials", type=int, default=None)
-    p.add_argument("--force", action="store_true")
+    _force_arg(p, "existing --out, merged incidents, known false alarms and this tool's files "
+                  "in the report folder")
     _engine_args(p)
 
     p = sub.add_parser("demo", help="run the whole job on the bundled sample data")
     p.add_argument("--out", default="demo-output", help="folder for the demo's outputs")
     p.add_argument("--trials", type=int, default=None)
+    _force_arg(p, "the demo's own files in an existing --out folder (other files are kept)")
     _engine_args(p)
     return ap
 
@@ -142,11 +153,9 @@ def cmd_check(args) -> int:
 
 def cmd_replay(args) -> int:
     from calibrate import api
-    from calibrate.outputs import load_config, write_table
+    from calibrate.outputs import check_outputs, load_config, write_table
 
-    for out in (args.out, args.scores):
-        if out and Path(out).exists() and not args.force:
-            raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    check_outputs((args.out, args.scores), args.force)
     ses = api.open_session(args.workspace, incidents=False)
     config = load_config(args.config) if args.config else ses.ws.detector
     result = api.replay_session(
@@ -159,10 +168,10 @@ def cmd_replay(args) -> int:
         scheduler=args.scheduler,
     )
     alerts = result.alerts_frame()
-    write_table(Path(args.out), alerts, force=True)
+    write_table(Path(args.out), alerts, force=args.force)
     print(f"{len(alerts)} alerts written to {args.out}")
     if args.scores:
-        write_table(Path(args.scores), result.scores_frame(), force=True)
+        write_table(Path(args.scores), result.scores_frame(), force=args.force)
         print(f"per-hour scores written to {args.scores}")
     return 0
 
@@ -178,9 +187,10 @@ def _period(ses, args) -> tuple[int, int]:
 def cmd_score(args) -> int:
     from calibrate import api
     from calibrate.incidents import read_text_csv
-    from calibrate.outputs import write_text
+    from calibrate.outputs import check_outputs, write_text
     from calibrate.scoring import episodes_from_alerts_frame, route_teams
 
+    check_outputs((args.json,), args.force)
     ses = api.open_session(args.workspace)
     path = Path(args.alerts)
     if not path.is_file():
@@ -193,7 +203,7 @@ def cmd_score(args) -> int:
     for line in format_figures(data):
         print(line)
     if args.json:
-        write_text(Path(args.json), json.dumps(data, indent=2, default=str))
+        write_text(Path(args.json), json.dumps(data, indent=2, default=str), force=args.force)
         print(f"figures written to {args.json}")
     return 0
 
@@ -227,9 +237,10 @@ def format_figures(d: dict) -> list[str]:
 def cmd_volume(args) -> int:
     from calibrate import api
     from calibrate.incidents import read_text_csv
-    from calibrate.outputs import load_config, write_table
+    from calibrate.outputs import check_outputs, load_config, write_table
     from calibrate.scoring import episodes_from_alerts_frame, route_teams
 
+    check_outputs((args.csv,), args.force)
     ses = api.open_session(args.workspace, incidents=False)
     if args.alerts:
         path = Path(args.alerts)
@@ -255,7 +266,7 @@ def cmd_volume(args) -> int:
             line += f"{row.budget:>8g}" + ("  over budget" if row.over_budget else "")
         print(line)
     if args.csv:
-        write_table(Path(args.csv), table)
+        write_table(Path(args.csv), table, force=args.force)
     return 0
 
 
@@ -301,6 +312,15 @@ def main(argv: list[str] | None = None) -> int:
         return COMMANDS[args.command](args)
     except CalibrationError as exc:
         print(f"calibrate {args.command}: {exc}", file=sys.stderr)
+        return 1
+    except OSError as exc:
+        # a full disk or a read-only folder met outside the writers that say so themselves
+        if exc.errno not in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
+            raise
+        from calibrate.outputs import os_error
+
+        print(f"calibrate {args.command}: {os_error(exc.filename or 'a file', exc)}",
+              file=sys.stderr)
         return 1
     except KeyboardInterrupt:
         print(f"calibrate {args.command}: interrupted", file=sys.stderr)

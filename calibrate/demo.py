@@ -13,19 +13,29 @@ from pathlib import Path
 
 from calibrate import api
 from calibrate.checks import check_workspace
+from calibrate.errors import CalibrationError
 from calibrate.executors import Executor, make_executor
-from calibrate.outputs import write_config, write_table, write_text
+from calibrate.outputs import check_outputs, write_config, write_table, write_text
 from calibrate.report import write_report
 from calibrate.review import review_frame
 from calibrate.search import tune
 
+# what the demo writes into its folder (the study journal is continued, not replaced)
+FILES = ("alerts-current.csv", "tuned.toml", "alerts-for-review.csv", "volume.csv",
+         "README.txt")
+FOLDERS = ("workspace", "report")
+
 
 def run_demo(args) -> int:
-    """Run the demo; `args` has out, trials, engine, workers, scheduler."""
+    """Run the demo; `args` has out, trials, engine, workers, scheduler, force."""
     from calibrate.sample import generate_sample
 
     t_start = time.perf_counter()
     out = Path(args.out)
+    force = bool(getattr(args, "force", False))
+    if out.exists() and not out.is_dir():
+        raise CalibrationError(f"{out}: exists and is not a folder")
+    check_outputs([out / f for f in FILES], force, folders=[out / f for f in FOLDERS])
     out.mkdir(parents=True, exist_ok=True)
     ws_path = generate_sample(out / "workspace")
     print(f"1/6 sample workspace (invented scenario) written to {ws_path.parent}")
@@ -36,29 +46,29 @@ def run_demo(args) -> int:
     # one executor for every step: its workers start once and keep the history
     executor = make_executor(args.engine, args.workers, args.scheduler)
     try:
-        tuned, result = _steps(ses, out, args.trials, executor)
+        tuned, result = _steps(ses, out, args.trials, executor, force)
     finally:
         executor.close()
 
     print("6/6 alert volume per team (tuned settings, held-out weeks)")
     vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours)
-    write_table(out / "volume.csv", vol)
+    write_table(out / "volume.csv", vol, force=force)
     for row in vol.groupby("team")["alerts_per_analyst_day"].mean().items():
         print(f"    {row[0]}: {row[1]:.2f} alerts per analyst per day "
               f"(budget {ses.ws.goal.budget(row[0]):g})")
     took = time.perf_counter() - t_start
-    write_text(out / "README.txt", _readme(out, took))
+    write_text(out / "README.txt", _readme(out, took), force=force)
     print(f"done in {took:.0f} s; outputs in {out}/ (see {out / 'README.txt'})")
     print("caution: a tuned config is only as good as the incident labels; check it on "
           "held-out weeks before rollout.")
     return 0
 
 
-def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor):
+def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, force: bool):
     """Steps 2-5: replay today's settings, tune, report, export the tuned alerts."""
     print("2/6 replaying today's [detector] settings hour by hour")
     current = api.replay_session(ses, executor=executor)
-    write_table(out / "alerts-current.csv", current.alerts_frame())
+    write_table(out / "alerts-current.csv", current.alerts_frame(), force=force)
     first = api.first_scored_hour(ses.ws.detector, ses.ws)
     figs = api.score_episodes(ses, current.episodes, first)
     print(f"    today's settings: {figs.caught}/{figs.incidents} incidents caught, "
@@ -69,7 +79,7 @@ def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor):
     result = tune(ses, trials=trials, storage=str(out / "study.journal"), executor=executor)
     tuned_path = out / "tuned.toml"
     if result.feasible:
-        write_config(tuned_path, result.config, result.provenance, force=True)
+        write_config(tuned_path, result.config, result.provenance, force=force)
         print(f"    tuned config written to {tuned_path}")
     else:
         print(f"    no setting meets the goal: {result.reason}")
@@ -84,13 +94,13 @@ def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor):
 
     print("4/6 report")
     report_dir = out / "report"
-    write_report(ses, result, report_dir, executor=executor)
+    write_report(ses, result, report_dir, force=force, executor=executor)
     print(f"    report written to {report_dir / 'index.html'}")
 
     print("5/6 alerts of the tuned settings, for analysts to review")
     tuned = api.replay_session(ses, result.config, executor=executor)
     review = review_frame(tuned.alerts_frame())
-    write_table(out / "alerts-for-review.csv", review)
+    write_table(out / "alerts-for-review.csv", review, force=force)
     print(f"    {len(review)} alerts written to {out / 'alerts-for-review.csv'} "
           "(fill in the verdict column, then run `calibrate retune`)")
     return tuned, result

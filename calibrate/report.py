@@ -22,9 +22,6 @@ import base64
 import html
 import json
 import math
-import os
-import shutil
-import tempfile
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
@@ -1160,31 +1157,16 @@ def write_report_data(data: ReportData, out_dir: str | Path, force: bool = True,
     files["summary.json"] = json.dumps(summary_dict(data), indent=2,
                                        default=_plain).encode("utf-8")
     files.update(extra or {})
-    return write_report_data_files(files, out, force=True)
+    return write_report_data_files(files, out, force=force)
 
 
 def write_report_data_files(files: Mapping[str, bytes], out_dir: str | Path,
                             force: bool = False) -> Path:
-    """Write `files` into a new folder beside `out_dir`, then move it into place."""
-    out = Path(out_dir)
-    if out.exists() and not force:
-        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".part", dir=out.parent))
-    try:
-        for name, content in files.items():
-            (tmp / name).write_bytes(content)
-        if out.exists():
-            old = out.with_name(f".{out.name}.old-{os.getpid()}")
-            os.replace(out, old)
-            os.replace(tmp, out)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, out)
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
-    return out
+    """Write `files` as the folder `out_dir` (`calibrate.outputs.write_folder`: built
+    complete first; with `force` only this tool's files in an existing folder change)."""
+    from calibrate.outputs import write_folder
+
+    return write_folder(files, out_dir, force=force)
 
 
 def _review_csv(result: ReplayResult) -> bytes:
@@ -1252,14 +1234,14 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
 
 def cli_report(args: Any) -> int:
     """`calibrate report WORKSPACE (--config C | --study [NAME]) --out DIR`."""
-    from calibrate.outputs import load_config, load_provenance
+    from calibrate.outputs import check_outputs, load_config, load_provenance
 
     config_path, study = getattr(args, "config", None), getattr(args, "study", None)
     if (config_path is None) == (study is None):
         raise CalibrationError("report: give either --config FILE or --study [NAME]")
     out = Path(args.out)
-    if out.exists() and not getattr(args, "force", False):
-        raise CalibrationError(f"{out}: already exists; choose a new report folder or pass --force")
+    force = bool(getattr(args, "force", False))
+    check_outputs((), force, folders=[out])
     ses = api.open_session(args.workspace)
     if ses.incidents is None:
         raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
@@ -1271,7 +1253,7 @@ def cli_report(args: Any) -> int:
         try:
             result = study_result(ses, storage=getattr(args, "storage", None),
                                   study_name=study or None, executor=executor)
-            write_report(ses, result, out, executor=executor)
+            write_report(ses, result, out, force=force, executor=executor)
         finally:
             executor.close()
         print(f"{result.reason}")
@@ -1281,7 +1263,7 @@ def cli_report(args: Any) -> int:
     split = load_provenance(config_path).get("split_hour")
     write_config_report(
         ses, config, out, split_hour=int(split) if isinstance(split, int) else None,
-        force=True, source=f"config {config_path}", engine=args.engine, workers=args.workers,
+        force=force, source=f"config {config_path}", engine=args.engine, workers=args.workers,
         scheduler=args.scheduler,
     )
     print(f"report written to {out / 'index.html'}")

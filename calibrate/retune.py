@@ -533,20 +533,23 @@ def comparison_html(res: RetuneResult, png: bytes) -> str:
             + "\n".join(body) + "</body></html>")
 
 
+def retune_paths(out: Path, report: Path | None) -> tuple[Path, Path, Path, Path]:
+    """The files `retune` writes: config, merged incidents, known false alarms, report."""
+    stem = out.with_suffix("")
+    inc_path = stem.parent / f"{stem.name}-incidents.csv"
+    false_path = stem.parent / f"{stem.name}-known-false.csv"
+    return out, inc_path, false_path, report or stem.parent / f"{stem.name}-report"
+
+
 def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
                          force: bool = False) -> list[Path]:
     """Write the new config, merged incidents, known false alarms and the comparison."""
     from calibrate import plots
-    from calibrate.outputs import write_config, write_table
+    from calibrate.outputs import check_outputs, write_config, write_table
     from calibrate.report import write_report, write_report_data_files
 
-    stem = out.with_suffix("")
-    inc_path = stem.parent / f"{stem.name}-incidents.csv"
-    false_path = stem.parent / f"{stem.name}-known-false.csv"
-    report = report or stem.parent / f"{stem.name}-report"
-    for p in (out, inc_path, false_path, report):
-        if p.exists() and not force:
-            raise CalibrationError(f"{p}: already exists; pass --force to replace it")
+    out, inc_path, false_path, report = retune_paths(out, report)
+    check_outputs((out, inc_path, false_path), force, folders=[report])
     written = [write_config(out, res.config, res.provenance, force=force)]
     written.append(write_table(inc_path, merged_frame(res.session, res.verdicts), force=force))
     kf = res.verdicts.known_false.to_frame()
@@ -567,20 +570,20 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
                                    default=_plain).encode("utf-8"),
         "teams.png": png,
     }
-    written.append(write_report_data_files(files, report, force=True))
+    written.append(write_report_data_files(files, report, force=force))
     if all(hasattr(res.tune, a) for a in ("trials", "split_hour", "first_hour", "current")):
-        write_report(res.session, res.tune, report / "calibration")
+        write_report(res.session, res.tune, report / "calibration", force=force)
         written.append(report / "calibration")
     return written
 
 
 def cli_retune(args: Any) -> int:
     """`calibrate retune WORKSPACE --verdicts F --out C [--previous P] [--report D]`."""
-    from calibrate.outputs import load_config
+    from calibrate.outputs import check_outputs, load_config
 
     out = Path(args.out)
-    if out.exists() and not args.force:
-        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    paths = retune_paths(out, Path(args.report) if args.report else None)
+    check_outputs(paths[:3], args.force, folders=paths[3:])
     verdicts = Path(args.verdicts)
     if out.resolve() == verdicts.resolve():
         raise CalibrationError(f"{out}: is the verdicts file; choose another --out")

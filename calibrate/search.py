@@ -64,7 +64,7 @@ import optuna
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate import api
+from calibrate import api, studies
 from calibrate.api import Session
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import Executor
@@ -858,14 +858,8 @@ def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> s
 
 
 def open_storage(ses: Session, storage: str | None) -> tuple[Any, str]:
-    """Optuna storage object and how to name it (URL, or journal file path)."""
-    if storage and "://" in storage:
-        return storage, storage
-    path = Path(storage) if storage else ses.ws.root / STUDY_FILE
-    path = path.expanduser().resolve()
-    path.parent.mkdir(parents=True, exist_ok=True)
-    backend = optuna.storages.journal.JournalFileBackend(str(path))
-    return optuna.storages.JournalStorage(backend), str(path)
+    """Optuna storage object and how to name it (`calibrate.studies.open_storage`)."""
+    return studies.open_storage(ses.ws.root / STUDY_FILE, storage)
 
 
 def _constraints(trial: optuna.trial.FrozenTrial) -> Sequence[float]:
@@ -940,9 +934,10 @@ def tune(
     ev = _evaluator(ses, ks, ms, fence_w, first_hour, split, goal, known_false,
                     executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
-        study = _run_study(ses, ev, space, starts, name, store, budget, progress)
-        result = _result(ses, ev, space, study, name, store_name, current, goal,
-                         store_front=True)
+        with studies.storage_errors(store_name):
+            study = _run_study(ses, ev, space, starts, name, store, budget, progress)
+            result = _result(ses, ev, space, study, name, store_name, current, goal,
+                             store_front=True)
     finally:
         ev.replayer.close()
     return result
@@ -1022,13 +1017,16 @@ def study_result(
                                    "give its --storage)")
     store, store_name = open_storage(ses, storage)
     try:
-        study = optuna.load_study(study_name=name, storage=store)
+        with studies.storage_errors(store_name):
+            study = optuna.load_study(study_name=name, storage=store)
     except KeyError:
-        names = ", ".join(optuna.study.get_all_study_names(store)) or "none"
+        with studies.storage_errors(store_name):
+            names = ", ".join(optuna.study.get_all_study_names(store)) or "none"
         raise CalibrationError(
             f"{store_name}: no study '{name}' (studies there: {names}; name one with "
             "--study NAME)") from None
-    finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
+    with studies.storage_errors(store_name):
+        finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
     done = [t for t in finished if t.state == optuna.trial.TrialState.COMPLETE]
     if not done:
         raise CalibrationError(f"{store_name}: study '{name}' has no completed trial yet")
@@ -1048,7 +1046,8 @@ def study_result(
     ev = _evaluator(ses, ks, ms, fence_w, first_hour, split, goal, None,
                     executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
-        return _result(ses, ev, space, study, name, store_name, ses.ws.detector, goal)
+        with studies.storage_errors(store_name):
+            return _result(ses, ev, space, study, name, store_name, ses.ws.detector, goal)
     finally:
         ev.replayer.close()
 
@@ -1080,6 +1079,8 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         existing.set_user_attr("goal", _json_safe(dataclasses.asdict(ev.goal)))
         existing.set_user_attr("hours", [ev.first_hour, ev.split_hour])
         existing.set_user_attr("known_false", ev.false_windows is not None)
+    if not created:  # trials a dead process left RUNNING; today's settings cut off
+        studies.recover(existing, [params_of(cfg, space, ses) for cfg in starts])
     base_seed = ses.ws.search.seed
     n_before = len(existing.get_trials(deepcopy=False))
     study = optuna.load_study(study_name=name, storage=store,
@@ -1099,6 +1100,7 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         # processes sharing the study never draw alike, and trial n of a study resumed
         # after a stop between trials proposes what it would have uninterrupted (a trial
         # cut off mid-way keeps its number as a failed trial, so later draws shift)
+        studies.claim(trial)
         trial.study.sampler = _sampler(base_seed + trial.number)
         params = {p.name: p.suggest(trial) for p in space}
         try:
@@ -1512,10 +1514,11 @@ def cli_tune(args: Any) -> int:
     Exit 0 with the config written; 2 when no setting meets the goal (nothing
     written, the best trade-offs printed).
     """
+    from calibrate.outputs import check_outputs
+
     out = Path(args.out)
     force = bool(getattr(args, "force", False))
-    if out.exists() and not force:
-        raise CalibrationError(f"{out}: already exists; pass --force to replace it")
+    check_outputs([out], force, folders=[getattr(args, "report", None)])
     ses = api.open_session(args.workspace)
     goal = ses.ws.goal
     mm = getattr(args, "max_miss_rate", None)
@@ -1572,6 +1575,6 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
     write_config(out, result.config, result.provenance, force=force)
     print(f"tuned config written to {out}")
     if getattr(args, "report", None):
-        write_report(ses, result, Path(args.report), executor=executor)
+        write_report(ses, result, Path(args.report), force=force, executor=executor)
         print(f"report written to {args.report}")
     return 0
