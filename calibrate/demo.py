@@ -74,8 +74,8 @@ def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, 
     print(f"    today's settings: {figs.caught}/{figs.incidents} incidents caught, "
           f"{figs.alerts} alerts, precision {_pct(figs.precision)}")
 
-    print("3/6 tuning (the fence multiplier and minimum impact are solved exactly for every "
-          "trial)")
+    print("3/6 tuning (the fence multiplier and each metric's minimum impact are solved for "
+          "every trial)")
     result = tune(ses, trials=trials, storage=str(out / "study.journal"), executor=executor)
     tuned_path = out / "tuned.toml"
     if result.feasible:
