@@ -9,6 +9,7 @@ the settings one series and metric are replayed with.
 from __future__ import annotations
 
 import dataclasses
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields, replace
 from typing import Any
@@ -141,16 +142,17 @@ class DetectorSettings:
             raise bad(
                 "fence_window_hours", "must be at least 4 and below decomposition_window_hours"
             )
-        if not self.fence_multiplier > 0:
-            raise bad("fence_multiplier", "must be positive")
+        # inf or nan would flag nothing at all: alerting silently off
+        if not (math.isfinite(self.fence_multiplier) and self.fence_multiplier > 0):
+            raise bad("fence_multiplier", "must be a finite positive number")
         if self.quartile_method not in QUARTILE_METHODS:
             raise bad("quartile_method", f"must be one of {', '.join(QUARTILE_METHODS)}")
         if self.sides not in SIDES:
             raise bad("sides", "must be 'up', 'down' or 'both'")
         if self.flatline_hours < 0 or self.flatline_hours == 1:
             raise bad("flatline_hours", "must be 0 (off) or at least 2")
-        if self.min_impact < 0:
-            raise bad("min_impact", "must be zero or positive")
+        if not (math.isfinite(self.min_impact) and self.min_impact >= 0):
+            raise bad("min_impact", "must be a finite number, zero or positive")
         if self.combine not in COMBINE_RULES and not (
             self.combine.isdigit() and int(self.combine) >= 1
         ):
