@@ -152,6 +152,7 @@ def cmd_replay(args) -> int:
     result = api.replay_session(
         ses,
         config,
+        config_name=args.config,
         levels=args.levels,
         metrics=args.metrics,
         engine=args.engine,
@@ -182,6 +183,7 @@ def cmd_score(args) -> int:
     from calibrate.scoring import episodes_from_alerts_frame, route_teams
 
     ses = api.open_session(args.workspace)
+    api.require_replayable(ses)  # the workspace's detector could raise no alert at all
     path = Path(args.alerts)
     if not path.is_file():
         raise CalibrationError(f"{path}: no such alerts file")
@@ -240,7 +242,8 @@ def cmd_volume(args) -> int:
     else:
         config = load_config(args.config) if args.config else ses.ws.detector
         eps = api.replay_session(
-            ses, config, engine=args.engine, workers=args.workers, scheduler=args.scheduler
+            ses, config, config_name=args.config, engine=args.engine, workers=args.workers,
+            scheduler=args.scheduler,
         ).episodes
     start, end = _period(ses, args)
     table = api.alert_volume(ses, eps, start, end)
