@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from calibrate.checks import unreplayable
 from calibrate.errors import InputError
 from calibrate.executors import Executor, make_executor
 from calibrate.history import History, load_history
@@ -112,8 +113,43 @@ def make_replayer(
     )
 
 
-def replay_session(ses: Session, config: DetectorConfig | None = None, **kwargs) -> ReplayResult:
-    """Replay the workspace's `[detector]` settings (or `config`) once."""
+def require_replayable(
+    ses: Session, config: DetectorConfig | None = None, config_name: str | None = None
+) -> None:
+    """Raise `InputError` when a decomposition window of `config` (default the
+    workspace's `[detector]`; `config_name` its file, for the message) is longer than
+    the history: its series could never be replayed, so no alert could be raised."""
+    problems = unreplayable(config or ses.ws.detector, ses.ws, ses.history,
+                            config_name or ses.ws.file.name)
+    if problems:
+        raise InputError(*problems[0])
+
+
+def require_incidents(ses: Session, start_hour: int, end_hour: int) -> None:
+    """Raise `CalibrationError` when no incident starts in ``[start_hour, end_hour)``
+    (the tuning hours): there is nothing to tune against, and the least sensitive
+    settings would look as if they met any miss-rate target."""
+    n = 0 if ses.incidents is None else len(period_filter(ses.incidents, start_hour, end_hour))
+    if n == 0:
+        hours = ses.history.hours
+        last = hours[end_hour - 1] if 0 < end_hour <= len(hours) else hours[-1]
+        first = hours[min(max(start_hour, 0), len(hours) - 1)]
+        path = Path(ses.ws.incidents.path or ses.ws.file)
+        raise InputError(
+            str(path.relative_to(ses.ws.root)) if path.is_relative_to(ses.ws.root) else str(path),
+            f"no incident starts in the tuning weeks ({first:%Y-%m-%dT%H:%MZ} to "
+            f"{last:%Y-%m-%dT%H:%MZ}), so there is nothing to tune against; add labelled "
+            "incidents for those weeks",
+        )
+
+
+def replay_session(
+    ses: Session, config: DetectorConfig | None = None, config_name: str | None = None,
+    **kwargs
+) -> ReplayResult:
+    """Replay the workspace's `[detector]` settings (or `config`, read from the file
+    `config_name`) once; refuses settings that could replay no hour."""
+    require_replayable(ses, config, config_name)
     rp = make_replayer(ses, **kwargs)
     try:
         return rp.replay(config or ses.ws.detector)

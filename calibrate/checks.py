@@ -11,6 +11,7 @@ import pandas as pd
 
 from calibrate.history import History, load_history
 from calibrate.owners import load_owners
+from calibrate.settings import DetectorConfig
 from calibrate.workspace import Workspace
 
 EXAMPLES = 5
@@ -39,8 +40,15 @@ class CheckSummary:
         Rows of the owners file (None when no owners file is given).
     uncovered : list of str
         Labels of base series no owners row covers.
+    blank_cells : dict of str to int
+        Per measure, blank (CSV) or null/NaN (Parquet, SQL) cells, filled like
+        missing hours.
+    naive_rows : int
+        Rows whose time had no UTC offset (read as UTC).
     notes : list of str
         Things skipped or worth a look.
+    warnings : list of str
+        Things that make the detector raise less than it seems to (printed first).
     """
 
     workspace: Path
@@ -56,7 +64,10 @@ class CheckSummary:
     analysts: dict[str, int] = field(default_factory=dict)
     owners_rows: int | None = None
     uncovered: list[str] = field(default_factory=list)
+    blank_cells: dict[str, int] = field(default_factory=dict)
+    naive_rows: int = 0
     notes: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
 
     @property
     def filled_total(self) -> int:
@@ -76,6 +87,17 @@ class CheckSummary:
             + ", ".join(f"{m} {n}" for m, n in self.filled_hours.items())
             + ")",
         ]
+        if sum(self.blank_cells.values()):
+            out.append(
+                f"blank or NaN cells: {sum(self.blank_cells.values())} ("
+                + ", ".join(f"{m} {n}" for m, n in self.blank_cells.items())
+                + "), filled like missing hours (counted in the gaps above)"
+            )
+        if self.naive_rows:
+            out.append(
+                f"times without a UTC offset: {self.naive_rows} of {self.n_rows} rows, "
+                "read as UTC"
+            )
         if self.incidents_per_level is not None:
             out.append(
                 f"incidents: {sum(self.incidents_per_level.values())} ("
@@ -92,6 +114,7 @@ class CheckSummary:
                 text += f"; and {more} more)" if more > 0 else ")"
             out.append(text)
         out.extend(f"note: {n}" for n in self.notes)
+        out.extend(f"warning: {w}" for w in self.warnings)
         return out
 
 
@@ -102,12 +125,15 @@ def check_workspace(ws: Workspace) -> CheckSummary:
     """
     history = load_history(ws)
     summary = summarise_history(ws, history)
+    summary.warnings.extend(f"{where}: {what}" for where, what in
+                            unreplayable(ws.detector, ws, history, ws.file.name))
     if ws.teams.owners is not None:
         owners = load_owners(ws, history)
         base = history.filled[list(history.key_columns)]
         teams = owners.route_keys(base)
         summary.owners_rows = len(owners.rows)
         summary.uncovered = [" / ".join(r) for r in base[teams == ""].itertuples(index=False)]
+        summary.warnings.extend(_unmatched_owners(owners, base, ws))
         unused = sorted(set(ws.teams.analysts) - set(owners.rows["team"]))
         if unused:
             summary.notes.append(f"teams with analysts but no owners rows: {', '.join(unused)}")
@@ -118,6 +144,57 @@ def check_workspace(ws: Workspace) -> CheckSummary:
     else:
         summary.incidents_per_level = _incidents(ws, history, summary.notes)
     return summary
+
+
+def unreplayable(
+    config: DetectorConfig, ws: Workspace, history: History, name: str
+) -> list[tuple[str, str]]:
+    """(where, what) for each settings table some watched series is replayed with whose
+    decomposition window is longer than the history: those series are never replayed.
+
+    `name` is how messages refer to the file `config` came from (pure).
+    """
+    out: list[tuple[str, str]] = []
+    seen: set[str] = set()
+    for level in history.levels:
+        for metric in ws.metric_names:
+            group = next((g for g in config.groups if g.matches(level, metric)), None)
+            table = "[detector]" if group is None else f"[detector.group.{group.name}]"
+            window = (config.base if group is None else group.settings).decomposition_window_hours
+            if table in seen or window <= history.n_hours:
+                continue
+            seen.add(table)
+            out.append((
+                f"{name} {table} key 'decomposition_window_hours'",
+                f"{window} hours is longer than the history ({history.n_hours} hours), so "
+                "no hour can be replayed: no alert could ever be raised; shorten the window "
+                "or load more history",
+            ))
+    return out
+
+
+def _unmatched_owners(owners, base: pd.DataFrame, ws: Workspace) -> list[str]:
+    """One warning naming the owners rows that match no series (typos, old keys)."""
+    rows = owners.unmatched(base)
+    if not len(rows):
+        return []
+    cols = [c for c in owners.key_columns if c in rows.columns]
+    labels = [
+        f"row {r} ({' / '.join(keys[:d])})"
+        for r, d, keys in zip(rows["row"], rows["depth"],
+                              rows[cols].itertuples(index=False, name=None), strict=True)
+    ]
+    more = len(labels) - EXAMPLES
+    text = "; ".join(labels[:EXAMPLES]) + (f"; and {more} more" if more > 0 else "")
+    return [f"{_display(ws.teams.owners, ws.root)}: {len(labels)} row(s) match no series "
+            f"of the history, so they route nothing: {text}"]
+
+
+def _display(path, root: Path) -> str:
+    try:
+        return str(Path(path).relative_to(root))
+    except ValueError:
+        return str(path)
 
 
 def summarise_history(ws: Workspace, history: History) -> CheckSummary:
@@ -135,6 +212,8 @@ def summarise_history(ws: Workspace, history: History) -> CheckSummary:
         filled_series=int((filled > 0).any(axis=1).sum()) if filled.size else 0,
         n_base_series=len(history.filled),
         analysts=dict(ws.teams.analysts),
+        blank_cells=dict(history.blank_cells),
+        naive_rows=history.naive_rows,
     )
 
 

@@ -161,6 +161,7 @@ def cmd_replay(args) -> int:
     result = api.replay_session(
         ses,
         config,
+        config_name=args.config,
         levels=args.levels,
         metrics=args.metrics,
         engine=args.engine,
@@ -192,6 +193,7 @@ def cmd_score(args) -> int:
 
     check_outputs((args.json,), args.force)
     ses = api.open_session(args.workspace)
+    api.require_replayable(ses)  # the workspace's detector could raise no alert at all
     path = Path(args.alerts)
     if not path.is_file():
         raise CalibrationError(f"{path}: no such alerts file")
@@ -251,7 +253,8 @@ def cmd_volume(args) -> int:
     else:
         config = load_config(args.config) if args.config else ses.ws.detector
         eps = api.replay_session(
-            ses, config, engine=args.engine, workers=args.workers, scheduler=args.scheduler
+            ses, config, config_name=args.config, engine=args.engine, workers=args.workers,
+            scheduler=args.scheduler,
         ).episodes
     start, end = _period(ses, args)
     table = api.alert_volume(ses, eps, start, end)

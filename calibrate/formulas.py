@@ -3,12 +3,14 @@
 A formula such as ``"clicks / impressions"`` or ``"(revenue - spend) / max(spend, 1)"``
 may use numbers, measure names, ``+ - * /``, unary minus/plus, parentheses and the
 functions in `FUNCTIONS`. Division by zero gives NaN (0/0 is undefined, and x/0 is
-reported as undefined too rather than as an infinity).
+reported as undefined too rather than as an infinity). A formula is at most
+`MAX_FORMULA_CHARS` characters and `MAX_FORMULA_DEPTH` operations deep.
 """
 
 from __future__ import annotations
 
 import ast
+import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import reduce
@@ -40,6 +42,10 @@ FUNCTIONS: dict[str, Function] = {
 }
 
 _BINARY = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/"}
+# Caps that keep parsing and evaluation (both recursive) far from Python's limits; a
+# sum of 100 terms or a 1,000-character formula is already beyond any KPI definition.
+MAX_FORMULA_CHARS = 1000
+MAX_FORMULA_DEPTH = 100
 
 
 def divide(a: np.ndarray | float, b: np.ndarray | float) -> np.ndarray:
@@ -94,15 +100,40 @@ def parse_formula(text: str, measures: Sequence[str], where: str) -> Formula:
     """
     if not isinstance(text, str) or not text.strip():
         raise InputError(where, f"must be a formula over measures, but got {text!r}")
+    if len(text) > MAX_FORMULA_CHARS:
+        raise InputError(
+            where, f"formula is {len(text)} characters long; at most {MAX_FORMULA_CHARS} "
+            "are allowed"
+        )
     try:
         tree = ast.parse(text.strip(), mode="eval").body
     except SyntaxError as exc:
         raise InputError(where, f"cannot parse formula {text!r}: {exc.msg}") from None
+    except (RecursionError, MemoryError):
+        raise InputError(where, "formula is nested too deeply to parse") from None
+    depth = _depth(tree)
+    if depth > MAX_FORMULA_DEPTH:
+        raise InputError(
+            where, f"formula is {depth} operations deep; at most {MAX_FORMULA_DEPTH} are "
+            "allowed (a sum of many terms counts one level per term)"
+        )
     names: list[str] = []
     _check(tree, set(measures), names, text, where)
     if not names:
         raise InputError(where, f"formula {text!r} must use at least one measure")
     return Formula(text=text, names=tuple(names), tree=tree)
+
+
+def _depth(tree: ast.AST) -> int:
+    """Operations on the longest path from the root to a leaf (iterative: the tree may
+    be deeper than the stack)."""
+    deepest, stack = 0, [(tree, 0)]
+    while stack:
+        node, d = stack.pop()
+        deepest = max(deepest, d)
+        stack.extend((child, d + 1) for child in ast.iter_child_nodes(node)
+                     if isinstance(child, ast.expr))
+    return deepest
 
 
 def _check(node: ast.AST, measures: set[str], names: list[str], text: str, where: str) -> None:
@@ -112,6 +143,9 @@ def _check(node: ast.AST, measures: set[str], names: list[str], text: str, where
     if isinstance(node, ast.Constant):
         if isinstance(node.value, bool) or not isinstance(node.value, int | float):
             raise bad(f"only numbers may appear as constants, but got {node.value!r}")
+        if not math.isfinite(node.value):  # e.g. 1e400, which Python reads as inf
+            raise bad(f"constant {ast.get_source_segment(text.strip(), node) or node.value!r} is "
+                      "not a finite number")
     elif isinstance(node, ast.Name):
         if node.id not in measures:
             known = ", ".join(sorted(measures)) or "none"

@@ -26,6 +26,13 @@ from calibrate.workspace import Workspace
 
 HOUR_NS = 3_600_000_000_000
 MAX_HOURS = 24 * 366 * 10  # a longer grid is almost surely a mistyped year
+# Largest measure value accepted. Hourly counts and amounts stay far below it, and above
+# it float64 (exact to 2**53, about 9.007e15) no longer holds whole units, so sums up the
+# levels would round; a larger value is a damaged or mis-scaled row. Bounded values keep
+# every roll-up sum finite (1e15 times any feasible row count is far below 1.8e308).
+MAX_VALUE = 1e15
+# After the date part, an offset is 'Z' or +HH[:MM] / -HH[:MM] at the end of the text.
+_OFFSET = r"(?:[Zz]|[+-]\d\d(?::?\d\d)?)\s*$"
 
 
 @dataclass
@@ -72,11 +79,17 @@ class History:
     key_columns : tuple of str
         Full key columns of the input rows.
     filled : pandas.DataFrame
-        Per base series (key columns) and measure, number of hours filled.
+        Per base series (key columns) and measure, number of hours filled (missing
+        rows and blank cells).
     source_hash : str
         SHA-256 of the input (file bytes, or query text plus rows for SQL).
     n_rows : int
         Number of input rows.
+    blank_cells : dict of str to int
+        Per measure, input cells that were blank (CSV), null or NaN (Parquet, SQL);
+        they are filled like missing hours and counted in `filled` too.
+    naive_rows : int
+        Input rows whose time had no UTC offset (read as UTC).
     """
 
     hours: pd.DatetimeIndex
@@ -85,6 +98,8 @@ class History:
     filled: pd.DataFrame = field(default_factory=pd.DataFrame)
     source_hash: str = ""
     n_rows: int = 0  # input rows read
+    blank_cells: dict[str, int] = field(default_factory=dict)
+    naive_rows: int = 0
 
     @property
     def n_hours(self) -> int:
@@ -165,6 +180,8 @@ class RowParser:
         self.hours: list[np.ndarray] = []
         self.keys: dict[str, list[pd.Categorical]] = {k: [] for k in ws.history.key_columns}
         self.values: dict[str, list[np.ndarray]] = {m: [] for m in ws.measures}
+        self.blank_cells = dict.fromkeys(ws.measures, 0)
+        self.naive_rows = 0
 
     def at(self, pos: int, column: str) -> str:
         """Location of chunk-relative row `pos` in messages."""
@@ -185,12 +202,14 @@ class RowParser:
             ts = col.dt.tz_convert("UTC")
         elif pd.api.types.is_datetime64_dtype(col.dtype):
             ts = col.dt.tz_localize("UTC")
+            self.naive_rows += int(col.notna().sum())
         elif pd.api.types.is_numeric_dtype(col.dtype) and len(col):
             raise InputError(
                 self.at(0, column), f"hour {col.iloc[0]!r} is a number, not an ISO-8601 time"
             )
         else:
             ts = pd.to_datetime(col, utc=True, format="ISO8601", errors="coerce")
+            self.naive_rows += _naive_count(col)
         bad = np.flatnonzero(ts.isna().to_numpy())
         if len(bad):
             i = int(bad[0])
@@ -226,6 +245,10 @@ class RowParser:
         if len(blank):
             first = int(np.flatnonzero(cat.codes == blank[0])[0])
             raise InputError(self.at(first, column), "key is blank")
+        nul = np.flatnonzero(labels.str.contains("\x00", regex=False))
+        if len(nul):  # a damaged file; the key would make a series of its own
+            first = int(np.flatnonzero(cat.codes == nul[0])[0])
+            raise InputError(self.at(first, column), "key contains a NUL byte")
         return cat
 
     def _measure(self, col: pd.Series, column: str) -> np.ndarray:
@@ -250,6 +273,15 @@ class RowParser:
                 f"value {vals[i]:g} is negative (measures are counts or amounts; "
                 "negative counts cannot be summed up the levels)",
             )
+        big = np.flatnonzero(vals > MAX_VALUE)
+        if len(big):
+            i = int(big[0])
+            raise InputError(
+                self.at(i, column),
+                f"value {vals[i]:g} is above {MAX_VALUE:g}, not a plausible hourly count or "
+                "amount (a damaged or mis-scaled row?)",
+            )
+        self.blank_cells[column] += int(np.isnan(vals).sum())
         return vals  # NaN = blank cell: filled like a missing hour
 
     def row(self, pos: int) -> int:
@@ -309,6 +341,7 @@ class RowParser:
         grid_hours = pd.date_range(
             pd.Timestamp(h0 * HOUR_NS, unit="ns", tz="UTC"), periods=n_hours, freq="h"
         )
+        _check_metrics(levels, ws, grid_hours)
         return History(
             hours=grid_hours,
             levels=levels,
@@ -316,6 +349,8 @@ class RowParser:
             filled=filled_frame,
             source_hash=source_hash,
             n_rows=self.n_rows,
+            blank_cells=dict(self.blank_cells),
+            naive_rows=self.naive_rows,
         )
 
     def _too_long(self, hour_idx: np.ndarray, n_hours: int, h0: int) -> None:
@@ -356,6 +391,44 @@ class RowParser:
                     f"(first at row {self.row(seen[c])})",
                 )
             seen[c] = pos
+
+
+def _naive_count(text: pd.Series) -> int:
+    """Times whose text names no UTC offset (looked at once per distinct text)."""
+    codes, distinct = pd.factorize(text)
+    if not len(distinct):
+        return 0
+    after_date = pd.Series(distinct).astype("str").str.slice(10)
+    offset = after_date.str.contains(_OFFSET, regex=True, na=False).to_numpy(dtype=bool)
+    return int(((codes >= 0) & ~offset[np.maximum(codes, 0)]).sum())
+
+
+def _check_metrics(levels: dict[str, LevelSeries], ws: Workspace, hours: pd.DatetimeIndex) -> None:
+    """Refuse a watched derived metric that is infinite anywhere or undefined everywhere:
+    either way the detector would silently raise nothing for it."""
+    for name in ws.metric_names:
+        if name not in ws.metrics:
+            continue  # a measure: finite and bounded by row validation
+        where = f"{ws.file.name} [metrics] key '{name}'"
+        defined = False
+        for ls in levels.values():
+            v = ls.values[name]
+            inf = np.argwhere(np.isinf(v))
+            if len(inf):
+                s, h = (int(x) for x in inf[0])
+                raise InputError(
+                    where,
+                    f"formula {ws.metrics[name]!r} gives an infinite value (level "
+                    f"{ls.level}, series '{ls.series_label(s)}', hour "
+                    f"{hours[h].strftime('%Y-%m-%dT%H:%M:%SZ')}); a watched metric must be finite",
+                )
+            defined = defined or bool((~np.isnan(v)).any())
+        if not defined:
+            raise InputError(
+                where,
+                f"formula {ws.metrics[name]!r} is undefined (0/0 or x/0) at every hour of "
+                "every series, so it could never alert; fix the formula or stop watching it",
+            )
 
 
 def _iso(hour_number: int) -> str:

@@ -238,10 +238,13 @@ class FrameRows:
     def require(self, columns: tuple[str, ...] | list[str]) -> None:
         missing = [c for c in columns if c not in self.df.columns]
         if missing:
+            # list what was found only for a table of the expected kind: a path that
+            # points at some other file must not have its first line echoed
+            looks = len(self.columns) > 1 and len(missing) < len(columns)
+            found = ", ".join(self.columns) if looks else "none of the expected columns"
             raise InputError(
                 f"{self.where} row 1",
-                f"missing column(s) {', '.join(repr(c) for c in missing)}"
-                f" (found: {', '.join(self.columns) or 'none'})",
+                f"missing column(s) {', '.join(repr(c) for c in missing)} (found: {found})",
             )
 
     def text(self, column: str) -> np.ndarray:

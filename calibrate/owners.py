@@ -73,6 +73,26 @@ class Owners:
                 return team
         return ""
 
+    def unmatched(self, base_keys: pd.DataFrame) -> pd.DataFrame:
+        """Owners rows whose keys are a prefix of no base series (typos, retired keys).
+
+        `base_keys` holds the history's base series (all key columns). A row with every
+        key blank matches any series. Returns those rows (with `row`, the file row).
+        """
+        cols = [c for c in self.key_columns if c in self.rows.columns]
+        hit = np.zeros(len(self.rows), dtype=bool)
+        for d in range(self.max_depth + 1):
+            at = (self.rows["depth"] == d).to_numpy()
+            if not at.any():
+                continue
+            if d == 0:
+                hit[at] = len(base_keys) > 0
+                continue
+            prefixes = base_keys[cols[:d]].astype(str).drop_duplicates()
+            found = self.rows.loc[at, cols[:d]].merge(prefixes, how="left", indicator=True)
+            hit[at] = (found["_merge"] == "both").to_numpy()
+        return self.rows[~hit]
+
     def route(self, level_series: LevelSeries, base_keys: pd.DataFrame | None = None) -> np.ndarray:
         """Team of every series of a level (object array of str, "" when unrouted)."""
         return self.route_keys(level_series.keys, base_keys)

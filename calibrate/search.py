@@ -928,6 +928,7 @@ def tune(
     if ses.incidents is None:
         raise InputError(str(ws.file), "no [incidents] path: nothing to tune against")
     space, starts, first_hour, split, fence_w, ks, ms = _plan(ses, warm_start)
+    api.require_incidents(ses, first_hour, split)
     current = ws.detector
     name = study_name or study_name_for(ses, goal, known_false)
     store, store_name = open_storage(ses, storage)

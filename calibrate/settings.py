@@ -156,8 +156,9 @@ class DetectorSettings:
             raise bad(
                 "fence_window_hours", "must be at least 4 and below decomposition_window_hours"
             )
-        if not self.fence_multiplier > 0:
-            raise bad("fence_multiplier", "must be positive")
+        # inf or nan would flag nothing at all: alerting silently off
+        if not (math.isfinite(self.fence_multiplier) and self.fence_multiplier > 0):
+            raise bad("fence_multiplier", "must be a finite positive number")
         if self.quartile_method not in QUARTILE_METHODS:
             raise bad("quartile_method", f"must be one of {', '.join(QUARTILE_METHODS)}")
         if self.sides not in SIDES:

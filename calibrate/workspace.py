@@ -6,6 +6,7 @@ is the only place a workspace file is parsed and checked.
 
 from __future__ import annotations
 
+import math
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
@@ -242,6 +243,8 @@ def _int(value: Any, loc: str, minimum: int | None = None) -> int:
 def _number(value: Any, loc: str) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float):
         raise InputError(loc, f"must be a number, but got {value!r}")
+    if not math.isfinite(value):  # TOML allows inf and nan
+        raise InputError(loc, f"must be a finite number, but got {value!r}")
     return float(value)
 
 
@@ -563,3 +566,5 @@ def _check_type(value: Any, typ: str, loc: str) -> None:
     }.get(typ, True)
     if not ok:
         raise InputError(loc, f"values must be of type {typ}, but got {value!r}")
+    if typ == "float" and not math.isfinite(value):
+        raise InputError(loc, f"values must be finite numbers, but got {value!r}")
