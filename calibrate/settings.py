@@ -165,11 +165,9 @@ class DetectorSettings:
             raise bad("sides", "must be 'up', 'down' or 'both'")
         if self.flatline_hours < 0 or self.flatline_hours == 1:
             raise bad("flatline_hours", "must be 0 (off) or at least 2")
-        if not self.min_impact >= 0 or not all(v >= 0 for _, v in self.min_impact_per_metric):
-            raise bad("min_impact", "must be zero or positive")
-        if not all(math.isfinite(v) for _, v in self.min_impact_per_metric) or not math.isfinite(
-                self.min_impact):
-            raise bad("min_impact", "must be finite (an infinite minimum impact never alerts)")
+        values = [self.min_impact, *(v for _, v in self.min_impact_per_metric)]
+        if not all(math.isfinite(v) and v >= 0 for v in values):
+            raise bad("min_impact", "must be a finite number, zero or positive")
         if self.combine not in COMBINE_RULES and not (
             self.combine.isdigit() and int(self.combine) >= 1
         ):
