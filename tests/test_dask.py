@@ -283,7 +283,7 @@ def test_a_worker_that_retires_mid_run_has_its_batches_rerun(monkeypatch):
 
     monkeypatch.setattr(executors_mod, "LIVENESS_SECONDS", 0.2)
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
-                      dashboard_address=None) as cluster:
+                      dashboard_address=":0") as cluster:  # any free port, not 8787
         ex = DaskExecutor(cluster.scheduler_address)
         try:
             tasks = list(range(300))
