@@ -2,6 +2,8 @@
 
 Every command is one function `cmd_NAME(args) -> int`; expected errors
 (`CalibrationError`) print one line on stderr and exit 1, never a traceback.
+Ctrl-C (SIGINT) and SIGTERM stop a command the same way, cleaning up on the way
+out, with one line and exit 130 or 143.
 """
 
 from __future__ import annotations
@@ -9,8 +11,14 @@ from __future__ import annotations
 import argparse
 import errno
 import json
+import logging
+import os
+import signal
 import sys
+import threading
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 from calibrate.errors import CalibrationError
 
@@ -309,8 +317,43 @@ COMMANDS = {
 }
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised like Ctrl-C's KeyboardInterrupt so the same cleanup runs."""
+
+
+EXIT_CODES = {signal.SIGINT: 130, signal.SIGTERM: 143}  # 128 + the signal's number
+
+
+def _stop_handler(command: str) -> Callable[[int, Any], None]:
+    """A handler for SIGINT and SIGTERM: the first one stops the command through
+    an exception (so files and worker pools are closed on the way out) and
+    silences logging (libraries would log the interrupted work with a traceback);
+    a second one, while that cleanup runs, ends the process at once."""
+    stopping: list[int] = []
+
+    def handler(signum: int, frame: Any) -> None:
+        if stopping:
+            _say_stopped(command, signum)
+            os._exit(EXIT_CODES[signum])
+        stopping.append(signum)
+        logging.disable(logging.CRITICAL)
+        raise Terminated if signum == signal.SIGTERM else KeyboardInterrupt
+
+    return handler
+
+
+def _say_stopped(command: str, signum: int) -> None:
+    what = "terminated" if signum == signal.SIGTERM else "interrupted"
+    print(f"calibrate {command}: {what}", file=sys.stderr, flush=True)
+
+
 def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
+    previous = {}
+    logging_off = logging.root.manager.disable
+    if threading.current_thread() is threading.main_thread():
+        handler = _stop_handler(args.command)
+        previous = {sig: signal.signal(sig, handler) for sig in EXIT_CODES}
     try:
         return COMMANDS[args.command](args)
     except CalibrationError as exc:
@@ -325,9 +368,14 @@ def main(argv: list[str] | None = None) -> int:
         print(f"calibrate {args.command}: {os_error(exc.filename or 'a file', exc)}",
               file=sys.stderr)
         return 1
-    except KeyboardInterrupt:
-        print(f"calibrate {args.command}: interrupted", file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = signal.SIGTERM if isinstance(exc, Terminated) else signal.SIGINT
+        _say_stopped(args.command, signum)
+        return EXIT_CODES[signum]
+    finally:
+        for sig, old in previous.items():
+            signal.signal(sig, old)
+        logging.disable(logging_off)
 
 
 if __name__ == "__main__":

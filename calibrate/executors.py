@@ -12,13 +12,16 @@ on a worker holding its copy.
 
 from __future__ import annotations
 
+import contextlib
 import os
+import signal
 import socket
 import threading
 from collections import Counter, deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import CancelledError, ProcessPoolExecutor, as_completed
 from multiprocessing import get_context
+from multiprocessing.connection import Connection
 from typing import Any
 
 from calibrate.errors import CalibrationError
@@ -26,9 +29,56 @@ from calibrate.errors import CalibrationError
 _SHARED: dict[int, Any] = {}
 
 
-def _init_worker(token: int, shared: Any) -> None:
+def _init_worker(token: int, shared: Any, caller_alive: Connection) -> None:
+    exit_with_caller(caller_alive)
+    # Ctrl-C in a terminal reaches the whole process group: the calling process
+    # stops the pool, a worker interrupted on its own would only print a traceback
+    # (already ignored when `_start_fork_server` started the fork server)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     _SHARED[token] = shared
     single_thread_worker()
+
+
+def _start_fork_server() -> None:
+    """Start the fork server (once per process) with Ctrl-C ignored.
+
+    A terminal sends SIGINT to every process of the foreground group. The fork
+    server hands its own start-up handlers to the workers it forks, so started
+    this way a worker ignores SIGINT from its first instruction, not only once
+    its initializer runs: a worker still starting up (unpickling the history)
+    would otherwise die with a traceback and break the pool.
+    """
+    from multiprocessing import forkserver
+
+    if threading.current_thread() is not threading.main_thread():
+        forkserver.ensure_running()  # signal handlers can only be set in the main thread
+        return
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        forkserver.ensure_running()
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def exit_with_caller(caller_alive: Connection) -> None:
+    """End this worker process as soon as the process that started its pool ends,
+    however it ends (SIGKILL included).
+
+    `caller_alive` is the read end of a pipe whose only write end the calling
+    process holds: when it ends, the kernel closes that end and a daemon thread
+    waiting here reads end-of-file. Neither the fork server's own pipe nor
+    ``prctl(PR_SET_PDEATHSIG)`` can do this: a fork-server worker's parent is
+    the fork server, which stays up as long as any of its workers does.
+    """
+    threading.Thread(target=_exit_at_eof, args=(caller_alive,), daemon=True,
+                     name="exit-with-caller").start()
+
+
+def _exit_at_eof(conn: Connection) -> None:
+    with contextlib.suppress(EOFError, OSError):
+        while True:
+            conn.recv_bytes()
+    os._exit(1)
 
 
 def single_thread_worker() -> None:
@@ -82,17 +132,21 @@ class LocalExecutor(Executor):
         self._pool: ProcessPoolExecutor | None = None
         self._token: int | None = None
         self._shared: Any = None  # held so its id cannot be reused by other data
+        self._caller_alive: tuple[Connection, Connection] | None = None
 
     def _pool_for(self, shared: Any) -> ProcessPoolExecutor:
         token = id(shared)
         if self._pool is None or self._shared is not shared:
             self.close()
             self._shared = shared
+            context = get_context("forkserver")
+            _start_fork_server()
+            self._caller_alive = context.Pipe(duplex=False)  # (read end, write end)
             self._pool = ProcessPoolExecutor(
                 max_workers=self.workers,
-                mp_context=get_context("forkserver"),
+                mp_context=context,
                 initializer=_init_worker,
-                initargs=(token, shared),
+                initargs=(token, shared, self._caller_alive[0]),
             )
             self._token = token
         return self._pool
@@ -115,6 +169,9 @@ class LocalExecutor(Executor):
             self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
             self._token = None
+            for end in self._caller_alive or ():
+                end.close()
+            self._caller_alive = None
         self._shared = None
 
 

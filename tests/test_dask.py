@@ -10,6 +10,7 @@ from __future__ import annotations
 import dataclasses
 import os
 import signal
+import threading
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -238,6 +239,24 @@ def _slow_square(shared: dict, task: int) -> int:
     return shared["offset"] + task * task
 
 
+def _drain(run: Iterator, got: dict, timeout: float = 60.0) -> None:
+    """Collect the rest of a run into `got` (each task's result must arrive once),
+    failing instead of hanging when it does not end within `timeout` seconds."""
+    dup: list[int] = []
+
+    def collect() -> None:
+        for i, value in run:
+            if i in got:
+                dup.append(i)
+            got[i] = value
+
+    t = threading.Thread(target=collect, daemon=True)
+    t.start()
+    t.join(timeout)
+    assert not t.is_alive(), f"the run did not end within {timeout} s"
+    assert dup == []
+
+
 def test_a_worker_that_dies_mid_run_has_its_batches_rerun(dask_ex):
     """A worker killed mid-run takes its copy of the shared data along; its batches
     run on the other worker (or on the one that replaces it), each task once."""
@@ -248,9 +267,32 @@ def test_a_worker_that_dies_mid_run_has_its_batches_rerun(dask_ex):
     victim = sorted(dask_ex.shared_keys)[0]
     pid = client.run(os.getpid, workers=[victim])[victim]
     os.kill(pid, signal.SIGKILL)
-    for i, value in run:
-        assert i not in got  # each task's result arrives once
-        got[i] = value
+    _drain(run, got)
     assert got == {i: 3 + t * t for i, t in enumerate(tasks)}
     assert victim not in dask_ex.shared_keys  # its copy is forgotten
     client.wait_for_workers(2, timeout=30)  # the nanny restarts it for later tests
+
+
+def test_a_worker_that_retires_mid_run_has_its_batches_rerun(monkeypatch):
+    """A worker retired gracefully mid-run hands its data to another worker and
+    leaves; the batches queued for it run on the other worker, each task once.
+    (A cluster of its own: the module's cluster keeps its two workers.)"""
+    from dask.distributed import LocalCluster
+
+    import calibrate.executors as executors_mod
+
+    monkeypatch.setattr(executors_mod, "LIVENESS_SECONDS", 0.2)
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                      dashboard_address=":0") as cluster:  # any free port, not 8787
+        ex = DaskExecutor(cluster.scheduler_address)
+        try:
+            tasks = list(range(300))
+            run = ex.run(_slow_square, {"offset": 5}, tasks)
+            got = dict([next(run)])
+            victim = sorted(ex.shared_keys)[0]
+            ex._client.retire_workers([victim], close_workers=True)
+            _drain(run, got)
+            assert got == {i: 5 + t * t for i, t in enumerate(tasks)}
+            assert victim not in ex.shared_keys
+        finally:
+            ex.close()
