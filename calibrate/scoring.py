@@ -941,6 +941,199 @@ def _online_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, n_k, n_t, n_inc
     return counts, caught
 
 
+@dataclass
+class ExactPoint:
+    """The (multiplier, minimum-impact level) pair `exact_solve` chose, with its figures.
+
+    Attributes
+    ----------
+    k : float
+        The multiplier: a breakpoint of the grid it was solved on (every k up to the
+        next breakpoint gives the same flags).
+    level : int
+        Minimum-impact level (row of the run table's ``raised``).
+    caught, alerts, known_false : int
+    team_alerts : ndarray of int64
+        Alerts per team, in the order of `teams`.
+    teams : tuple of str
+    """
+
+    k: float
+    level: int
+    caught: int
+    alerts: int
+    known_false: int
+    team_alerts: np.ndarray
+    teams: tuple[str, ...]
+
+
+def exact_solve(runs: Any, ks: np.ndarray, incidents: Incidents, early: int, late: int,
+                teams_analysts: Mapping[str, int], n_days: float, goal: Goal,
+                false_windows: Incidents | None = None,
+                false_penalty: float = 1.0) -> ExactPoint | None:
+    """The fewest (penalised) alerts meeting the goal, over every multiplier of `ks` and
+    every minimum-impact level of `runs`.
+
+    With `ks` every distinct fence score (the breakpoints: flags change only there)
+    this is the exact optimum, not a grid's. Counts per multiplier come from interval
+    sums over the runs (each run is one episode over a range of multipliers), so the
+    cost is linear in runs and breakpoints per level.
+
+    Parameters
+    ----------
+    runs : calibrate.replay.RunTable
+        Runs over the ascending grid `ks`, with raised hours per minimum-impact level.
+    ks : ndarray
+        Ascending multipliers.
+    incidents, early, late, teams_analysts, n_days
+        As for `multiplier_curve`.
+    goal : Goal
+        Feasible: ``(n - caught) / n <= max_miss_rate`` and every team with analysts at
+        most its budget in alerts per analyst per day.
+    false_windows : Incidents, optional
+        Alerts raised inside one cost ``1 + false_penalty``.
+
+    Returns
+    -------
+    ExactPoint or None
+        None when no pair is feasible. Ties: the larger multiplier, then the lower level.
+    """
+    ks = np.asarray(ks, dtype=np.float64)
+    if len(ks) > 1 and np.any(np.diff(ks) <= 0):
+        raise ValueError("ks must be strictly ascending")
+    ep = runs.runs
+    raised = np.ascontiguousarray(runs.raised, dtype=np.int64)
+    teams, tp = _curve_teams(ep, teams_analysts)
+    n_t = len(teams)
+    denom = np.array([teams_analysts.get(t, 0) * n_days for t in teams], dtype=np.float64)
+    budget = np.array([goal.budget(t) for t in teams], dtype=np.float64)
+    pa, pi = _overlap_pairs(ep, incidents, early, late)
+    if false_windows is not None and len(false_windows):
+        fa, fi = _overlap_pairs(ep, false_windows, 0, 0)
+        f_lo, f_hi = false_windows.start, false_windows.end
+    else:
+        fa = fi = np.empty(0, dtype=np.int64)
+        f_lo = f_hi = np.empty(0, dtype=np.int64)
+    lo = np.asarray(runs.lo, dtype=np.int64)
+    hi = np.asarray(runs.hi, dtype=np.int64)
+    best = _exact_kernel(lo, hi, raised, tp, pa, pi, incidents.start - early,
+                         incidents.end + late, fa, fi, f_lo, f_hi, len(ks), max(n_t, 1),
+                         len(incidents), denom, budget, float(goal.max_miss_rate),
+                         float(false_penalty))
+    level, j, caught, alerts, kf = (int(v) for v in best[0])
+    if j < 0:
+        return None
+    return ExactPoint(k=float(ks[j]), level=level, caught=caught, alerts=alerts,
+                      known_false=kf, team_alerts=best[1][:n_t].copy(), teams=teams)
+
+
+@numba.njit(cache=True)
+def _exact_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, fa, fi, f_lo, f_hi, n_k,
+                  n_t, n_inc, denom, budget, max_miss, penalty):
+    """`exact_solve` on arrays: per level, alerts per team, known-false alerts and
+    incidents caught at every multiplier index (difference arrays; an incident's
+    catching runs merged into a union of index ranges), then the best feasible pair."""
+    n_m, n = raised.shape
+    head = np.zeros(n + 1, dtype=np.int64)  # incident pairs grouped by run
+    for q in range(pa.shape[0]):
+        head[pa[q] + 1] += 1
+    head = np.cumsum(head)
+    fill = head.copy()
+    inc = np.empty(pa.shape[0], dtype=np.int64)
+    for q in range(pa.shape[0]):
+        inc[fill[pa[q]]] = pi[q]
+        fill[pa[q]] += 1
+    fhead = np.zeros(n + 1, dtype=np.int64)  # known-false pairs grouped by run
+    for q in range(fa.shape[0]):
+        fhead[fa[q] + 1] += 1
+    fhead = np.cumsum(fhead)
+    ffill = fhead.copy()
+    fwin = np.empty(fa.shape[0], dtype=np.int64)
+    for q in range(fa.shape[0]):
+        fwin[ffill[fa[q]]] = fi[q]
+        ffill[fa[q]] += 1
+    out = np.array([-1, -1, 0, 0, 0], dtype=np.int64)
+    out_teams = np.zeros(n_t, dtype=np.int64)
+    best_cost = np.inf
+    best_k = -1
+    need = 0
+    if n_inc > 0:
+        while (n_inc - need) / n_inc > max_miss:
+            need += 1
+    for lv in range(n_m):
+        d_team = np.zeros((n_k + 1, n_t), dtype=np.int64)
+        d_false = np.zeros(n_k + 1, dtype=np.int64)
+        c_key = np.empty(pa.shape[0], dtype=np.int64)
+        c_lo = np.empty(pa.shape[0], dtype=np.int64)
+        c_hi = np.empty(pa.shape[0], dtype=np.int64)
+        m = 0
+        for e in range(n):
+            r = raised[lv, e]
+            if r < 0:
+                continue
+            t = max(team[e], 0)
+            d_team[lo[e], t] += 1
+            d_team[hi[e], t] -= 1
+            for q in range(fhead[e], fhead[e + 1]):
+                w = fwin[q]
+                if f_lo[w] <= r < f_hi[w]:
+                    d_false[lo[e]] += 1
+                    d_false[hi[e]] -= 1
+                    break
+            for q in range(head[e], head[e + 1]):
+                i = inc[q]
+                if win_lo[i] <= r < win_hi[i]:
+                    c_key[m] = i * (n_k + 1) + lo[e]
+                    c_lo[m] = lo[e]
+                    c_hi[m] = hi[e]
+                    m += 1
+        # per incident, the union of its catching runs' index ranges
+        d_caught = np.zeros(n_k + 1, dtype=np.int64)
+        order = np.argsort(c_key[:m])
+        q = 0
+        while q < m:
+            i = c_key[order[q]] // (n_k + 1)
+            a, b = c_lo[order[q]], c_hi[order[q]]
+            q += 1
+            while q < m and c_key[order[q]] // (n_k + 1) == i:
+                u = order[q]
+                if c_lo[u] <= b:
+                    b = max(b, c_hi[u])
+                else:
+                    d_caught[a] += 1
+                    d_caught[b] -= 1
+                    a, b = c_lo[u], c_hi[u]
+                q += 1
+            d_caught[a] += 1
+            d_caught[b] -= 1
+        alerts_t = np.zeros(n_t, dtype=np.int64)
+        kf = 0
+        caught = 0
+        for j in range(n_k):
+            alerts_t += d_team[j]
+            kf += d_false[j]
+            caught += d_caught[j]
+            if caught < need:
+                continue
+            ok = True
+            for t in range(n_t):  # the rule of the search's budget constraint
+                if denom[t] > 0 and np.isfinite(budget[t]) and (
+                        alerts_t[t] / denom[t]) / budget[t] - 1.0 > 0:
+                    ok = False
+                    break
+            if not ok:
+                continue
+            total = alerts_t.sum()
+            cost = total + penalty * kf
+            # ties: the larger multiplier (later j), then the lower level (earlier lv)
+            if cost < best_cost or (cost == best_cost and j > best_k):
+                best_cost = cost
+                best_k = j
+                out[0], out[1], out[2], out[3], out[4] = lv, j, caught, total, kf
+                out_teams[:] = alerts_t
+    return out, out_teams
+
+
 def solve_multiplier(
     curve: Curve, max_miss_rate: float, budgets: Mapping[str, float] | Goal
 ) -> tuple[float | None, str]:

@@ -3,10 +3,13 @@
 Optuna drives the structural settings (windows, spans, flatline hours, ...); the
 fence multiplier is never searched. For each trial the `Replayer` computes fence
 scores (cached remainder streams: only settings that change the decomposition
-refit), `sweep_codes` turns them into the episodes of a whole multiplier grid at
-once (text columns as integer codes), `multiplier_curve` scores every grid point on
-the tuning hours, and `solve_multiplier` picks the largest multiplier meeting the
-miss-rate target and every team's alert budget.
+refit); the flags change only where k passes a score, so `Evaluator.breakpoints`
+(every distinct score of the hours before the split in the multiplier range) are
+all the multipliers there are, `sweep_runs` turns them into runs of flagged hours
+(each one episode over a range of breakpoints) and `scoring.exact_solve` picks the
+breakpoint with the fewest alerts that meets the miss-rate target and every team's
+alert budget. An 80-point grid (`multiplier_curve`) is scored for plots, the
+trade-off front and, when nothing is feasible, the point closest to the goal.
 
 Minimum impact: solved per watched metric, in the metric's own units, together with
 the multiplier (unless `[search]` lists values for Optuna to sample). Each metric has
@@ -14,15 +17,14 @@ a range (`impact_ranges`: its own, or 0 to its typical hourly level on the tunin
 weeks); level l of the grid is the same share of every metric's range
 (`impact_grids`). An alert is raised when its episode's |impact so far| reaches the
 metric's minimum impact, so one sweep (`sweep_runs` with the grids) gives every
-run's raised hour at every level, and `impact_curves` scores every (multiplier,
-level) pair at once. For each level the multiplier is solved as above; the pair with
-the fewest (penalised) alerts wins, ties to the larger multiplier, then the lower
-level.
+run's raised hour at every level, and `exact_solve` scores every (breakpoint,
+level) pair at once; the pair with the fewest (penalised) alerts wins, ties to the
+larger multiplier, then the lower level.
 
 Objective (minimised): alerts per analyst per day over all teams at the solved
 multiplier, i.e. ``(alerts + KNOWN_FALSE_PENALTY * known_false_alerts) /
 (analysts * days)`` on the tuning hours, where ``known_false_alerts`` are alerts
-overlapping a window analysts marked as a false alarm (``known_false``), so each
+raised inside a window analysts marked as a false alarm (``known_false``), so each
 of those counts ``1 + KNOWN_FALSE_PENALTY`` times. With no analysts configured the
 denominator is days. Constraints (Optuna's ``constraints_func``, feasible when all
 are <= 0): ``miss_rate - max_miss_rate`` and ``max over teams of
@@ -72,10 +74,12 @@ from calibrate.incidents import Incidents
 from calibrate.replay import MetricScores, Replayer, sweep_codes, sweep_runs
 from calibrate.scoring import (
     Curve,
+    ExactPoint,
     Figures,
     best_tradeoffs,
     catch_pairs,
     curve_loads,
+    exact_solve,
     impact_curves,
     load_axis,
     multiplier_curve,
@@ -480,39 +484,66 @@ class Evaluator:
         scores = self.replayer.scores(config)
         if not config.groups:
             c, kf, _ = self.curve(scores)
-            k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
-            j = _fallback_index(c, self.goal) if k is None else int(
-                np.flatnonzero(c.ks == k)[0])
-            ev = self._figures(
-                feasible=k is not None and self._budget_ratio(c, j) <= 1.0,
-                reason=reason, k=float(c.ks[j]), group_k={}, caught=int(c.caught[j]),
-                alerts=int(c.alerts[j]), kf=int(kf[j]), team_alerts=c.team_alerts[j],
-                teams=c.teams,
-            )
+            pt = self._exact(scores, None)
+            if pt is not None:
+                ev = self._exact_figures(pt, None)
+            else:  # infeasible: the grid point closest to the goal
+                _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
+                j = _fallback_index(c, self.goal)
+                ev = self._figures(
+                    feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
+                    caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kf[j]),
+                    team_alerts=c.team_alerts[j], teams=c.teams,
+                )
             ev.front = self._front([c], None)
             return ev
         return self._evaluate_groups(config, scores)
 
+    def breakpoints(self, scores: dict[tuple[str, str], MetricScores]) -> np.ndarray:
+        """Every multiplier at which the flags change, within the grid's range: each
+        distinct fence score of the hours before the split in (min grid, max grid],
+        plus the grid itself (today's multiplier among it)."""
+        low, high = float(self.ks.min()), float(self.ks.max())
+        parts = [self.ks]
+        for ms in scores.values():
+            v = ms.score[:, :self.split_hour].ravel()
+            parts.append(v[(v > low) & (v <= high)])
+        return np.unique(np.concatenate(parts))
+
+    def _exact(self, scores: dict[tuple[str, str], MetricScores],
+               grids: dict[str, np.ndarray] | None):
+        """`scoring.exact_solve` over every breakpoint multiplier (and minimum-impact
+        level of `grids`; None: each series' own minimum impact)."""
+        ws = self.ses.ws
+        ks = self.breakpoints(scores)
+        runs = sweep_runs(scores, ks, self.replayer.routes,
+                          start_hours=(self.first_hour, self.split_hour), min_impacts=grids)
+        return exact_solve(runs, ks, self.incidents, ws.incidents.early_hours,
+                           ws.incidents.late_hours, self.ses.analysts, self.n_days, self.goal,
+                           self.false_windows, KNOWN_FALSE_PENALTY)
+
+    def _exact_figures(self, pt: ExactPoint, grids: dict[str, np.ndarray] | None) -> Evaluation:
+        ev = self._figures(
+            feasible=True, reason="", k=pt.k, group_k={}, caught=pt.caught, alerts=pt.alerts,
+            kf=pt.known_false, team_alerts=pt.team_alerts, teams=pt.teams,
+            min_impact=None if grids is None else _level(grids, pt.level))
+        ev.reason = f"k={pt.k:g}: " + _reason(ev, self.goal)
+        return ev
+
     def _evaluate_with_impact(self, config: DetectorConfig) -> Evaluation:
-        """Solve multiplier and minimum impact together: for every grid minimum impact
-        the largest multiplier meeting the goal, then the pair with the fewest
-        (penalised) alerts; ties go to the larger multiplier, then the smaller minimum
-        impact. An infeasible setting reports the pair closest to the goal: the lowest
-        miss-rate excess, then the lowest worst budget ratio."""
+        """Solve multiplier and minimum impacts together (`_exact`): the fewest
+        (penalised) alerts meeting the goal over every breakpoint multiplier and every
+        minimum-impact level; ties go to the larger multiplier, then the lower level. An
+        infeasible setting reports the grid pair closest to the goal: the lowest
+        miss-rate excess, then the lowest worst budget ratio (the exact search's
+        feasible pairs include every grid pair's, so none of those is feasible either)."""
         grids = self.min_impacts
-        curves, kfs, _ = self._impact_curves(self.replayer.scores(config), grids)
-        best: tuple[tuple[float, float, float], int, int, str] | None = None
-        for lv, c in enumerate(curves):
-            k, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
-            if k is None:
-                continue
-            j = int(np.flatnonzero(c.ks == k)[0])
-            rank = (float(c.alerts[j] + KNOWN_FALSE_PENALTY * kfs[lv][j]), -k, float(lv))
-            if best is None or rank < best[0]:
-                best = (rank, lv, j, reason)
-        if best is None:
-            # as for a fixed minimum impact, over every pair: the lowest miss-rate excess,
-            # then the lowest worst budget ratio, then the larger k and smaller impact
+        scores = self.replayer.scores(config)
+        curves, kfs, _ = self._impact_curves(scores, grids)
+        pt = self._exact(scores, grids)
+        if pt is not None:
+            ev = self._exact_figures(pt, grids)
+        else:
             picks = []
             for lv, c in enumerate(curves):
                 j = _fallback_index(c, self.goal)
@@ -520,15 +551,12 @@ class Evaluator:
                 picks.append((max(miss - self.goal.max_miss_rate, 0.0),
                               self._budget_ratio(c, j), -float(c.ks[j]), float(lv), lv, j))
             *_, lv, j = min(picks)
-            c, feasible = curves[lv], False
+            c = curves[lv]
             _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
-        else:
-            _, lv, j, reason = best
-            c, feasible = curves[lv], True
-        ev = self._figures(
-            feasible=feasible, reason=reason, k=float(c.ks[j]), group_k={},
-            caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
-            team_alerts=c.team_alerts[j], teams=c.teams, min_impact=_level(grids, lv))
+            ev = self._figures(
+                feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
+                caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
+                team_alerts=c.team_alerts[j], teams=c.teams, min_impact=_level(grids, lv))
         ev.front = self._front(curves, grids)
         return ev
 
@@ -1471,6 +1499,10 @@ def metric_lines(result: TuneResult) -> list[str]:
             warnings.append(f"WARNING: metric '{metric}' has {n} labelled incident(s) in the "
                             "tuning weeks but the tuned settings raise no alert on it: it is "
                             "switched off in effect; check its minimum impact")
+        elif n and caught == 0 and metric != "(any)":
+            warnings.append(f"WARNING: metric '{metric}' catches none of its {n} labelled "
+                            "incident(s) in the tuning weeks: the goal counts incidents of "
+                            "every metric together and is met without them")
     det = ", ".join(f"{d}: {int(r['alerts'])} alerts ({_pct(r['precision'])} true)"
                     for d, r in f.per_detector.iterrows())
     lines.append(f"per detector, tuning weeks: {det or 'no alerts'}")
