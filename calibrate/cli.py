@@ -241,6 +241,18 @@ def format_figures(d: dict) -> list[str]:
         rate_s = "n/a" if rate is None else f"{rate:.2f}"
         extra = "" if budget is None else f" (budget {budget:g})"
         lines.append(f"team {team}: {t['alerts']} alerts, {rate_s} per analyst per day{extra}")
+    for metric, m in sorted(d.get("per_metric", {}).items()):
+        caught = f"caught {m['caught']} of {m['incidents']}" if m["incidents"] else "no incidents"
+        lines.append(f"metric {metric}: {caught}, {m['alerts']} alerts")
+    for det, r in sorted(d.get("per_detector", {}).items()):
+        lines.append(f"detector {det}: {r['alerts']} alerts, {r['true_alerts']} true")
+    if d.get("already_alerting"):
+        lines.append(f"already alerting: {d['already_alerting']} incident(s) began while an "
+                     "earlier alert was still running (not counted as caught)")
+    if d.get("before_first_scored"):
+        ids = ", ".join(d.get("before_first_scored_ids", []))
+        lines.append(f"before the first scored hour: {d['before_first_scored']} incident(s) "
+                     f"({ids}) cannot be caught; left out of recall")
     return lines
 
 
@@ -265,6 +277,11 @@ def cmd_volume(args) -> int:
             scheduler=args.scheduler,
         ).episodes
     start, end = _period(ses, args)
+    if not args.alerts:
+        first = api.first_scored_hour(config, ses.ws)
+        when = ses.history.hours[min(first, ses.history.n_hours - 1)]
+        print(f"first scored hour: {when:%Y-%m-%dT%H:%MZ} (no alert can be raised during "
+              "the decomposition window's warm-up before it)")
     table = api.alert_volume(ses, eps, start, end)
     with_budget = "budget" in table.columns
     print(

@@ -36,6 +36,7 @@ from calibrate.errors import CalibrationError
 from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
 from calibrate.scoring import (
+    ANY_LABEL,
     load_axis,
     match,
     multiplier_curve,
@@ -722,6 +723,10 @@ def _panel(
     esel &= (ep.end > lo) & (ep.start < hi)
     al_spans = [(_iso(hist.hours, max(int(a), lo)), _iso(hist.hours, min(int(b), hi)))
                 for a, b in zip(ep.start[esel], ep.end[esel], strict=True)]
+    if esel.any():
+        fired = pd.Series(ep.detectors[esel]).value_counts().sort_index()
+        note += " Alerts in view by detector: " + ", ".join(
+            f"{d} {n}" for d, n in fired.items()) + "."
     label = " / ".join(str(v) for v in hist.levels[lv].keys.iloc[s].tolist())
     return SeriesPanel(
         kind=kind, title=title, level=lv, label=label, metric=metric, times=times,
@@ -904,6 +909,55 @@ def goal_rows(data: ReportData) -> tuple[list[str], list[list[Any]]]:
     return headers, rows
 
 
+def metric_rows(data: ReportData) -> tuple[list[str], list[list[Any]], list[str]]:
+    """Recall and alerts of the chosen settings per watched metric and per detector, one
+    column per period, and a warning per metric with labelled incidents in a period but
+    no alert, or none caught."""
+    periods = data.periods
+    headers = ["metric or detector", *[f"{p.name}: caught, recall (95%), alerts"
+                                       for p in periods]]
+    metrics = list(dict.fromkeys(m for p in periods for m in p.figures.get("per_metric", {})))
+    rows: list[list[Any]] = []
+    warnings = []
+    for m in metrics:
+        cells = []
+        for p in periods:
+            r = p.figures.get("per_metric", {}).get(m)
+            if r is None:
+                cells.append("")
+                continue
+            rec = (f"{r['caught']} of {r['incidents']}, {_pct(r['recall'])} "
+                   f"({_pct(r['recall_low'])} to {_pct(r['recall_high'])})"
+                   if r["incidents"] else "no incidents")
+            cells.append(f"{rec}, {r['alerts']}")
+            if r["incidents"] and m != ANY_LABEL and r["alerts"] == 0:
+                warnings.append(f"{p.name}: metric {m} has {r['incidents']} labelled "
+                                "incident(s) but no alert: it is switched off in effect.")
+            elif r["incidents"] and m != ANY_LABEL and r["caught"] == 0:
+                warnings.append(f"{p.name}: metric {m} catches none of its {r['incidents']} "
+                                "incident(s); the goal is met without them.")
+        rows.append([f"metric {m}", *cells])
+    dets = list(dict.fromkeys(d for p in periods for d in p.figures.get("per_detector", {})))
+    for d in dets:
+        cells = []
+        for p in periods:
+            r = p.figures.get("per_detector", {}).get(d)
+            cells.append("" if r is None else
+                         f"{r['true_alerts']} true of {r['alerts']} alerts "
+                         f"(precision {_pct(r['precision'])})")
+        rows.append([f"detector {d}", *cells])
+    for p in periods:
+        n = p.figures.get("before_first_scored", 0)
+        if n:
+            warnings.append(f"{p.name}: {n} incident(s) begin before the first scored hour "
+                            "and cannot be caught; they are left out of recall.")
+        n = p.figures.get("already_alerting", 0)
+        if n:
+            warnings.append(f"{p.name}: {n} incident(s) began while an earlier alert was "
+                            "still running (already alerting): not counted as caught.")
+    return headers, rows, warnings
+
+
 def _rate(row: Mapping[str, Any]) -> str:
     r, b = row.get("alerts_per_analyst_day"), row.get("budget")
     if r is None:
@@ -965,6 +1019,12 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         parts.append(f"<p><strong>Search:</strong> {_e(data.reason)}</p>")
     headers, rows = goal_rows(data)
     parts.append(_table(headers, rows))
+    headers, rows, warnings = metric_rows(data)
+    parts.append("<p>Per watched metric and per detector (chosen settings; tuning-week "
+                 "figures are in-sample, chosen on these labels):</p>")
+    parts.append(_table(headers, rows))
+    for w in warnings:
+        parts.append(f"<p><strong>Warning:</strong> {_e(w)}</p>")
 
     parts.append('<h2 id="settings">2. Settings: current and chosen</h2>')
     ch = data.changed
@@ -1098,6 +1158,11 @@ def render_markdown(data: ReportData) -> str:
     lines.append("")
     headers, rows = goal_rows(data)
     lines += _md_table(headers, rows)
+    headers, rows, warnings = metric_rows(data)
+    lines += ["", "Per watched metric and per detector (chosen settings; tuning-week figures "
+              "are in-sample, chosen on these labels):", ""]
+    lines += _md_table(headers, rows)
+    lines += [f"\n**Warning:** {w}" for w in warnings]
     lines += ["", "## 2. Settings: current and chosen", ""]
     lines += _md_table(["setting", "current", "chosen", "changed"],
                        [[r.name, _show(r.current), _show(r.chosen), "**yes**" if r.changed

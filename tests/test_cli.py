@@ -142,3 +142,26 @@ def test_python_dash_m_runs_the_same_cli(tmp_path) -> None:
                          capture_output=True, text=True, env=env, cwd=tmp_path)
     assert bad.returncode != 0
     assert "no.toml" in bad.stderr and "Traceback" not in bad.stderr
+
+
+def test_score_lists_incidents_before_the_first_scored_hour_apart(ws, tmp_path, capsys):
+    """An incident added at hour 100, before the first scored hour 167 (the workspace's
+    168-hour decomposition window minus one), is listed apart and left out of recall."""
+    inc = pd.read_csv(ws.parent / "incidents.csv", keep_default_na=False)
+    early = inc.iloc[[0]].copy()
+    early["incident_id"], early["start"], early["end"] = (
+        "EARLY", "2026-01-09T04:00:00Z", "2026-01-09T08:00:00Z")
+    hours = pd.read_csv(ws.parent / "history.csv", usecols=["hour"])["hour"]
+    first = pd.Timestamp(hours.min())
+    assert pd.Timestamp(early["start"].iloc[0]) < first + pd.Timedelta(hours=167)
+    pd.concat([inc, early]).to_csv(ws.parent / "incidents.csv", index=False)
+    out = tmp_path / "alerts.csv"
+    assert main(["replay", str(ws), "--out", str(out), "--engine", "serial"]) == 0
+    figs = tmp_path / "figures.json"
+    assert main(["score", str(ws), "--alerts", str(out), "--json", str(figs)]) == 0
+    data = json.loads(figs.read_text())
+    assert data["incidents"] == len(inc)  # the early one is not in recall
+    assert data["before_first_scored"] == 1 and data["before_first_scored_ids"] == ["EARLY"]
+    printed = capsys.readouterr().out
+    assert "before the first scored hour: 1 incident(s) (EARLY)" in printed
+    assert "metric impressions: caught" in printed and "detector fence:" in printed

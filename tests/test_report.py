@@ -355,3 +355,50 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
     assert main(["report", str(ws2), "--study", res.study_name, "--storage", store,
                  "--out", str(tmp_path / "r5"), "--engine", "serial"]) == 1
     assert "searched another space" in capsys.readouterr().err
+
+
+def test_per_metric_and_detector_table_equals_scoring(ses, chosen_config) -> None:
+    """Reference: `score_episodes` per period, counted per metric and per detector by
+    hand from the replay's episodes and a plain `match`."""
+    from calibrate.report import metric_rows
+    from calibrate.scoring import match, period_filter
+
+    rep = _replay(ses, chosen_config)
+    data = build_report_data(ses, rep, first_hour=200, split_hour=SPLIT)
+    headers, rows, _ = metric_rows(data)
+    assert len(headers) == 1 + len(data.periods)
+    table = {r[0]: r[1:] for r in rows}
+    for j, p in enumerate(data.periods):
+        eps = period_filter(rep.episodes, p.start_hour, p.end_hour)
+        inc = period_filter(ses.incidents, p.start_hour, p.end_hour)
+        m = match(eps, inc, ses.ws.incidents.early_hours, ses.ws.incidents.late_hours)
+        for metric in ses.ws.metric_names:
+            n_alerts = int((eps.metric == metric).sum())
+            mine = inc.metric == metric
+            cell = table[f"metric {metric}"][j]
+            assert cell.endswith(f", {n_alerts}")
+            if mine.any():
+                assert cell.startswith(f"{int(m.caught[mine].sum())} of {int(mine.sum())}")
+        for det in set(eps.detectors):
+            sel = eps.detectors == det
+            assert table[f"detector {det}"][j].startswith(
+                f"{int(m.alert_true[sel].sum())} true of {int(sel.sum())} alerts")
+
+
+def test_metric_rows_warn_about_silent_metrics() -> None:
+    from calibrate.report import metric_rows
+
+    fig = {"per_metric": {
+        "clicks": {"incidents": 2, "caught": 0, "alerts": 0, "recall": 0.0,
+                   "recall_low": 0.0, "recall_high": 0.6},
+        "ctr": {"incidents": 3, "caught": 0, "alerts": 40, "recall": 0.0,
+                "recall_low": 0.0, "recall_high": 0.5},
+        "spend": {"incidents": 1, "caught": 1, "alerts": 4, "recall": 1.0,
+                  "recall_low": 0.2, "recall_high": 1.0}},
+        "per_detector": {}, "before_first_scored": 1, "already_alerting": 0}
+    period = SimpleNamespace(name="tuning weeks", figures=fig)
+    _, _, warnings = metric_rows(SimpleNamespace(periods=[period]))
+    assert len(warnings) == 3
+    assert "clicks" in warnings[0] and "switched off" in warnings[0]
+    assert "ctr catches none of its 3" in warnings[1]
+    assert "before the first scored hour" in warnings[2]
