@@ -1,12 +1,18 @@
 """The Python API: everything the CLI does, as functions over a `Session`.
 
 A `Session` is one workspace with its history, owners routing and incidents
-loaded once. Typical use::
+loaded once. Typical use, also as a saved script without an
+``if __name__ == "__main__":`` guard (the local engine's workers never run the
+calling script)::
 
-    from calibrate.api import open_session, replay_session, score_episodes
+    from calibrate.api import alert_volume, open_session, replay_session, score_episodes
+
     ses = open_session("sample_data")
-    result = replay_session(ses)
+    result = replay_session(ses, progress=False)
     figs = score_episodes(ses, result.episodes)
+    print(figs.per_team[["alerts", "alerts_per_analyst_day"]])
+
+(the README's "From Python" example, shortened).
 """
 
 from __future__ import annotations
