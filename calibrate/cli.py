@@ -1,15 +1,17 @@
 """`calibrate` command line: parse arguments, call the API, map errors to exit codes.
 
 Every command is one function `cmd_NAME(args) -> int`; expected errors
-(`CalibrationError`) print one line on stderr and exit 1, never a traceback.
-Ctrl-C (SIGINT) and SIGTERM stop a command the same way, cleaning up on the way
-out, with one line and exit 130 or 143.
+(`CalibrationError`) print one line on stderr and exit 1, never a traceback
+(`UsageError` exits 2, as argparse does; a tune meeting no goal exits 3: see
+`calibrate.errors`). Ctrl-C (SIGINT) and SIGTERM stop a command the same way,
+cleaning up on the way out, with one line and exit 130 or 143.
 """
 
 from __future__ import annotations
 
 import argparse
 import errno
+import importlib.metadata
 import json
 import logging
 import os
@@ -20,7 +22,8 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from calibrate.errors import CalibrationError
+from calibrate import errors
+from calibrate.errors import CalibrationError, UsageError
 
 
 def _engine_args(p: argparse.ArgumentParser) -> None:
@@ -28,24 +31,31 @@ def _engine_args(p: argparse.ArgumentParser) -> None:
         "--engine",
         choices=("local", "serial", "dask"),
         default="local",
-        help="where decompositions run (default: processes on this machine)",
+        help="where decompositions run: worker processes on this machine, this process "
+        "only, or a Dask cluster (default: local)",
     )
-    p.add_argument("--workers", type=int, default=None, help="worker processes (default: cores)")
+    p.add_argument("--workers", type=int, default=None,
+                   help="worker processes (default: one per core)")
     p.add_argument(
         "--scheduler",
         default=None,
-        help="Dask scheduler address for --engine dask (default: a local cluster)",
+        help="Dask scheduler address for --engine dask (default: start a local cluster)",
     )
 
 
 def _subset_args(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--levels", nargs="+", default=None, help="replay only these levels")
-    p.add_argument("--metrics", nargs="+", default=None, help="replay only these metrics")
+    p.add_argument("--levels", nargs="+", default=None,
+                   help="replay only these levels (default: every level)")
+    p.add_argument("--metrics", nargs="+", default=None,
+                   help="replay only these metrics (default: every watched metric)")
 
 
 def _period_args(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--from", dest="start", default=None, help="first day/hour (ISO-8601, UTC)")
-    p.add_argument("--to", dest="end", default=None, help="end day/hour, exclusive (ISO-8601)")
+    p.add_argument("--from", dest="start", default=None,
+                   help="first day or hour, ISO-8601, UTC (default: the first scored hour; "
+                   "an earlier one is moved to it)")
+    p.add_argument("--to", dest="end", default=None,
+                   help="end day or hour, exclusive, ISO-8601 (default: the end of the history)")
 
 
 def _force_arg(p: argparse.ArgumentParser, what: str) -> None:
@@ -53,97 +63,175 @@ def _force_arg(p: argparse.ArgumentParser, what: str) -> None:
                    help=f"replace {what} (default: refuse to write over anything)")
 
 
+def _workspace_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("workspace", help="workspace folder, or its workspace.toml")
+
+
+QUIET_HELP = ("no progress bars or informational log messages on stderr; results, "
+              "warnings and errors still print (default: show them)")
+
+EXAMPLES = {
+    "check": ["calibrate check sample_data"],
+    "replay": ["calibrate replay sample_data --out alerts.csv",
+               "calibrate replay sample_data --config tuned.toml --out alerts.csv "
+               "--scores scores.parquet"],
+    "score": ["calibrate score sample_data --alerts alerts.csv --json figures.json",
+              "calibrate score sample_data --alerts alerts.csv --from 2026-04-06 --to 2026-05-04"],
+    "volume": ["calibrate volume sample_data --config tuned.toml --csv volume.csv",
+               "calibrate volume sample_data --alerts alerts.csv"],
+    "tune": ["calibrate tune sample_data --out tuned.toml --report reports/first --trials 100",
+             "calibrate tune sample_data --out tuned.toml --storage study.journal "
+             "--max-miss-rate 0.2"],
+    "report": ["calibrate report sample_data --config tuned.toml --out reports/tuned",
+               "calibrate report sample_data --study --out reports/so-far"],
+    "retune": ["calibrate retune sample_data --verdicts reviewed.csv --previous tuned.toml "
+               "--out tuned-v2.toml --report reports/v2"],
+    "demo": ["calibrate demo --out demo-output --force"],
+}
+
+
+def _command(sub, name: str, help: str) -> argparse.ArgumentParser:
+    """A sub-command whose help ends with examples; it takes --quiet too."""
+    lines = "\n".join(f"  {e}" for e in EXAMPLES[name])
+    p = sub.add_parser(name, help=help, description=help[0].upper() + help[1:] + ".",
+                       epilog=f"example{'s' if len(EXAMPLES[name]) > 1 else ''}:\n{lines}",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    # SUPPRESS: absent here, the global flag's value stands
+    p.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
+                   help=QUIET_HELP)
+    return p
+
+
+def _version() -> str:
+    try:
+        return importlib.metadata.version("calibrate")
+    except importlib.metadata.PackageNotFoundError:  # run from a source tree
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(
         prog="calibrate",
         description="Calibrate STL + Tukey-fence alert thresholds against known incidents.",
+        epilog="exit codes:\n  0    done\n  1    bad input, or a file that cannot be "
+        "written\n  2    usage error (options)\n  3    tune: no setting meets the goal\n"
+        "  130  interrupted (Ctrl-C)\n  143  terminated (SIGTERM)\n\n"
+        "examples:\n  calibrate demo\n  calibrate COMMAND --help",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    sub = ap.add_subparsers(dest="command", required=True)
+    ap.add_argument("--version", action="version", version=f"calibrate {_version()}",
+                    help="print the version and exit")
+    ap.add_argument("-q", "--quiet", action="store_true", default=False, help=QUIET_HELP)
+    sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    p = sub.add_parser("check", help="validate a workspace and summarise its data")
-    p.add_argument("workspace")
+    p = _command(sub, "check", "validate a workspace and summarise its data")
+    _workspace_arg(p)
 
-    p = sub.add_parser("replay", help="replay history hour by hour and write the alerts")
-    p.add_argument("workspace")
+    p = _command(sub, "replay", "replay history hour by hour and write the alerts")
+    _workspace_arg(p)
     p.add_argument(
-        "--config", default=None, help="tuned config (default: the workspace's [detector])"
+        "--config", default=None,
+        help="tuned config to replay (default: the workspace's [detector] settings)"
     )
-    p.add_argument("--out", required=True, help="alerts file (.csv)")
-    p.add_argument("--scores", default=None, help="per-hour scores file (.parquet or .csv)")
+    p.add_argument("--out", required=True, help="alerts file, .csv or .csv.gz (required)")
+    p.add_argument("--scores", default=None,
+                   help="also write the per-hour scores here, .parquet, .csv or .csv.gz "
+                   "(default: not written)")
     _force_arg(p, "existing --out and --scores files")
     _subset_args(p)
     _engine_args(p)
 
-    p = sub.add_parser("score", help="score an alerts file against the incidents")
-    p.add_argument("workspace")
-    p.add_argument("--alerts", required=True)
-    p.add_argument("--json", default=None, help="write the figures as JSON here")
+    p = _command(sub, "score", "score an alerts file against the incidents")
+    _workspace_arg(p)
+    p.add_argument("--alerts", required=True,
+                   help="alerts file written by `calibrate replay` (required)")
+    p.add_argument("--json", default=None,
+                   help="also write the figures as JSON here (default: not written)")
     _force_arg(p, "an existing --json file")
     p.add_argument(
         "--related",
         action="store_true",
-        help="also credit alerts on ancestor/descendant series (shown separately)",
+        help="also credit alerts on ancestor/descendant series, shown separately "
+        "(default: same series only)",
     )
     _period_args(p)
 
-    p = sub.add_parser("volume", help="alerts per team per week and per analyst per day")
-    p.add_argument("workspace")
-    p.add_argument("--config", default=None, help="config to replay (default: [detector])")
-    p.add_argument("--alerts", default=None, help="count an existing alerts file instead")
-    p.add_argument("--csv", default=None, help="write the table here")
+    p = _command(sub, "volume", "alerts per team per week and per analyst per day")
+    _workspace_arg(p)
+    p.add_argument("--config", default=None,
+                   help="tuned config to replay (default: the workspace's [detector] settings)")
+    p.add_argument("--alerts", default=None,
+                   help="count an existing alerts file instead of replaying (default: replay)")
+    p.add_argument("--csv", default=None,
+                   help="also write the table here (default: not written)")
     _force_arg(p, "an existing --csv file")
     _period_args(p)
     _engine_args(p)
 
-    p = sub.add_parser("tune", help="search settings for the least alerts meeting the goal")
-    p.add_argument("workspace")
-    p.add_argument("--out", required=True, help="tuned config to write (.toml)")
-    p.add_argument("--report", default=None, help="report folder (e.g. reports/NAME)")
-    p.add_argument("--trials", type=int, default=None, help="trial budget of the study")
+    p = _command(sub, "tune", "search settings for the least alerts meeting the goal")
+    _workspace_arg(p)
+    p.add_argument("--out", required=True, help="tuned config to write, .toml (required)")
+    p.add_argument("--report", default=None,
+                   help="also write the report into this folder, e.g. reports/NAME "
+                   "(default: no report)")
+    p.add_argument("--trials", type=int, default=None,
+                   help="trial budget of the whole study (default: [search] trials, else 60)")
     p.add_argument(
         "--storage",
         default=None,
-        help="Optuna storage URL or journal file (default: a file in the workspace)",
+        help="Optuna storage URL or journal file "
+        "(default: .calibrate/study.journal in the workspace)",
     )
-    p.add_argument("--study", default=None, help="study name (default: derived from the inputs)")
-    p.add_argument("--max-miss-rate", type=float, default=None, help="override [goal]")
+    p.add_argument("--study", default=None,
+                   help="study name (default: derived from the workspace's inputs and goal)")
+    p.add_argument("--max-miss-rate", type=float, default=None,
+                   help="target miss rate, 0 to 1 (default: [goal] max_miss_rate)")
     p.add_argument(
         "--max-alerts-per-analyst-day",
         type=float,
         default=None,
-        help="override [goal] for every team",
+        help="alert budget of every team (default: [goal] max_alerts_per_analyst_day)",
     )
     _force_arg(p, "an existing --out file and this tool's files in an existing --report "
                   "folder (other files there are kept)")
     _engine_args(p)
 
-    p = sub.add_parser("report", help="write the calibration report for a config or a study")
-    p.add_argument("workspace")
-    p.add_argument("--config", default=None, help="tuned config to report on")
+    p = _command(sub, "report", "write the calibration report for a config or a study")
+    _workspace_arg(p)
+    p.add_argument("--config", default=None,
+                   help="tuned config to report on (default: none; give this or --study)")
     p.add_argument(
         "--study", nargs="?", const="", default=None, metavar="NAME",
-        help="report on a study's best trial so far, running no trial (NAME: default the "
-        "one `calibrate tune` derives from the workspace)")
+        help="report on a study's best trial so far, running no trial (give this or "
+        "--config; NAME default: the one `calibrate tune` derives from the workspace)")
     p.add_argument("--storage", default=None,
-                   help="the study's Optuna storage URL or journal file (with --study)")
-    p.add_argument("--out", required=True, help="report folder")
+                   help="the study's Optuna storage URL or journal file, with --study "
+                   "(default: .calibrate/study.journal in the workspace)")
+    p.add_argument("--out", required=True, help="report folder (required)")
     _force_arg(p, "this tool's files in an existing --out folder (other files there are kept)")
     _engine_args(p)
 
-    p = sub.add_parser("retune", help="merge analysts' verdicts and tune again")
-    p.add_argument("workspace")
-    p.add_argument("--verdicts", required=True, help="reviewed alerts file (verdict column)")
-    p.add_argument("--previous", default=None, help="previous tuned config (warm start)")
-    p.add_argument("--out", required=True)
-    p.add_argument("--report", default=None)
-    p.add_argument("--trials", type=int, default=None)
+    p = _command(sub, "retune", "merge analysts' verdicts and tune again")
+    _workspace_arg(p)
+    p.add_argument("--verdicts", required=True,
+                   help="reviewed alerts file with a verdict column (required)")
+    p.add_argument("--previous", default=None,
+                   help="tuned config the reviewed alerts came from, warm-started from "
+                   "(default: the workspace's [detector] settings)")
+    p.add_argument("--out", required=True, help="new tuned config to write, .toml (required)")
+    p.add_argument("--report", default=None,
+                   help="comparison report folder (default: no report)")
+    p.add_argument("--trials", type=int, default=None,
+                   help="trial budget of the new study (default: [search] trials, else 60)")
     _force_arg(p, "existing --out, merged incidents, known false alarms and this tool's files "
                   "in the report folder")
     _engine_args(p)
 
-    p = sub.add_parser("demo", help="run the whole job on the bundled sample data")
-    p.add_argument("--out", default="demo-output", help="folder for the demo's outputs")
-    p.add_argument("--trials", type=int, default=None)
+    p = _command(sub, "demo", "run the whole job on the bundled sample data")
+    p.add_argument("--out", default="demo-output",
+                   help="folder for the demo's outputs (default: demo-output)")
+    p.add_argument("--trials", type=int, default=None,
+                   help="trial budget of the tune (default: the sample's [search] trials, 40)")
     _force_arg(p, "the demo's own files in an existing --out folder (other files are kept)")
     _engine_args(p)
     return ap
@@ -175,6 +263,7 @@ def cmd_replay(args) -> int:
         engine=args.engine,
         workers=args.workers,
         scheduler=args.scheduler,
+        progress=not args.quiet,
     )
     alerts = result.alerts_frame()
     write_table(Path(args.out), alerts, force=args.force)
@@ -274,7 +363,7 @@ def cmd_volume(args) -> int:
         config = load_config(args.config) if args.config else ses.ws.detector
         eps = api.replay_session(
             ses, config, config_name=args.config, engine=args.engine, workers=args.workers,
-            scheduler=args.scheduler,
+            scheduler=args.scheduler, progress=not args.quiet,
         ).episodes
     start, end = _period(ses, args)
     if not args.alerts:
@@ -368,14 +457,19 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     previous = {}
     logging_off = logging.root.manager.disable
+    if args.quiet:
+        logging.disable(max(logging_off, logging.INFO))
     if threading.current_thread() is threading.main_thread():
         handler = _stop_handler(args.command)
         previous = {sig: signal.signal(sig, handler) for sig in EXIT_CODES}
     try:
         return COMMANDS[args.command](args)
+    except UsageError as exc:
+        print(f"calibrate {args.command}: {exc}", file=sys.stderr)
+        return errors.USAGE
     except CalibrationError as exc:
         print(f"calibrate {args.command}: {exc}", file=sys.stderr)
-        return 1
+        return errors.BAD_INPUT
     except OSError as exc:
         # a full disk or a read-only folder met outside the writers that say so themselves
         if exc.errno not in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
@@ -384,7 +478,7 @@ def main(argv: list[str] | None = None) -> int:
 
         print(f"calibrate {args.command}: {os_error(exc.filename or 'a file', exc)}",
               file=sys.stderr)
-        return 1
+        return errors.BAD_INPUT
     except KeyboardInterrupt as exc:
         signum = signal.SIGTERM if isinstance(exc, Terminated) else signal.SIGINT
         _say_stopped(args.command, signum)

@@ -30,9 +30,10 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from tqdm.auto import tqdm
 
 from calibrate import api
-from calibrate.errors import CalibrationError
+from calibrate.errors import CalibrationError, UsageError
 from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
 from calibrate.scoring import (
@@ -1240,6 +1241,19 @@ def _review_csv(result: ReplayResult) -> bytes:
     return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
 
 
+def _steps_bar(progress: bool, total: int = 4) -> tqdm:
+    """A progress bar over a report's steps (the replays, figures, plots and files);
+    nothing is shown without `progress`."""
+    return tqdm(total=total, desc="report", unit="step", disable=not progress, leave=False)
+
+
+def _step(bar: tqdm, what: str, work: Callable[[], Any]) -> Any:
+    bar.set_postfix_str(what)
+    out = work()
+    bar.update(1)
+    return out
+
+
 def write_config_report(
     ses: api.Session,
     config: DetectorConfig,
@@ -1252,48 +1266,57 @@ def write_config_report(
     progress: bool = False,
     **replay_kwargs: Any,
 ) -> ReportData:
-    """Replay `config` (and the current settings) and write its report to `out_dir`."""
+    """Replay `config` (and the current settings) and write its report to `out_dir`;
+    `progress` shows a bar over the steps."""
     current = current or ses.ws.detector
-    rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
+    bar = _steps_bar(progress)
+    rp = api.make_replayer(ses, progress=False, **replay_kwargs)
     try:
-        chosen = rp.replay(config)
-        cur = rp.replay(current)
+        chosen = _step(bar, "replay", lambda: rp.replay(config))
+        cur = _step(bar, "replay of today's", lambda: rp.replay(current))
     finally:
         rp.close()
     first = max(api.first_scored_hour(config, ses.ws), api.first_scored_hour(current, ses.ws))
-    data = build_report_data(ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
-                             title="Calibration report", source=source)
-    write_report_data(data, out_dir, force=force,
-                      extra={"alerts-for-review.csv": _review_csv(chosen)})
+    data = _step(bar, "figures", lambda: build_report_data(
+        ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
+        title="Calibration report", source=source))
+    _step(bar, "plots and files", lambda: write_report_data(
+        data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
+    bar.close()
     return data
 
 
 def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: bool = True,
-                 progress: bool = False, **replay_kwargs: Any) -> ReportData:
+                 progress: bool = False, steps: tqdm | None = None,
+                 **replay_kwargs: Any) -> ReportData:
     """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`,
-    judged against the goal the run was tuned to (`result.goal`, when set)."""
+    judged against the goal the run was tuned to (`result.goal`, when set).
+    `progress` shows a bar over the steps (or they advance `steps`, a caller's bar)."""
     goal = getattr(result, "goal", None)
     if goal is not None and goal != ses.ws.goal:
         ses = replace(ses, ws=replace(ses.ws, goal=goal))
-    rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
+    bar = steps if steps is not None else _steps_bar(progress)
+    rp = api.make_replayer(ses, progress=False, **replay_kwargs)
     try:
-        chosen = rp.replay(result.config)
-        cur = rp.replay(result.current)
+        chosen = _step(bar, "replay", lambda: rp.replay(result.config))
+        cur = _step(bar, "replay of today's", lambda: rp.replay(result.current))
     finally:
         rp.close()
     prov = dict(getattr(result, "provenance", {}) or {})
     prov.setdefault("study_name", getattr(result, "study_name", None))
     prov.setdefault("storage", getattr(result, "storage", None))
     prov = {k: v for k, v in prov.items() if v is not None}
-    data = build_report_data(
+    data = _step(bar, "figures", lambda: build_report_data(
         ses, chosen, current=cur, first_hour=result.first_hour, split_hour=result.split_hour,
         trials=result.trials, front=getattr(result, "pareto", None),
         feasible=result.feasible, reason=result.reason or "",
         holdout_warning=result.holdout_warning or "", provenance=prov,
         title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
-    )
-    write_report_data(data, out_dir, force=force,
-                      extra={"alerts-for-review.csv": _review_csv(chosen)})
+    ))
+    _step(bar, "plots and files", lambda: write_report_data(
+        data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
+    if steps is None:
+        bar.close()
     return data
 
 
@@ -1303,9 +1326,10 @@ def cli_report(args: Any) -> int:
 
     config_path, study = getattr(args, "config", None), getattr(args, "study", None)
     if (config_path is None) == (study is None):
-        raise CalibrationError("report: give either --config FILE or --study [NAME]")
+        raise UsageError("give either --config FILE or --study [NAME]")
     out = Path(args.out)
     force = bool(getattr(args, "force", False))
+    progress = not getattr(args, "quiet", False)
     check_outputs((), force, folders=[out])
     ses = api.open_session(args.workspace)
     if ses.incidents is None:
@@ -1315,11 +1339,14 @@ def cli_report(args: Any) -> int:
         from calibrate.search import study_result
 
         executor = make_executor(args.engine, args.workers, args.scheduler)
+        bar = _steps_bar(progress, total=5)
         try:
-            result = study_result(ses, storage=getattr(args, "storage", None),
-                                  study_name=study or None, executor=executor)
-            write_report(ses, result, out, force=force, executor=executor)
+            result = _step(bar, "study", lambda: study_result(
+                ses, storage=getattr(args, "storage", None), study_name=study or None,
+                executor=executor))
+            write_report(ses, result, out, force=force, executor=executor, steps=bar)
         finally:
+            bar.close()
             executor.close()
         print(f"{result.reason}")
         print(f"report written to {out / 'index.html'}")
@@ -1329,7 +1356,7 @@ def cli_report(args: Any) -> int:
     write_config_report(
         ses, config, out, split_hour=int(split) if isinstance(split, int) else None,
         force=force, source=f"config {config_path}", engine=args.engine, workers=args.workers,
-        scheduler=args.scheduler,
+        scheduler=args.scheduler, progress=progress,
     )
     print(f"report written to {out / 'index.html'}")
     return 0

@@ -590,7 +590,8 @@ def cli_retune(args: Any) -> int:
     ses = api.open_session(args.workspace)
     previous = load_config(args.previous) if args.previous else None
     res = retune(ses, verdicts, previous, args.trials, engine=args.engine,
-                 workers=args.workers, scheduler=args.scheduler, progress=True)
+                 workers=args.workers, scheduler=args.scheduler,
+                 progress=not getattr(args, "quiet", False))
     for line in res.verdicts.lines():
         print(line)
     written = write_retune_outputs(res, out, Path(args.report) if args.report else None,

@@ -66,7 +66,7 @@ import optuna
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate import api, studies
+from calibrate import api, errors, studies
 from calibrate.api import Session
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import Executor
@@ -1587,9 +1587,10 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
                 else f"one set of settings per {tune_by}")
         print(f"note: tune_by = \"{tune_by}\" tunes {what}; the tuned config leaves out "
               f"the workspace's groups ({names}). Use tune_by = \"group\" to tune them.")
+    progress = not getattr(args, "quiet", False)
     result = tune(ses, trials=args.trials, storage=args.storage,
                   study_name=getattr(args, "study", None), goal=goal, executor=executor,
-                  progress=True)
+                  progress=progress)
     print(f"study {result.study_name} ({len(result.trials)} trials) in {result.storage}")
     for line in side_by_side(result):
         print(line)
@@ -1602,12 +1603,13 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         for line in pareto_lines(result):
             print(line)
         print(f"nothing written to {out}")
-        return 2
+        return errors.GOAL_NOT_MET
     print(result.reason)
     print(changed_settings_line(result))
     write_config(out, result.config, result.provenance, force=force)
     print(f"tuned config written to {out}")
     if getattr(args, "report", None):
-        write_report(ses, result, Path(args.report), force=force, executor=executor)
+        write_report(ses, result, Path(args.report), force=force, executor=executor,
+                     progress=progress)
         print(f"report written to {args.report}")
     return 0

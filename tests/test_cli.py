@@ -165,3 +165,85 @@ def test_score_lists_incidents_before_the_first_scored_hour_apart(ws, tmp_path, 
     printed = capsys.readouterr().out
     assert "before the first scored hour: 1 incident(s) (EARLY)" in printed
     assert "metric impressions: caught" in printed and "detector fence:" in printed
+
+
+# ---------------------------------------------------------------- help, version, quiet, exit
+
+
+def _subparsers():
+    import argparse
+
+    from calibrate.cli import build_parser
+
+    ap = build_parser()
+    sub = next(a for a in ap._actions if isinstance(a, argparse._SubParsersAction))
+    return ap, sub.choices
+
+
+def test_every_option_states_its_default_and_every_help_ends_with_examples():
+    import shlex
+
+    ap, commands = _subparsers()
+    assert set(commands) == {"check", "replay", "score", "volume", "tune", "report", "retune",
+                             "demo"}
+    for name, p in [("", ap), *commands.items()]:
+        for action in p._actions:
+            if not action.option_strings or action.option_strings[0] in ("-h", "--version"):
+                continue
+            text = action.help or ""
+            if action.required:
+                assert "(required)" in text, (name, action.option_strings)
+            else:
+                assert "default" in text, (name, action.option_strings, text)
+        if not name:
+            continue
+        tail = p.format_help().rstrip().split("\n\n")[-1].splitlines()
+        assert tail[0] in ("example:", "examples:"), (name, tail)
+        for line in tail[1:]:
+            argv = shlex.split(line)
+            assert argv[:2] == ["calibrate", name], line
+            args = ap.parse_args(argv[1:])  # the example is a valid command line
+            assert args.command == name
+
+
+def test_version_is_the_installed_distributions(capsys):
+    import importlib.metadata
+
+    with pytest.raises(SystemExit) as stop:
+        main(["--version"])
+    assert stop.value.code == 0
+    assert capsys.readouterr().out == f"calibrate {importlib.metadata.version('calibrate')}\n"
+
+
+@pytest.mark.parametrize("where", ["before", "after", "absent"])
+def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, capsys, where):
+    from calibrate.outputs import write_config
+
+    quiet = {"before": ["--quiet"], "after": [], "absent": []}[where]
+    late = ["-q"] if where == "after" else []
+    assert main([*quiet, "replay", str(ws), "--out", str(tmp_path / "a.csv"),
+                 "--engine", "serial", *late]) == 0
+    replay = capsys.readouterr()
+    cfg = tmp_path / "c.toml"
+    write_config(cfg, api.open_session(ws, incidents=False).ws.detector, {})
+    assert main([*quiet, "report", str(ws), "--config", str(cfg), "--out",
+                 str(tmp_path / "rep"), "--engine", "serial", *late]) == 0
+    report = capsys.readouterr()
+    assert "alerts written" in replay.out and "report written" in report.out
+    if where == "absent":
+        assert "replay:" in replay.err and "report:" in report.err
+        assert "0/4 [" in report.err and "step/s, replay]" in report.err
+    else:
+        assert replay.err == "" and report.err == ""
+
+
+def test_usage_errors_and_an_unmet_goal_have_their_own_exit_codes(ws, capsys):
+    from calibrate import errors
+
+    assert len({errors.BAD_INPUT, errors.USAGE, errors.GOAL_NOT_MET, 130, 143}) == 5
+    with pytest.raises(SystemExit) as stop:
+        main(["replay", str(ws)])  # --out missing: argparse's usage error
+    assert stop.value.code == errors.USAGE == 2
+    assert main(["report", str(ws), "--config", "a.toml", "--study", "--out", "r"]) == 2
+    assert "either --config" in capsys.readouterr().err
+    assert main(["check", str(ws.parent / "missing.toml")]) == errors.BAD_INPUT == 1
