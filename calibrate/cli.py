@@ -159,7 +159,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = _command(sub, "volume", "alerts per team per week and per analyst per day")
     _workspace_arg(p)
     p.add_argument("--config", default=None,
-                   help="tuned config to replay (default: the workspace's [detector] settings)")
+                   help="tuned config to replay, or that an --alerts file came from "
+                   "(default: the workspace's [detector] settings)")
     p.add_argument("--alerts", default=None,
                    help="count an existing alerts file instead of replaying (default: replay)")
     p.add_argument("--csv", default=None,
@@ -282,6 +283,21 @@ def _period(ses, args) -> tuple[int, int]:
     return start, end
 
 
+def _scored_lines(ses, eps, start: int, end: int, first: int) -> list[str]:
+    """Where the counts start (the first scored hour, or --from if later), and the
+    alerts of the period left out because they come before it."""
+    from calibrate import api
+
+    scored, _ = api.scored_period(ses, start, end, first)
+    when = f"{ses.history.hours[scored]:%Y-%m-%dT%H:%MZ}"
+    lines = [f"counted from {when}: the first scored hour (no alert can be raised during "
+             "the decomposition window's warm-up before it), or --from if later"]
+    early = int(((eps.start >= start) & (eps.start < scored)).sum())
+    if early:
+        lines.append(f"note: {early} alert(s) of the file start before {when}: not counted")
+    return lines
+
+
 def cmd_score(args) -> int:
     from calibrate import api
     from calibrate.incidents import read_text_csv
@@ -297,9 +313,10 @@ def cmd_score(args) -> int:
     eps = episodes_from_alerts_frame(read_text_csv(path), ses.ws, ses.history, str(path))
     eps = route_teams(eps, ses.routes)
     start, end = _period(ses, args)
-    figs = api.score_episodes(ses, eps, start, end, related=args.related)
+    first = api.first_scored_hour(ses.ws.detector, ses.ws)
+    figs = api.score_episodes(ses, eps, start, end, related=args.related, first_scored=first)
     data = figs.to_json_dict()
-    for line in format_figures(data):
+    for line in [*_scored_lines(ses, eps, start, end, first), *format_figures(data)]:
         print(line)
     if args.json:
         write_text(Path(args.json), json.dumps(data, indent=2, default=str), force=args.force)
@@ -353,35 +370,43 @@ def cmd_volume(args) -> int:
 
     check_outputs((args.csv,), args.force)
     ses = api.open_session(args.workspace, incidents=False)
+    config = load_config(args.config) if args.config else ses.ws.detector
     if args.alerts:
+        # the file's alerts count from the first scored hour of the config they came from
+        api.require_replayable(ses, config, args.config)
         path = Path(args.alerts)
         if not path.is_file():
             raise CalibrationError(f"{path}: no such alerts file")
         eps = episodes_from_alerts_frame(read_text_csv(path), ses.ws, ses.history, str(path))
         eps = route_teams(eps, ses.routes)
     else:
-        config = load_config(args.config) if args.config else ses.ws.detector
         eps = api.replay_session(
             ses, config, config_name=args.config, engine=args.engine, workers=args.workers,
             scheduler=args.scheduler, progress=not args.quiet,
         ).episodes
     start, end = _period(ses, args)
-    if not args.alerts:
-        first = api.first_scored_hour(config, ses.ws)
-        when = ses.history.hours[min(first, ses.history.n_hours - 1)]
-        print(f"first scored hour: {when:%Y-%m-%dT%H:%MZ} (no alert can be raised during "
-              "the decomposition window's warm-up before it)")
-    table = api.alert_volume(ses, eps, start, end)
+    first = api.first_scored_hour(config, ses.ws)
+    for line in _scored_lines(ses, eps, start, end, first):
+        print(line)
+    table = api.alert_volume(ses, eps, start, end, first_scored=first)
     with_budget = "budget" in table.columns
     print(
         f"{'team':<16}{'week':<10}{'alerts':>7}{'per analyst-day':>17}"
         + (f"{'budget':>8}" if with_budget else "")
     )
-    for row in table.itertuples(index=False):
-        line = f"{row.team:<16}{row.week:<10}{row.alerts:>7}{row.alerts_per_analyst_day:>17.2f}"
+
+    def row_line(team, week, alerts, rate, budget=None, over=False) -> str:
+        line = f"{team:<16}{week:<10}{alerts:>7}{rate:>17.2f}"
         if with_budget:
-            line += f"{row.budget:>8g}" + ("  over budget" if row.over_budget else "")
-        print(line)
+            line += f"{budget:>8g}" + ("  over budget" if over else "")
+        return line
+
+    for row in table.itertuples(index=False):
+        print(row_line(row.team, row.week, row.alerts, row.alerts_per_analyst_day,
+                       getattr(row, "budget", None), getattr(row, "over_budget", False)))
+    for team, row in api.volume_per_team(table).iterrows():
+        print(row_line(team, "all", int(row["alerts"]), row["alerts_per_analyst_day"],
+                       row.get("budget"), bool(row.get("over_budget", False))))
     if args.csv:
         write_table(Path(args.csv), table, force=args.force)
     return 0

@@ -52,11 +52,12 @@ def run_demo(args) -> int:
         executor.close()
 
     print("6/6 alert volume per team (tuned settings, held-out weeks)")
-    vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours)
+    vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours,
+                           first_scored=result.first_hour)
     write_table(out / "volume.csv", vol, force=force)
-    for row in vol.groupby("team")["alerts_per_analyst_day"].mean().items():
-        print(f"    {row[0]}: {row[1]:.2f} alerts per analyst per day "
-              f"(budget {ses.ws.goal.budget(row[0]):g})")
+    for team, row in api.volume_per_team(vol).iterrows():
+        print(f"    {team}: {row['alerts_per_analyst_day']:.2f} alerts per analyst per day "
+              f"(budget {ses.ws.goal.budget(team):g})")
     took = time.perf_counter() - t_start
     write_text(out / "README.txt", _readme(out, took), force=force)
     print(f"done in {took:.0f} s; outputs in {out}/ (see {out / 'README.txt'})")

@@ -254,10 +254,13 @@ def build_report_data(
 
     periods = []
     for name, a, b in bounds:
-        figs = api.score_episodes(ses, chosen.episodes, a, b).to_json_dict()
+        # every period counts from the first scored hour, as `score` and `volume` do
+        figs = api.score_episodes(ses, chosen.episodes, a, b,
+                                  first_scored=first).to_json_dict()
         cur = None
         if cur_replay is not None:
-            cur = api.score_episodes(ses, cur_replay.episodes, a, b).to_json_dict()
+            cur = api.score_episodes(ses, cur_replay.episodes, a, b,
+                                     first_scored=first).to_json_dict()
         met, verdict = goal_verdict(figs, goal.max_miss_rate, ses.analysts)
         periods.append(
             PeriodData(name, a, b, _iso(hist.hours, a), _iso(hist.hours, b), figs, met,
@@ -574,7 +577,7 @@ def volume_data(
 ) -> VolumeData:
     """Alerts per team and week over the scored period, from `api.alert_volume`."""
     n = ses.history.n_hours
-    vol = api.alert_volume(ses, chosen.episodes, first, n)
+    vol = api.alert_volume(ses, chosen.episodes, first, n, first_scored=first)
     weeks = list(dict.fromkeys(vol["week"].tolist()))
     teams = list(dict.fromkeys(vol["team"].tolist()))
     rate, alerts = [], []

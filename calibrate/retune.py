@@ -242,8 +242,8 @@ def compare(
     first = max(api.first_scored_hour(old.config, ses.ws), api.first_scored_hour(new.config,
                                                                                   ses.ws))
     n = ses.history.n_hours
-    fo = api.score_episodes(ses, old.episodes, first, n)
-    fn = api.score_episodes(ses, new.episodes, first, n)
+    fo = api.score_episodes(ses, old.episodes, first, n, first_scored=first)
+    fn = api.score_episodes(ses, new.episodes, first, n, first_scored=first)
     po, pn = fo.per_incident.set_index("incident_id"), fn.per_incident.set_index("incident_id")
     gained = [i for i in pn.index if bool(pn.loc[i, "caught"]) and not bool(po.loc[i, "caught"])]
     lost = [i for i in pn.index if bool(po.loc[i, "caught"]) and not bool(pn.loc[i, "caught"])]

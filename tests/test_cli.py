@@ -247,3 +247,51 @@ def test_usage_errors_and_an_unmet_goal_have_their_own_exit_codes(ws, capsys):
     assert main(["report", str(ws), "--config", "a.toml", "--study", "--out", "r"]) == 2
     assert "either --config" in capsys.readouterr().err
     assert main(["check", str(ws.parent / "missing.toml")]) == errors.BAD_INPUT == 1
+
+
+def test_alerts_per_analyst_day_is_the_same_in_score_volume_and_report(ws, tmp_path, capsys):
+    """One definition: alerts starting at or after the first scored hour (hour 167: the
+    168-hour decomposition window minus one) over analysts x the days from that hour to
+    the end. Reference: counted from the alerts file by hand."""
+    import json
+
+    from calibrate.outputs import write_config
+
+    alerts = tmp_path / "alerts.csv"
+    assert main(["-q", "replay", str(ws), "--out", str(alerts), "--engine", "serial"]) == 0
+    frame = pd.read_csv(alerts, keep_default_na=False)
+    hours = pd.read_csv(ws.parent / "history.csv", usecols=["hour"])["hour"]
+    first_hour, n = pd.Timestamp(hours.min()), hours.nunique()
+    scored_from = first_hour + pd.Timedelta(hours=167)
+    days = (n - 167) / 24
+    ref = {t: int(((frame["team"] == t) & (pd.to_datetime(frame["start"]) >= scored_from))
+                  .sum()) / (1 * days) for t in ("blue", "green")}
+    assert min(ref.values()) > 0
+
+    figs = tmp_path / "figures.json"
+    # --from at the history's start: the warm-up days still do not count
+    assert main(["score", str(ws), "--alerts", str(alerts), "--json", str(figs),
+                 "--from", str(first_hour.date())]) == 0
+    score_out = capsys.readouterr().out
+    per_team = json.loads(figs.read_text())["per_team"]
+    vol_csv = tmp_path / "volume.csv"
+    assert main(["volume", str(ws), "--alerts", str(alerts), "--csv", str(vol_csv)]) == 0
+    vol_lines = capsys.readouterr().out.splitlines()
+    vol = pd.read_csv(vol_csv)
+    cfg = tmp_path / "today.toml"
+    write_config(cfg, api.open_session(ws, incidents=False).ws.detector, {})
+    assert main(["-q", "report", str(ws), "--config", str(cfg), "--out", str(tmp_path / "r"),
+                 "--engine", "serial"]) == 0
+    summary = json.loads((tmp_path / "r" / "summary.json").read_text())
+    rep_vol = pd.DataFrame(summary["volume"])
+    for team, rate in ref.items():
+        assert per_team[team]["alerts_per_analyst_day"] == pytest.approx(rate, rel=1e-12)
+        assert summary["replayed"]["per_team"][team]["alerts_per_analyst_day"] == \
+            pytest.approx(rate, rel=1e-12)
+        for table in (vol, rep_vol):
+            mine = table[table["team"] == team]
+            assert mine["days"].sum() == pytest.approx(days)
+            assert mine["alerts"].sum() / mine["days"].sum() == pytest.approx(rate, rel=1e-12)
+        line = next(ln for ln in vol_lines if ln.split()[:2] == [team, "all"])
+        assert line.split()[3] == f"{rate:.2f}"
+    assert f"counted from {scored_from:%Y-%m-%dT%H:%MZ}" in score_out
