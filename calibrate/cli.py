@@ -250,9 +250,18 @@ def cmd_check(args) -> int:
 
 def cmd_replay(args) -> int:
     from calibrate import api
-    from calibrate.outputs import check_outputs, load_config, write_table
+    from calibrate.outputs import (
+        check_outputs,
+        load_config,
+        table_format,
+        write_table,
+        write_table_blocks,
+    )
 
     check_outputs((args.out, args.scores), args.force)
+    for path in (args.out, args.scores):
+        if path:
+            table_format(path)  # a format we cannot write is refused before the replay
     ses = api.open_session(args.workspace, incidents=False)
     config = load_config(args.config) if args.config else ses.ws.detector
     result = api.replay_session(
@@ -270,7 +279,8 @@ def cmd_replay(args) -> int:
     write_table(Path(args.out), alerts, force=args.force)
     print(f"{len(alerts)} alerts written to {args.out}")
     if args.scores:
-        write_table(Path(args.scores), result.scores_frame(), force=args.force)
+        # block by block: the whole table would not fit in memory for a large history
+        write_table_blocks(Path(args.scores), result.score_blocks(), force=args.force)
         print(f"per-hour scores written to {args.scores}")
     return 0
 
