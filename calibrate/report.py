@@ -161,6 +161,9 @@ class SeriesPanel:
     incident_spans: list[tuple[str, str]]
     alert_spans: list[tuple[str, str]]
     note: str = ""
+    # fences and expected values are drawn no lower than this (0 for a metric that
+    # cannot be negative, `can_be_negative`); None: drawn as they are
+    floor: float | None = None
 
 
 @dataclass
@@ -732,12 +735,30 @@ def _panel(
         note += " Alerts in view by detector: " + ", ".join(
             f"{d} {n}" for d, n in fired.items()) + "."
     label = " / ".join(str(v) for v in hist.levels[lv].keys.iloc[s].tolist())
+    floor = None if can_be_negative(ses.ws, metric, ms.value[s]) else 0.0
+    with np.errstate(invalid="ignore"):
+        below = bool(floor is not None and (np.nanmin(np.r_[lower, expected, 0.0]) < 0))
+    if below:
+        note += (f" Fences and expected values below 0 are drawn at 0: {metric} cannot be "
+                 "negative.")
     return SeriesPanel(
         kind=kind, title=title, level=lv, label=label, metric=metric, times=times,
         value=_floats(ms.value[s, sl]), expected=_floats(expected), lower=_floats(lower),
         upper=_floats(upper), k=float(k), incident_spans=inc_spans, alert_spans=al_spans,
-        note=note,
+        note=note, floor=floor,
     )
+
+
+def can_be_negative(ws: Any, metric: str, values: np.ndarray) -> bool:
+    """False for a measure or a formula that `formulas.never_negative` clears, when
+    none of the series' `values` is negative either (a measure may hold refunds)."""
+    from calibrate.formulas import never_negative
+
+    formula = ws.metrics.get(metric)
+    if formula is not None and not never_negative(formula):
+        return True
+    with np.errstate(invalid="ignore"):
+        return bool(np.any(values < 0))
 
 
 # --------------------------------------------------------------------------- summary
@@ -1111,7 +1132,10 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         + f" and the {sum(1 for p in data.panels if p.kind == 'false alerts')} series with "
         "the most false alerts. Black: value; dashed: expected value; blue band: the "
         "fences (Q1 - k*IQR to Q3 + k*IQR of the remainder, drawn around the expected "
-        "value); green: labelled incident window; red marks at the bottom: alerts raised.</p>"
+        "value); green: labelled incident window; red marks at the bottom: alerts raised. "
+        "For a metric that cannot be negative (a measure, or a formula without subtraction, "
+        "over a series with no negative value) fences and expected values below 0 are drawn "
+        "at 0; the figures and summary.json keep the values as computed.</p>"
     )
     for i, panel in enumerate(data.panels):
         parts.append(img(_panel_file(i, panel), panel.title, panel.note))
@@ -1391,8 +1415,14 @@ def _num(x: Any) -> str:
 def _show(v: Any) -> str:
     if isinstance(v, float):
         return "none" if math.isinf(v) else f"{v:.4g}"
-    if isinstance(v, list):
-        return ", ".join(str(x) for x in v) or "(all)"
+    if isinstance(v, list | tuple):
+        return ", ".join(_show(x) for x in v) or "(all)"
+    if isinstance(v, Mapping):  # e.g. the provenance's goal and figures: words, not a dict
+        return "; ".join(f"{str(k).replace('_', ' ')}: "
+                         + (f"({_show(x)})" if isinstance(x, Mapping) else _show(x))
+                         for k, x in v.items()) or "(none)"
+    if v is None:
+        return "none"
     return str(v)
 
 

@@ -238,10 +238,18 @@ def test_report_from_a_tune_result(ses, chosen_config, tmp_path: Path) -> None:
         config=chosen_config, current=ses.ws.detector, feasible=True, reason="k=2.5: met",
         split_hour=SPLIT, first_hour=167, holdout_warning="", trials=trials,
         pareto=pd.DataFrame({"load": [0.4, 1.2, 1.5], "recall": [0.4, 0.6, 0.8]}),
-        study_name="s1", storage="mem", provenance={"seed": 0},
+        study_name="s1", storage="mem",
+        provenance={"seed": 0, "goal": {"max_miss_rate": 0.25, "max_alerts_per_analyst_day": 15.0},
+                    "tuning": {"alerts": 12, "alerts_per_analyst_day": {"blue": 1.5}}},
     )
     out = tmp_path / "tuned-report"
     data = write_report(ses, result, out, executor=SerialExecutor())
+    # the provenance table (the report's last) reads as words, not Python dicts
+    page = (out / "index.html").read_text(encoding="utf-8")
+    last = page[page.index("Where these settings come from"):]
+    assert "<td>max miss rate: 0.25; max alerts per analyst day: 15</td>" in last
+    assert "<td>alerts: 12; alerts per analyst day: (blue: 1.5)</td>" in last
+    assert "{" not in last and "&#x27;" not in last
     t = data.tradeoff
     assert t.x == [4.0, 1.5, 0.4] and t.y == pytest.approx([1.0, 0.8, 0.4])
     assert t.feasible == [False, True, False] and t.pareto == [True, True, True]
