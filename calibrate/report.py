@@ -1269,9 +1269,11 @@ def _review_csv(result: ReplayResult) -> bytes:
 
 
 def _steps_bar(progress: bool, total: int = 4) -> tqdm:
-    """A progress bar over a report's steps (the replays, figures, plots and files);
-    nothing is shown without `progress`."""
-    return tqdm(total=total, desc="report", unit="step", disable=not progress, leave=False)
+    """A progress bar over a report's steps (the replays, figures, plots and files) on
+    a terminal: nothing without `progress`, nor when stderr goes to a file or a pipe
+    (where it would only precede an error line)."""
+    return tqdm(total=total, desc="report", unit="step", disable=None if progress else True,
+                leave=False)
 
 
 def _step(bar: tqdm, what: str, work: Callable[[], Any]) -> Any:

@@ -216,8 +216,13 @@ def test_version_is_the_installed_distributions(capsys):
 
 
 @pytest.mark.parametrize("where", ["before", "after", "absent"])
-def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, capsys, where):
+def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, capsys, where,
+                                                               monkeypatch):
+    import sys
+
     from calibrate.outputs import write_config
+
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)  # report's bar: terminals only
 
     quiet = {"before": ["--quiet"], "after": [], "absent": []}[where]
     late = ["-q"] if where == "after" else []
@@ -230,6 +235,10 @@ def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, cap
                  str(tmp_path / "rep"), "--engine", "serial", *late]) == 0
     report = capsys.readouterr()
     assert "alerts written" in replay.out and "report written" in report.out
+    monkeypatch.undo()
+    assert main(["report", str(ws), "--config", str(cfg), "--out", str(tmp_path / "rep"),
+                 "--engine", "serial", "--force"]) == 0
+    assert capsys.readouterr().err == ""  # stderr not a terminal: no report bar
     if where == "absent":
         assert "replay:" in replay.err and "report:" in report.err
         assert "0/4 [" in report.err and "step/s, replay]" in report.err

@@ -338,15 +338,14 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
     study = optuna.load_study(study_name=res.study_name,
                               storage=search.open_storage(ses, store)[0])
     assert len(study.trials) == 3  # nothing was run
-    # one-line errors (--quiet: no progress bar around them): both sources (a usage
-    # error, exit 2), no study file, an unknown study name
+    # one-line errors: both sources (a usage error, exit 2), no study file, an unknown
+    # study name
     capsys.readouterr()
     assert main(["report", str(ws), "--study", "--config", "x.toml", "--out",
                  str(tmp_path / "r2")]) == 2
-    assert main(["--quiet", "report", str(ws), "--study", "--storage",
-                 str(tmp_path / "none.journal"), "--out", str(tmp_path / "r3"),
-                 "--engine", "serial"]) == 1
-    assert main(["report", "--quiet", str(ws), "--study", "nope", "--storage", store, "--out",
+    assert main(["report", str(ws), "--study", "--storage", str(tmp_path / "none.journal"),
+                 "--out", str(tmp_path / "r3"), "--engine", "serial"]) == 1
+    assert main(["report", str(ws), "--study", "nope", "--storage", store, "--out",
                  str(tmp_path / "r4"), "--engine", "serial"]) == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 3 and "either --config" in err[0]
@@ -363,7 +362,7 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
     ws2 = make_workspace(tmp_path / "ws2", search='fence_window_hours = [48, 72]\n'
                                                   'tune_by = "level"')
     assert main(["report", str(ws2), "--study", res.study_name, "--storage", store,
-                 "--out", str(tmp_path / "r5"), "--engine", "serial", "--quiet"]) == 1
+                 "--out", str(tmp_path / "r5"), "--engine", "serial"]) == 1
     assert "searched another space" in capsys.readouterr().err
 
 
