@@ -63,6 +63,31 @@ def _repeat_period(s: DetectorSettings) -> int:
     return 7 * s.period_hours if s.weekly_period else s.period_hours
 
 
+ROW_BLOCK = 512
+
+
+def _rows_times(rows: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """``rows @ m`` in blocks of `ROW_BLOCK` rows, the last one padded with zeros.
+
+    A BLAS product may sum in another order for another number of rows, so a window's
+    fit would differ in its last bits between a history and the same history cut
+    short; every product here has one shape, so each row's result depends on that row
+    alone and a replay of a cut history gives the same bits up to the cut.
+    """
+    n = rows.shape[0]
+    out = np.empty((n, m.shape[1]))
+    block = np.zeros((ROW_BLOCK, rows.shape[1]))
+    for i in range(0, n, ROW_BLOCK):
+        k = min(ROW_BLOCK, n - i)
+        if k == ROW_BLOCK:
+            out[i : i + k] = rows[i : i + k] @ m
+        else:
+            block[:k] = rows[i : i + k]
+            block[k:] = 0.0
+            out[i : i + k] = (block @ m)[:k]
+    return out
+
+
 def _fit_windows(windows: np.ndarray, s: DetectorSettings, tail: int):
     """Fit each row of `windows`.
 
@@ -75,14 +100,15 @@ def _fit_windows(windows: np.ndarray, s: DetectorSettings, tail: int):
     period = _repeat_period(s)
     if not s.robust and s.refit_every_hours == 1:
         # every hour is a refit: the level is trend + seasonal, nothing is repeated
-        fitted_tail = windows @ _linear_fitted(L, s)[L - tail :].T
+        fitted_tail = _rows_times(windows, _linear_fitted(L, s)[L - tail :].T)
         return fitted_tail[:, -1], [], windows[:, L - tail :] - fitted_tail
     if not s.robust:
         trend_m, seas_ms = _linear_parts(L, s)
-        seas = [windows @ m[L - tail :].T for m in seas_ms]
-        fitted_tail = windows @ trend_m[L - tail :].T + sum(seas)
+        seas = [_rows_times(windows, m[L - tail :].T) for m in seas_ms]
+        fitted_tail = _rows_times(windows, trend_m[L - tail :].T) + sum(seas)
         resid = windows[:, L - tail :] - fitted_tail
-        return windows @ trend_m[L - 1], [(period, sc) for sc in seas], resid
+        level = _rows_times(windows, trend_m[L - 1][:, None])[:, 0]
+        return level, [(period, sc) for sc in seas], resid
     trend, seasonal, resid = _fit_many(windows, s)
     seas = [(period, c[:, L - tail :]) for c in seasonal]
     return trend[:, L - 1], seas, resid[:, L - tail :]

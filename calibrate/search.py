@@ -450,11 +450,17 @@ class Evaluator:
     group_min_impacts: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
     incidents: Incidents = field(init=False)
     false_windows: Incidents | None = field(init=False)
+    # the goal settings are judged by: the miss-rate target tightened by
+    # `goal.spare_incidents` (the target must hold with that many more misses)
+    judge: Goal = field(init=False)
 
     def __post_init__(self) -> None:
         if self.ses.incidents is None:
             raise InputError(str(self.ses.ws.file), "no [incidents] path: nothing to tune against")
         self.incidents = period_filter(self.ses.incidents, self.first_hour, self.split_hour)
+        n = len(self.incidents)
+        self.judge = self.goal if not n or not self.goal.spare_incidents else replace(
+            self.goal, max_miss_rate=self.goal.max_misses(n) / n)
         self.false_windows = None
         if self.known_false is not None and len(self.known_false):
             self.false_windows = self.known_false
@@ -488,8 +494,8 @@ class Evaluator:
             if pt is not None:
                 ev = self._exact_figures(pt, None)
             else:  # infeasible: the grid point closest to the goal
-                _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
-                j = _fallback_index(c, self.goal)
+                _, reason = solve_multiplier(c, self.judge.max_miss_rate, self.judge)
+                j = _fallback_index(c, self.judge)
                 ev = self._figures(
                     feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
                     caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kf[j]),
@@ -519,7 +525,7 @@ class Evaluator:
         runs = sweep_runs(scores, ks, self.replayer.routes,
                           start_hours=(self.first_hour, self.split_hour), min_impacts=grids)
         return exact_solve(runs, ks, self.incidents, ws.incidents.early_hours,
-                           ws.incidents.late_hours, self.ses.analysts, self.n_days, self.goal,
+                           ws.incidents.late_hours, self.ses.analysts, self.n_days, self.judge,
                            self.false_windows, KNOWN_FALSE_PENALTY)
 
     def _exact_figures(self, pt: ExactPoint, grids: dict[str, np.ndarray] | None) -> Evaluation:
@@ -527,7 +533,7 @@ class Evaluator:
             feasible=True, reason="", k=pt.k, group_k={}, caught=pt.caught, alerts=pt.alerts,
             kf=pt.known_false, team_alerts=pt.team_alerts, teams=pt.teams,
             min_impact=None if grids is None else _level(grids, pt.level))
-        ev.reason = f"k={pt.k:g}: " + _reason(ev, self.goal)
+        ev.reason = f"k={pt.k:g}: " + _reason(ev, self.judge)
         return ev
 
     def _evaluate_with_impact(self, config: DetectorConfig) -> Evaluation:
@@ -546,13 +552,13 @@ class Evaluator:
         else:
             picks = []
             for lv, c in enumerate(curves):
-                j = _fallback_index(c, self.goal)
+                j = _fallback_index(c, self.judge)
                 miss = 0.0 if np.isnan(c.miss_rate[j]) else float(c.miss_rate[j])
-                picks.append((max(miss - self.goal.max_miss_rate, 0.0),
+                picks.append((max(miss - self.judge.max_miss_rate, 0.0),
                               self._budget_ratio(c, j), -float(c.ks[j]), float(lv), lv, j))
             *_, lv, j = min(picks)
             c = curves[lv]
-            _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
+            _, reason = solve_multiplier(c, self.judge.max_miss_rate, self.judge)
             ev = self._figures(
                 feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
                 caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
@@ -566,7 +572,7 @@ class Evaluator:
         `curves` (curve l at minimum impact level l of `grids`; None: the config's own)."""
         pts = best_tradeoffs(
             np.concatenate([c.caught for c in curves]),
-            np.concatenate([curve_loads(c, self.ses.analysts, self.goal) for c in curves]),
+            np.concatenate([curve_loads(c, self.ses.analysts, self.judge) for c in curves]),
             np.concatenate([c.ks for c in curves]),
             np.concatenate([np.full(len(c.ks), float(lv)) for lv, c in enumerate(curves)]))
         return [[c, x, k, None if grids is None else _level(grids, int(lv))]
@@ -575,14 +581,14 @@ class Evaluator:
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
         parts, teams = self._group_parts(config, scores)
-        j = self._joint(parts, teams, self.goal.max_miss_rate)
+        j = self._joint(parts, teams, self.judge.max_miss_rate)
         ev = self._figures(feasible=True, reason="",
                            k=float(np.median(list(j.group_k.values()))), group_k=j.group_k,
                            caught=j.caught, alerts=j.alerts, kf=j.kf, team_alerts=j.team_alerts,
                            teams=tuple(teams))
         ev.group_min_impact = j.group_min_impact
         ev.feasible = all(v <= 0 for v in ev.constraints)
-        ev.reason = _reason(ev, self.goal)
+        ev.reason = _reason(ev, self.judge)
         return ev
 
     def group_front(self, config: DetectorConfig) -> list[JointSolve]:
@@ -591,12 +597,12 @@ class Evaluator:
         less load (`scoring.best_tradeoffs`); most incidents caught first."""
         parts, teams = self._group_parts(config, self.replayer.scores(config))
         n_inc = len(self.incidents)
-        budgets = {t: self.goal.budget(t) for t in self.ses.analysts}
+        budgets = {t: self.judge.budget(t) for t in self.ses.analysts}
         solves = [self._joint(parts, teams, (n_inc - c) / n_inc if n_inc else 0.0)
                   for c in range(n_inc + 1)]
         for js in solves:
             rates, _ = _max_ratio(dict(zip(teams, js.team_alerts, strict=True)),
-                                  self.ses.analysts, self.goal, self.n_days)
+                                  self.ses.analysts, self.judge, self.n_days)
             js.load = load_axis(rates, budgets, self.ses.analysts)[0]
         n = len(solves)
         pts = best_tradeoffs(np.array([js.caught for js in solves]),
@@ -687,7 +693,7 @@ class Evaluator:
 
     def _budget_ratio(self, c: Curve, j: int) -> float:
         return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
-                          self.goal, self.n_days)[1]
+                          self.judge, self.n_days)[1]
 
     def _figures(self, *, feasible: bool, reason: str, k: float, group_k: dict[str, float],
                  caught: int, alerts: int, kf: int, team_alerts: np.ndarray,
@@ -696,10 +702,10 @@ class Evaluator:
         miss = (n_inc - caught) / n_inc if n_inc else 0.0
         high = float(wilson(n_inc - caught, n_inc)[1]) if n_inc else 0.0
         rates, ratio = _max_ratio(dict(zip(teams, team_alerts, strict=True)), self.ses.analysts,
-                                  self.goal, self.n_days)
+                                  self.judge, self.n_days)
         total_analysts = sum(self.ses.analysts.values()) or 1
         value = (alerts + KNOWN_FALSE_PENALTY * kf) / (total_analysts * self.n_days)
-        constraints = [miss - self.goal.max_miss_rate, ratio - 1.0]
+        constraints = [miss - self.judge.max_miss_rate, ratio - 1.0]
         return Evaluation(
             feasible=feasible, reason=reason, k=k, group_k=group_k, incidents=n_inc,
             caught=caught, miss_rate=miss, miss_rate_high=high, alerts=alerts,
@@ -1004,7 +1010,12 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
                          if p.setting == "decomposition_window_hours")]
     first_hour = max(windows_l) - 1
     n = ses.history.n_hours
-    split = holdout_split(n, first_hour, ws.search.holdout_fraction)
+    if ws.search.holdout_start is not None:
+        # the first hour of the given day: whatever comes later, the tuning never reads it
+        day = pd.Timestamp(ws.search.holdout_start, tz="UTC")
+        split = int(ses.history.hours.searchsorted(day))
+    else:
+        split = holdout_split(n, first_hour, ws.search.holdout_fraction)
     if split - first_hour < 24:
         raise CalibrationError(
             f"{ws.file}: the history ({n} hours) is too short to tune: the longest "
