@@ -195,7 +195,8 @@ def score_episodes(
         related=ses.history if related else None,
     )
     n_days = max(end - start, 1) / 24.0
-    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal, unscorable=unscorable)
+    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal, unscorable=unscorable,
+                   start_hour=start, seed=ses.ws.search.seed)
 
 
 def alert_volume(

@@ -42,6 +42,7 @@ from calibrate.scoring import (
     multiplier_curve,
     pareto_front,
     period_filter,
+    validation_verdict,
 )
 from calibrate.settings import DetectorConfig
 
@@ -191,6 +192,9 @@ class ReportData:
     impact: CurveData | None = None
     # with groups: per group, the same as that group's minimum impact moves alone
     impact_groups: list[tuple[str, CurveData]] = field(default_factory=list)
+    # out-of-sample verdict: verdict ("holds", "does not hold", "cannot tell"), reasons,
+    # interval methods, what the tuning labels can show, independence of the check
+    validation: dict[str, Any] = field(default_factory=dict)
 
     @property
     def changed(self) -> list[str]:
@@ -215,6 +219,7 @@ def build_report_data(
     provenance: Mapping[str, Any] | None = None,
     title: str = "Calibration report",
     source: str = "",
+    derived_from_held_out: bool = False,
 ) -> ReportData:
     """Compute the report's content from a replay of the chosen settings.
 
@@ -236,6 +241,9 @@ def build_report_data(
         The study's best trade-offs (`calibrate.search.pareto_frame`).
     feasible, reason, holdout_warning : optional
         What the search said.
+    derived_from_held_out : bool
+        Some incidents were made from verdicts on held-out-week alerts (`retune`): the
+        held-out check is then not independent, and the report says so.
     """
     ws, hist = ses.ws, ses.history
     n = hist.n_hours
@@ -252,8 +260,12 @@ def build_report_data(
     budgets = {t: goal.budget(t) for t in teams}
 
     periods = []
+    held_out = None
     for name, a, b in bounds:
-        figs = api.score_episodes(ses, chosen.episodes, a, b).to_json_dict()
+        figures = api.score_episodes(ses, chosen.episodes, a, b)
+        if name == "held-out weeks":
+            held_out = figures
+        figs = figures.to_json_dict()
         cur = None
         if cur_replay is not None:
             cur = api.score_episodes(ses, cur_replay.episodes, a, b).to_json_dict()
@@ -273,6 +285,19 @@ def build_report_data(
     volume = volume_data(ses, chosen, first, split)
     incidents, delays = incident_rows(periods, hist.hours)
     panels, left_out = series_panels(ses, chosen, first, n, incidents)
+    from calibrate import search
+
+    verdict, reasons = validation_verdict(held_out, goal)
+    validation = {
+        "verdict": verdict, "reasons": reasons,
+        "interval_method": periods[0].figures.get("interval_method", ""),
+        "labels": search.labels_line(periods[0].figures["incidents"], goal),
+        "independent": not derived_from_held_out,
+    }
+    if derived_from_held_out:
+        validation["reasons"] = [*reasons, "the held-out labels include incidents made from "
+                                 "analysts' verdicts on held-out alerts: this check is no "
+                                 "longer independent"]
     return ReportData(
         title=title,
         generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"),
@@ -298,6 +323,7 @@ def build_report_data(
         panels_left_out=left_out,
         incidents=incidents,
         provenance=dict(provenance or {}),
+        validation=validation,
         impact=impact,
         impact_groups=impact_groups,
     )
@@ -750,6 +776,7 @@ def summary_dict(data: ReportData) -> dict[str, Any]:
         "feasible": data.feasible,
         "reason": data.reason,
         "holdout_warning": data.holdout_warning,
+        "validation": data.validation,
         "periods": [
             {
                 "name": p.name,
@@ -1004,7 +1031,7 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         f"<p>Goal: catch at least {_pct(data.goal['target_recall'])} of labelled incidents "
         f"(miss rate at most {_pct(data.goal['max_miss_rate'])}) while every team stays "
         f"within its alert budget ({_e(_budgets_text(data.goal))} alerts per analyst per "
-        "day). Intervals are 95% Wilson intervals: with few incidents they are wide.</p>",
+        "day). Intervals are 95%; with few incidents they are wide.</p>",
     ]
     for p in data.periods:
         cls = "met" if p.goal_met else "notmet"
@@ -1015,6 +1042,13 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         )
     if data.holdout_warning:
         parts.append(f"<p><strong>Held-out check:</strong> {_e(data.holdout_warning)}</p>")
+    v = data.validation
+    if v:
+        parts.append(f"<p><strong>Out-of-sample verdict: {_e(v['verdict'].upper())}.</strong> "
+                     f"{_e('; '.join(v['reasons']))}</p>")
+        parts.append(f"<p>{_e(v['labels'])}. The tuning-week figures are optimistic (the "
+                     "settings were chosen on those labels); judge by the held-out ones. "
+                     f"Intervals: {_e(v['interval_method'])}.</p>")
     if data.reason:
         parts.append(f"<p><strong>Search:</strong> {_e(data.reason)}</p>")
     headers, rows = goal_rows(data)
@@ -1153,6 +1187,13 @@ def render_markdown(data: ReportData) -> str:
         lines.append(f"- **{p.name}** ({p.start[:10]} to {p.end[:10]}): {p.verdict}")
     if data.holdout_warning:
         lines.append(f"- Held-out check: {data.holdout_warning}")
+    v = data.validation
+    if v:
+        lines.append(f"- **Out-of-sample verdict: {v['verdict'].upper()}.** "
+                     + "; ".join(v["reasons"]))
+        lines.append(f"- {v['labels']}. The tuning-week figures are optimistic (the settings "
+                     "were chosen on those labels); judge by the held-out ones. Intervals: "
+                     f"{v['interval_method']}.")
     if data.reason:
         lines.append(f"- Search: {data.reason}")
     lines.append("")

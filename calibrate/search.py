@@ -68,6 +68,7 @@ from tqdm.auto import tqdm
 
 from calibrate import api, studies
 from calibrate.api import Session
+from calibrate.episodes import Episodes
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import Executor
 from calibrate.incidents import Incidents
@@ -81,12 +82,16 @@ from calibrate.scoring import (
     curve_loads,
     exact_solve,
     impact_curves,
+    incidents_needed,
     load_axis,
+    match,
     multiplier_curve,
     pareto_front,
     period_filter,
     solve_multiplier,
+    validation_verdict,
     wilson,
+    zero_miss_bound,
 )
 from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
 from calibrate.workspace import BASE_GROUP, Goal, SearchParam
@@ -848,6 +853,14 @@ class TuneResult:
     goal : Goal
         The goal the trials were judged against (the workspace's, or an override);
         the report judges with it too.
+    verdict, verdict_reasons : str, list of str
+        Out of sample (held-out weeks): "holds", "does not hold" or "cannot tell"
+        (`scoring.validation_verdict`), with the reasons.
+    thin_margin : int
+        Incidents caught on the tuning weeks only by alerts whose peak fence score is
+        within 10% of the multiplier (a little less sensitivity would miss them).
+    labels : str
+        What the tuning-week labels can show at best (`labels_line`).
     """
 
     config: DetectorConfig
@@ -865,6 +878,10 @@ class TuneResult:
     storage: str
     provenance: dict[str, Any]
     goal: Goal | None = None
+    verdict: str = "cannot tell"
+    verdict_reasons: list[str] = field(default_factory=list)
+    thin_margin: int = 0
+    labels: str = ""
 
 
 def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> str:
@@ -1325,12 +1342,16 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     else:
         reason = infeasible_reason(finished, goal)
     warning = holdout_warning(holdout, goal)
+    verdict, why = validation_verdict(holdout, goal)
+    thin = thin_margin(ses, episodes, config, ev.first_hour, ev.split_hour)
     prov = provenance(ses, config, name, store_name, goal, tuning, holdout, ev, chosen, feasible,
                       reason, len(finished))
     return TuneResult(config=config, current=current, feasible=feasible, reason=reason,
                       split_hour=ev.split_hour, first_hour=ev.first_hour, tuning=tuning,
                       holdout=holdout, holdout_warning=warning, trials=trials, pareto=pareto,
-                      study_name=name, storage=store_name, provenance=prov, goal=goal)
+                      study_name=name, storage=store_name, provenance=prov, goal=goal,
+                      verdict=verdict, verdict_reasons=why, thin_margin=thin,
+                      labels=labels_line(len(ev.incidents), goal))
 
 
 def _per_metric_impact(values: dict[str, float]) -> dict[str, Any]:
@@ -1462,8 +1483,9 @@ def _pct(x: float | None) -> str:
 
 def side_by_side(result: TuneResult) -> list[str]:
     """Tuning and held-out figures side by side, with 95% intervals."""
-    cols = [("tuning weeks", result.tuning), ("held-out weeks", result.holdout)]
-    lines = [f"{'':<28}" + "".join(f"{n:>28}" for n, _ in cols)]
+    cols = [("tuning weeks (in-sample)", result.tuning),
+            ("held-out weeks (out-of-sample)", result.holdout)]
+    lines = [f"{'':<28}" + "".join(f"{n:>32}" for n, _ in cols)]
 
     def cell(f: Figures | None, what: str) -> str:
         if f is None:
@@ -1480,7 +1502,12 @@ def side_by_side(result: TuneResult) -> list[str]:
             return f"{_pct(f.precision)} ({_pct(f.precision_low)}-{_pct(f.precision_high)})"
         team = what.split(":", 1)[1]
         if team in f.per_team.index and "alerts_per_analyst_day" in f.per_team.columns:
-            return f"{f.per_team.loc[team, 'alerts_per_analyst_day']:.2f}"
+            row = f.per_team.loc[team]
+            if "alerts_per_analyst_day_low" in f.per_team.columns:
+                return (f"{row['alerts_per_analyst_day']:.2f} "
+                        f"({row['alerts_per_analyst_day_low']:.2f}-"
+                        f"{row['alerts_per_analyst_day_high']:.2f})")
+            return f"{row['alerts_per_analyst_day']:.2f}"
         return "n/a"
 
     rows = [("incidents", "incidents"), ("recall (95% interval)", "recall"),
@@ -1490,8 +1517,48 @@ def side_by_side(result: TuneResult) -> list[str]:
              if n > 0] if "analysts" in result.tuning.per_team.columns else []
     rows += [(f"{t}: per analyst-day", f"team:{t}") for t in teams]
     for label, what in rows:
-        lines.append(f"{label:<28}" + "".join(f"{cell(f, what):>28}" for _, f in cols))
+        lines.append(f"{label:<28}" + "".join(f"{cell(f, what):>32}" for _, f in cols))
+    lines.append("the tuning-week figures are optimistic: the settings were chosen on those "
+                 "labels; judge by the held-out ones. Intervals: "
+                 + (result.tuning.interval_method or "95% Wilson"))
     return lines
+
+
+def labels_line(n_incidents: int, goal: Goal) -> str:
+    """What `n_incidents` tuning-week labels can show at best: the miss-rate upper bound
+    of a setting that misses none (Wilson), against the target; one line."""
+    bound = zero_miss_bound(n_incidents)
+    head = (f"{n_incidents} labelled incident(s) in the tuning weeks: even a setting that "
+            f"misses none shows a miss rate of at most {bound:.1%} (95% upper bound)")
+    if goal.spare_incidents and goal.max_misses(n_incidents) < 0:
+        return (head + f"; with spare_incidents = {goal.spare_incidents} no setting can meet "
+                f"the target {goal.max_miss_rate:.1%}: there are too few incidents")
+    if bound <= goal.max_miss_rate:
+        return head + f", within the target {goal.max_miss_rate:.1%}"
+    need = incidents_needed(goal.max_miss_rate)
+    more = "" if need is None else f"; showing it would take at least {need} labelled incidents"
+    return (head + f", above the target {goal.max_miss_rate:.1%}: these labels cannot show the "
+            "target is met, only that it is not clearly missed" + more)
+
+
+def tuning_incidents(ses: Session) -> int:
+    """Labelled incidents in the tuning weeks the search would use."""
+    _, _, first_hour, split, *_ = _plan(ses, ())
+    return len(period_filter(ses.incidents, first_hour, split)) if ses.incidents else 0
+
+
+def thin_margin(ses: Session, episodes: Episodes, config: DetectorConfig, start: int,
+                end: int, margin: float = 0.1) -> int:
+    """Incidents of ``[start, end)`` caught, but only by fence alerts whose peak score is
+    within `margin` (relative) of their series' multiplier."""
+    eps = period_filter(episodes, start, end)
+    inc = period_filter(ses.incidents, start, end)
+    m = match(eps, inc, ses.ws.incidents.early_hours, ses.ws.incidents.late_hours)
+    k = np.array([config.for_series(lv, mt).fence_multiplier
+                  for lv, mt in zip(eps.level, eps.metric, strict=True)])
+    fence_only = np.array(["flatline" not in d for d in eps.detectors], dtype=bool)
+    close = fence_only & (np.nan_to_num(eps.peak_score, nan=np.inf) <= k * (1.0 + margin))
+    return sum(1 for i in np.flatnonzero(m.caught) if close[m.alerts_of(int(i))].all())
 
 
 def metric_lines(result: TuneResult) -> list[str]:
@@ -1598,6 +1665,7 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
                 else f"one set of settings per {tune_by}")
         print(f"note: tune_by = \"{tune_by}\" tunes {what}; the tuned config leaves out "
               f"the workspace's groups ({names}). Use tune_by = \"group\" to tune them.")
+    print(f"before the search: {labels_line(tuning_incidents(ses), goal)}")
     result = tune(ses, trials=args.trials, storage=args.storage,
                   study_name=getattr(args, "study", None), goal=goal, executor=executor,
                   progress=True)
@@ -1606,6 +1674,10 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         print(line)
     for line in metric_lines(result):
         print(line)
+    if result.thin_margin:
+        print(f"knife edge: {result.thin_margin} caught incident(s) are caught only by alerts "
+              "whose peak fence score is within 10% of the multiplier; [goal] spare_incidents "
+              "= N keeps the target with N more misses")
     if result.holdout_warning:
         print(f"warning: {result.holdout_warning}")
     if not result.feasible:
@@ -1613,6 +1685,7 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         for line in pareto_lines(result):
             print(line)
         print(f"nothing written to {out}")
+        print(verdict_line(result))
         return 2
     print(result.reason)
     print(changed_settings_line(result))
@@ -1621,4 +1694,11 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
     if getattr(args, "report", None):
         write_report(ses, result, Path(args.report), force=force, executor=executor)
         print(f"report written to {args.report}")
+    print(verdict_line(result))
     return 0
+
+
+def verdict_line(result: TuneResult) -> str:
+    """The out-of-sample verdict and its reasons, one line (printed last)."""
+    return (f"out-of-sample verdict: {result.verdict.upper()}: "
+            + "; ".join(result.verdict_reasons))

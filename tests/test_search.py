@@ -21,7 +21,7 @@ import optuna
 import pandas as pd
 import pytest
 
-from calibrate import api, search
+from calibrate import api, scoring, search
 from calibrate.cli import main
 from calibrate.episodes import Episodes
 from calibrate.errors import InputError
@@ -689,7 +689,15 @@ def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
             "--storage", str(tmp_path / "cli.journal")]
     assert main(argv) == 0
     text = capsys.readouterr().out
-    assert "tuning weeks" in text and "held-out weeks" in text
+    assert "tuning weeks (in-sample)" in text and "held-out weeks (out-of-sample)" in text
+    # before the search, what the labels can show; last, the out-of-sample verdict
+    first = next(x for x in text.splitlines() if x.startswith("before the search: "))
+    assert "labelled incident(s) in the tuning weeks" in first
+    last = text.strip().splitlines()[-1]
+    res = search.study_result(api.open_session(ws), storage=str(tmp_path / "cli.journal"),
+                              engine="serial")
+    assert last.startswith(f"out-of-sample verdict: {res.verdict.upper()}: ")
+    assert res.verdict == scoring.validation_verdict(res.holdout, res.goal)[0]
     tuned = load_config(out).base
     assert tuned.fence_multiplier > 0
     # the changed settings, today's value -> the written one
