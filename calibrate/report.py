@@ -37,6 +37,7 @@ from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
 from calibrate.scoring import (
     ANY_LABEL,
+    HELD_OUT_NOTE,
     load_axis,
     match,
     multiplier_curve,
@@ -295,9 +296,7 @@ def build_report_data(
         "independent": not derived_from_held_out,
     }
     if derived_from_held_out:
-        validation["reasons"] = [*reasons, "the held-out labels include incidents made from "
-                                 "analysts' verdicts on held-out alerts: this check is no "
-                                 "longer independent"]
+        validation["reasons"] = [*reasons, HELD_OUT_NOTE]
     return ReportData(
         title=title,
         generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"),
@@ -1310,7 +1309,8 @@ def write_config_report(
 
 
 def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: bool = True,
-                 progress: bool = False, **replay_kwargs: Any) -> ReportData:
+                 progress: bool = False, derived_from_held_out: bool = False,
+                 **replay_kwargs: Any) -> ReportData:
     """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`,
     judged against the goal the run was tuned to (`result.goal`, when set)."""
     goal = getattr(result, "goal", None)
@@ -1332,6 +1332,7 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
         feasible=result.feasible, reason=result.reason or "",
         holdout_warning=result.holdout_warning or "", provenance=prov,
         title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
+        derived_from_held_out=derived_from_held_out,
     )
     write_report_data(data, out_dir, force=force,
                       extra={"alerts-for-review.csv": _review_csv(chosen)})

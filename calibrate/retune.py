@@ -35,10 +35,11 @@ from calibrate.executors import make_executor
 from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.replay import ReplayResult, alerts_frame
 from calibrate.review import VERDICTS
-from calibrate.scoring import match, multiplier_curve, route_teams
+from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_teams
 from calibrate.settings import DetectorConfig
 
 CHECKED_COLUMNS = ("level", "metric", "start")
+
 
 
 @dataclass
@@ -53,6 +54,9 @@ class Verdicts:
     false_alert_ids: list[str]
     already_applied: list[str]  # `real` alerts an incident already covers
     repeated: list[str]  # same alert and verdict given more than once
+    # incidents made from verdicts on alerts raised in the held-out weeks: a held-out
+    # check using them is no longer independent of the review
+    held_out_incidents: list[str] = field(default_factory=list)
 
     def lines(self) -> list[str]:
         """Plain-text summary."""
@@ -63,6 +67,10 @@ class Verdicts:
             f"new incidents from `real` verdicts: {len(self.new_incidents)}",
             f"known false alarms the search must avoid: {len(self.known_false)}",
         ]
+        if self.held_out_incidents:
+            out.append(f"{len(self.held_out_incidents)} new incident(s) come from alerts of "
+                       "the held-out weeks (ids RH-...): the held-out check of the new "
+                       "config is no longer independent of this review")
         if self.already_applied:
             out.append("already applied (a labelled incident covers them): "
                        + ", ".join(self.already_applied))
@@ -71,8 +79,12 @@ class Verdicts:
         return out
 
 
-def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) -> Verdicts:
+def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult,
+                  split_hour: int | None = None) -> Verdicts:
     """Read and validate a reviewed alerts file against a replay of the previous config.
+
+    Incidents made from `real` verdicts on alerts raised at or after `split_hour` (the
+    held-out weeks) are marked: their id starts ``RH-`` and their note says so.
 
     Raises
     ------
@@ -100,6 +112,7 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) ->
     false_pos: list[int] = []
     already: list[str] = []
     repeated: list[str] = []
+    held_out: list[str] = []
     comments = df["comment"].tolist() if "comment" in df.columns else [""] * len(df)
     for i, (aid, verdict) in enumerate(zip(df["alert_id"], df["verdict"], strict=True)):
         row_no = i + 2
@@ -131,12 +144,18 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) ->
                 already.append(aid)
             else:
                 r = ref.iloc[p]
+                held = split_hour is not None and previous.episodes.raised[p] >= split_hour
+                iid = f"{'RH' if held else 'R'}-{aid}"
+                where_from = "held-out-week review" if held else "review"
                 new_rows.append({
-                    "incident_id": f"R-{aid}", "level": r["level"],
+                    "incident_id": iid, "level": r["level"],
                     **{c: r[c] for c in hist.key_columns}, "metric": r["metric"],
                     "start": r["start"], "end": r["end"],
-                    "note": f"from review ({path.name}): {str(comments[i]).strip()}".rstrip(": "),
+                    "note": f"from {where_from} ({path.name}): "
+                            f"{str(comments[i]).strip()}".rstrip(": "),
                 })
+                if held:
+                    held_out.append(iid)
         elif v == "false":
             false_pos.append(p)
     ep = previous.episodes.take(np.array(false_pos, dtype=np.int64))
@@ -150,7 +169,7 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) ->
                                                       *hist.key_columns, "metric", "start",
                                                       "end", "note"]),
         known_false=known, false_alert_ids=list(known.incident_id), already_applied=already,
-        repeated=repeated,
+        repeated=repeated, held_out_incidents=held_out,
     )
 
 
@@ -411,14 +430,19 @@ def retune(
     prov.update(retuned_from_verdicts=str(verdicts_path),
                 verdicts_sha256=hashlib.sha256(Path(verdicts_path).read_bytes()).hexdigest(),
                 known_false_alarms=len(verdicts.known_false),
-                incidents_added=len(verdicts.new_incidents))
+                incidents_added=len(verdicts.new_incidents),
+                held_out_incidents_added=len(verdicts.held_out_incidents))
+    if verdicts.held_out_incidents and hasattr(result, "verdict_reasons"):
+        result.verdict_reasons = [*result.verdict_reasons, HELD_OUT_NOTE]
     return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov)
 
 
 def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs):
     rp = api.make_replayer(ses, progress=progress, executor=executor)
     old = rp.replay(previous)
-    verdicts = read_verdicts(verdicts_path, ses, old)
+    from calibrate.search import split_hour
+
+    verdicts = read_verdicts(verdicts_path, ses, old, split_hour(ses))
     merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)")
     ses2 = replace(ses, incidents=merged)
     if tuner is None:
@@ -572,7 +596,8 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
     }
     written.append(write_report_data_files(files, report, force=force))
     if all(hasattr(res.tune, a) for a in ("trials", "split_hour", "first_hour", "current")):
-        write_report(res.session, res.tune, report / "calibration", force=force)
+        write_report(res.session, res.tune, report / "calibration", force=force,
+                     derived_from_held_out=bool(res.verdicts.held_out_incidents))
         written.append(report / "calibration")
     return written
 

@@ -575,6 +575,8 @@ def figures(
     )
 
 
+HELD_OUT_NOTE = ("the held-out labels include incidents made from analysts' verdicts on "
+                 "held-out alerts: this check is no longer independent")
 BOOTSTRAP_REPS = 1000
 BOOTSTRAP_METHOD = (
     "miss rate and recall: Wilson score interval; precision: cluster bootstrap over "

@@ -1541,6 +1541,11 @@ def labels_line(n_incidents: int, goal: Goal) -> str:
             "target is met, only that it is not clearly missed" + more)
 
 
+def split_hour(ses: Session) -> int:
+    """First held-out hour of the workspace's search (`n_hours`: none held out)."""
+    return _plan(ses, ())[3]
+
+
 def tuning_incidents(ses: Session) -> int:
     """Labelled incidents in the tuning weeks the search would use."""
     _, _, first_hour, split, *_ = _plan(ses, ())
