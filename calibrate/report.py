@@ -935,6 +935,29 @@ def goal_rows(data: ReportData) -> tuple[list[str], list[list[Any]]]:
     return headers, rows
 
 
+def fold_table(v: Mapping[str, Any]) -> tuple[list[str], list[list[Any]]]:
+    """Rolling folds: test hours, recall and load with intervals, and each setting's value
+    per fold (a setting that moves between folds is loosely pinned down by the labels)."""
+    folds = v["folds"]
+    headers = ["", *[f"fold {r['fold']}" for r in folds]]
+    rows: list[list[Any]] = [
+        ["test hours", *[f"{r['test_start_hour']}-{r['test_end_hour']}" for r in folds]],
+        ["recall (95%)", *[
+            "no incidents" if not r["incidents"] else
+            f"{r['caught']} of {r['incidents']}, {_pct(r['recall'][0])} "
+            f"({_pct(r['recall'][1])} to {_pct(r['recall'][2])})" for r in folds]],
+    ]
+    teams = list(dict.fromkeys(t for r in folds for t in r["alerts_per_analyst_day"]))
+    for t in teams:
+        rows.append([f"alerts per analyst per day, {t}", *[
+            "" if t not in r["alerts_per_analyst_day"] else
+            "{:.2f} ({:.2f} to {:.2f})".format(*r["alerts_per_analyst_day"][t])
+            for r in folds]])
+    for name, vals in v.get("stability", {}).items():
+        rows.append([name, *vals])
+    return headers, rows
+
+
 def metric_rows(data: ReportData) -> tuple[list[str], list[list[Any]], list[str]]:
     """Recall and alerts of the chosen settings per watched metric and per detector, one
     column per period, and a warning per metric with labelled incidents in a period but
@@ -1048,6 +1071,11 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         parts.append(f"<p>{_e(v['labels'])}. The tuning-week figures are optimistic (the "
                      "settings were chosen on those labels); judge by the held-out ones. "
                      f"Intervals: {_e(v['interval_method'])}.</p>")
+    if v.get("folds"):
+        headers, rows = fold_table(v)
+        parts.append("<p>Rolling validation: each fold was tuned on the weeks before its "
+                     "test block and scored there (out of sample).</p>")
+        parts.append(_table(headers, rows))
     if data.reason:
         parts.append(f"<p><strong>Search:</strong> {_e(data.reason)}</p>")
     headers, rows = goal_rows(data)
@@ -1193,6 +1221,10 @@ def render_markdown(data: ReportData) -> str:
         lines.append(f"- {v['labels']}. The tuning-week figures are optimistic (the settings "
                      "were chosen on those labels); judge by the held-out ones. Intervals: "
                      f"{v['interval_method']}.")
+    if v.get("folds"):
+        headers, rows = fold_table(v)
+        lines += ["", "Rolling validation (each fold tuned on the weeks before its test "
+                  "block, scored there):", "", *_md_table(headers, rows)]
     if data.reason:
         lines.append(f"- Search: {data.reason}")
     lines.append("")
@@ -1334,6 +1366,14 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
         title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
         derived_from_held_out=derived_from_held_out,
     )
+    if getattr(result, "folds", None):
+        from calibrate import rolling, search
+
+        data.validation.update(
+            verdict=result.verdict, reasons=list(result.verdict_reasons),
+            folds=search.fold_rows(result),
+            stability={n: [str(x) for x in v]
+                       for n, v in rolling.stability(result.folds).items()})
     write_report_data(data, out_dir, force=force,
                       extra={"alerts-for-review.csv": _review_csv(chosen)})
     return data

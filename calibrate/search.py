@@ -66,7 +66,7 @@ import optuna
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate import api, studies
+from calibrate import api, rolling, studies
 from calibrate.api import Session
 from calibrate.episodes import Episodes
 from calibrate.errors import CalibrationError, InputError
@@ -861,6 +861,9 @@ class TuneResult:
         within 10% of the multiplier (a little less sensitivity would miss them).
     labels : str
         What the tuning-week labels can show at best (`labels_line`).
+    folds, pooled : list of rolling.Fold, Figures
+        With ``[search] validation = "rolling"``: each fold's chosen settings and test
+        figures, and the test blocks' figures together (the verdict then uses them).
     """
 
     config: DetectorConfig
@@ -882,6 +885,8 @@ class TuneResult:
     verdict_reasons: list[str] = field(default_factory=list)
     thin_margin: int = 0
     labels: str = ""
+    folds: list[rolling.Fold] = field(default_factory=list)  # rolling validation only
+    pooled: Figures | None = None  # the folds' test blocks together
 
 
 def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> str:
@@ -990,9 +995,47 @@ def tune(
             study = _run_study(ses, ev, space, starts, name, store, budget, progress)
             result = _result(ses, ev, space, study, name, store_name, current, goal,
                              store_front=True)
+            if ws.search.validation == "rolling":
+                _rolling(ses, ev, space, starts, name, store, budget, progress, result)
     finally:
         ev.replayer.close()
     return result
+
+
+def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[DetectorConfig],
+             name: str, store: Any, budget: int, progress: bool, result: TuneResult) -> None:
+    """Rolling validation (`calibrate.rolling`): one study per fold on the hours before its
+    test block, sharing the evaluator's replayer (and so its cached fits); fills the
+    folds, their pooled figures and the verdict into `result`."""
+    s = ses.ws.search
+    folds = rolling.fold_bounds(ev.first_hour, ev.split_hour, s.folds, s.gap_days)
+    episodes = []
+    for f in folds:
+        api.require_incidents(ses, ev.first_hour, f.train_end)
+        fev = Evaluator(ses, ev.replayer, ev.ks, ev.first_hour, f.train_end, ev.goal,
+                        ev.known_false)
+        grids = _impact_plan(ses, starts, f.train_end)
+        fev.min_impacts = grids.get("")
+        fev.group_min_impacts = {g: v for g, v in grids.items() if g}
+        study = _run_study(ses, fev, space, starts, f"{name}-fold{f.number}of{len(folds)}",
+                           store, budget, progress)
+        best, chosen, _, f.config = _chosen(ses, space, study, ses.ws.detector)
+        f.feasible = best is not None
+        f.settings = {**chosen.params, "fence_multiplier": chosen.user_attrs.get("k"),
+                      **{f"min_impact[{m}]": v for m, v in
+                         (chosen.user_attrs.get("min_impact") or {}).items()}}
+        eps = ev.replayer.replay(f.config).episodes
+        f.figures = api.score_episodes(ses, eps, f.test_start, f.test_end)
+        episodes.append(eps)
+    result.folds = folds
+    result.pooled = rolling.pooled_figures(ses, folds, episodes)
+    word, why = validation_verdict(result.pooled, result.goal or ses.ws.goal)
+    why = [f"rolling folds pooled: {r}" for r in why]
+    if result.holdout is not None:  # the held-out check still counts
+        order = ["holds", "cannot tell", "does not hold"]
+        word = max(word, result.verdict, key=order.index)
+        why = why + [f"held-out weeks: {r}" for r in result.verdict_reasons]
+    result.verdict, result.verdict_reasons = word, why
 
 
 def _evaluator(ses: Session, ks: np.ndarray, ms: dict[str, np.ndarray], fence_w: Sequence[int],
@@ -1043,10 +1086,16 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
     ks = np.unique(np.r_[ks, extra])
-    ms = {g: impact_grids(impact_ranges(ses, g or None, split),
-                          [current_impacts(ses, c, g or None) for c in starts])
-          for g in solved_groups(ses)}
-    return space, starts, first_hour, split, fence_w, ks, ms
+    return space, starts, first_hour, split, fence_w, ks, _impact_plan(ses, starts, split)
+
+
+def _impact_plan(ses: Session, starts: Sequence[DetectorConfig],
+                 end_hour: int) -> dict[str, dict[str, np.ndarray]]:
+    """Per solved group, its per-metric minimum-impact grids, from hours before
+    `end_hour` only."""
+    return {g: impact_grids(impact_ranges(ses, g or None, end_hour),
+                            [current_impacts(ses, c, g or None) for c in starts])
+            for g in solved_groups(ses)}
 
 
 def study_result(
@@ -1291,22 +1340,30 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
     return df
 
 
+def _chosen(ses: Session, space: list[Param], study: optuna.Study, current: DetectorConfig):
+    """The study's best feasible trial (or the least infeasible): (best or None, chosen
+    trial, its structural config, the config with its solved settings filled in)."""
+    finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
+    best = _best_feasible(finished)
+    chosen = best if best is not None else _least_infeasible(finished)
+    structure = _config_from(chosen.params, space, ses, current)
+    a = chosen.user_attrs
+    if structure.groups:
+        config = with_group_solve(structure, a["group_k"], a.get("group_min_impact") or {},
+                                  ses.ws.search.tune_by)
+    else:
+        config = structure.with_base(fence_multiplier=a["k"])
+    if a.get("min_impact") is not None:
+        config = config.with_base(**_per_metric_impact(a["min_impact"]))
+    return best, chosen, structure, config
+
+
 def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
             store_name: str, current: DetectorConfig, goal: Goal,
             store_front: bool = False) -> TuneResult:
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
-    best = _best_feasible(finished)
-    chosen = best if best is not None else _least_infeasible(finished)
-    config = _config_from(chosen.params, space, ses, current)
+    best, chosen, structure, config = _chosen(ses, space, study, current)
     a = chosen.user_attrs
-    structure = config
-    if config.groups:
-        config = with_group_solve(config, a["group_k"], a.get("group_min_impact") or {},
-                                  ses.ws.search.tune_by)
-    else:
-        config = config.with_base(fence_multiplier=a["k"])
-    if a.get("min_impact") is not None:
-        config = config.with_base(**_per_metric_impact(a["min_impact"]))
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
     fronts = {}
@@ -1679,6 +1736,8 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         print(line)
     for line in metric_lines(result):
         print(line)
+    for line in fold_lines(result):
+        print(line)
     if result.thin_margin:
         print(f"knife edge: {result.thin_margin} caught incident(s) are caught only by alerts "
               "whose peak fence score is within 10% of the multiplier; [goal] spare_incidents "
@@ -1701,6 +1760,57 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         print(f"report written to {args.report}")
     print(verdict_line(result))
     return 0
+
+
+def fold_rows(result: TuneResult) -> list[dict[str, Any]]:
+    """Rolling folds as plain rows: hours, chosen settings and test figures with their
+    intervals (out of sample for the settings each fold chose)."""
+    rows = []
+    for f in result.folds:
+        fig = f.figures
+        teams = {} if fig is None else {
+            t: [_json_safe(r.get("alerts_per_analyst_day")),
+                _json_safe(r.get("alerts_per_analyst_day_low")),
+                _json_safe(r.get("alerts_per_analyst_day_high"))]
+            for t, r in fig.per_team.to_dict(orient="index").items() if r.get("analysts")}
+        rows.append({
+            "fold": f.number, "train_end_hour": f.train_end, "test_start_hour": f.test_start,
+            "test_end_hour": f.test_end, "feasible_on_its_tuning_hours": f.feasible,
+            "settings": _json_safe(f.settings),
+            "caught": None if fig is None else fig.caught,
+            "incidents": None if fig is None else fig.incidents,
+            "recall": None if fig is None else _json_safe(
+                [fig.recall, fig.recall_low, fig.recall_high]),
+            "alerts_per_analyst_day": teams,
+        })
+    return rows
+
+
+def fold_lines(result: TuneResult) -> list[str]:
+    """Terminal lines of the rolling validation (nothing without folds)."""
+    if not result.folds:
+        return []
+    lines = ["rolling validation (each fold tuned on the weeks before its test block; "
+             "test figures out-of-sample):"]
+    for r in fold_rows(result):
+        rec = r["recall"]
+        recall = ("no incidents" if not r["incidents"] else
+                  f"recall {_pct(rec[0])} ({_pct(rec[1])}-{_pct(rec[2])}), "
+                  f"{r['caught']} of {r['incidents']}")
+        load = ", ".join(f"{t} {v[0]:.2f} ({v[1]:.2f}-{v[2]:.2f})"
+                         for t, v in r["alerts_per_analyst_day"].items())
+        k = r["settings"].get("fence_multiplier")
+        lines.append(f"  fold {r['fold']}: {recall}; per analyst-day {load}; k={k:.3g}"
+                     if k is not None else f"  fold {r['fold']}: {recall}; {load}")
+    moving = {n: v for n, v in rolling.stability(result.folds).items() if len(set(map(
+        str, v))) > 1}
+    lines.append("  settings that differ between folds: " + (", ".join(
+        f"{n} {v}" for n, v in moving.items()) or "none"))
+    if result.pooled is not None:
+        p = result.pooled
+        lines.append(f"  pooled test blocks: recall {_pct(p.recall)} ({_pct(p.recall_low)}-"
+                     f"{_pct(p.recall_high)}), {p.caught} of {p.incidents}")
+    return lines
 
 
 def verdict_line(result: TuneResult) -> str:

@@ -113,6 +113,11 @@ class SearchSpace:
     holdout_fraction: float = 0.25
     # first held-out day (UTC, "YYYY-MM-DD"); replaces holdout_fraction when set
     holdout_start: str | None = None
+    # "holdout" (one check on the held-out weeks) or "rolling": time-ordered folds of the
+    # tuning weeks, each tuned on the weeks before it and scored on the next block
+    validation: str = "holdout"
+    folds: int = 3
+    gap_days: int = 0
     tune_by: str = "all"  # one of GROUPINGS
     seed: int = 0
     # per group (level or metric name): searched settings that replace `params`' ones
@@ -153,7 +158,7 @@ SECTIONS = (
     "goal", "detector", "search", "watch",
 )
 _SEARCH_SPECIAL = ("fence_multiplier", "trials", "holdout_fraction", "holdout_start",
-                   "tune_by", "seed",
+                   "validation", "folds", "gap_days", "tune_by", "seed",
                    "groups")
 
 
@@ -479,6 +484,14 @@ def _search(t: Mapping[str, Any], where: str) -> SearchSpace:
             if not isinstance(day, datetime.date) or isinstance(day, datetime.datetime):
                 raise InputError(loc, f"must be a date \"YYYY-MM-DD\", but got {raw!r}")
             values["holdout_start"] = day.isoformat()
+        elif key == "validation":
+            if raw not in ("holdout", "rolling"):
+                raise InputError(loc, f"must be 'holdout' or 'rolling', but got {raw!r}")
+            values["validation"] = raw
+        elif key == "folds":
+            values["folds"] = _int(raw, loc, 2)
+        elif key == "gap_days":
+            values["gap_days"] = _int(raw, loc, 0)
         elif key == "tune_by":
             if raw not in GROUPINGS:
                 raise InputError(loc, f"must be one of {', '.join(GROUPINGS)}, but got {raw!r}")
