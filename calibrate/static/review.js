@@ -143,7 +143,7 @@ function renderQueue(keepCurrent) {
         r.dataset.alertId = q.alert_id[i];
         r.dataset.verdict = q.verdict[i];
         r.append(el("span", "dot"),
-                 el("span", "what", `${q.metric[i]} · ${hourText(q.raised_hour[i])}`),
+                 el("span", "what", `${q.metric[i]} · ${q.raised_hour[i].slice(5, 16).replace("T", " ")}`),
                  el("span", "size", q.impact_share[i] === null ? fmt(q.impact[i])
                    : (q.impact[i] < 0 ? "−" : "+") + pct(q.impact_share[i])),
                  el("span", "tag", q.verdict[i] || q.detectors[i]));
@@ -385,14 +385,18 @@ function setSelecting(on) {
   for (const p of S.plots) Plotly.relayout(p, { dragmode: on ? "select" : "zoom" });
 }
 
+// the selected time span, widened to whole hours of the grid (start inclusive, end exclusive)
 function selected(plot, ev) {
-  if (!ev || !ev.points || !ev.points.length) return;
-  const idx = ev.points.filter((p) => p.data.meta === "value").map((p) => p.pointIndex);
-  if (!idx.length) return;
-  const lo = Math.min(...idx), hi = Math.max(...idx);
-  openIncidentForm(plot.dataset.metric, S.meta.hours[lo], hourAt(hi + 1));
+  if (!ev || !ev.range || !ev.range.x) return;
+  const t0 = Date.parse(S.meta.hours[0]);
+  const n = S.meta.hours.length;
+  const at = (s) => (Date.parse(String(s).replace(" ", "T") + "Z") - t0) / 3600000;
+  const lo = Math.min(Math.max(0, Math.floor(at(ev.range.x[0]))), n - 1);
+  const hi = Math.max(Math.min(n, Math.ceil(at(ev.range.x[1]))), lo + 1);
+  if (!Number.isFinite(lo) || !Number.isFinite(hi)) return;
+  openIncidentForm(plot.dataset.metric, S.meta.hours[lo], hourAt(hi));
   setSelecting(false);
-  Plotly.restyle(plot, { selectedpoints: [null] });
+  Plotly.relayout(plot, { selections: [] });
 }
 
 // ------------------------------------------------------------------ incidents
