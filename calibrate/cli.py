@@ -134,6 +134,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("workspace")
     p.add_argument("--verdicts", required=True, help="reviewed alerts file (verdict column)")
     p.add_argument("--previous", default=None, help="previous tuned config (warm start)")
+    p.add_argument("--added-incidents", default=None,
+                   help="incidents added in `calibrate review` (its --incidents-out file), "
+                        "merged into the labels")
     p.add_argument("--out", required=True)
     p.add_argument("--report", default=None)
     p.add_argument("--trials", type=int, default=None)

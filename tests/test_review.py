@@ -10,6 +10,7 @@ import subprocess
 import sys
 import time
 from pathlib import Path
+from types import SimpleNamespace
 from urllib.parse import urlencode
 
 import numpy as np
@@ -19,10 +20,11 @@ from calibrate import api
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import SerialExecutor
 from calibrate.incidents import incidents_from_frame, read_text_csv
-from calibrate.retune import read_verdicts
+from calibrate.retune import merged_frame, read_verdicts, retune
 from calibrate.review import review_frame
 from calibrate.review_app import running
-from calibrate.review_data import open_review
+from calibrate.review_data import ReviewError, open_review
+from calibrate.scoring import match
 from tests.review_helpers import HOSTILE, Client, review_workspace, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -307,3 +309,36 @@ def test_cli_prints_the_url_and_serves_only_with_the_token(ws, tmp_path) -> None
         except subprocess.TimeoutExpired:
             proc.kill()
             proc.wait(timeout=5)
+
+
+def test_retune_takes_the_incidents_added_in_review(ws, tmp_path) -> None:
+    ses = api.open_session(ws)
+    rep = api.replay_session(ses, executor=SerialExecutor(), progress=False)
+    alerts = rep.alerts_frame()
+    uncovered = ~match(rep.episodes, ses.incidents, 1, 2).alert_true
+    data = open_review(ws, verdicts=tmp_path / "v.csv", incidents_out=tmp_path / "added.csv",
+                       executor=SerialExecutor(), progress=False)
+    for p in np.flatnonzero(uncovered & (alerts["level"] == "campaign").to_numpy()):
+        r = alerts.iloc[p]
+        body = {"level": "campaign", "keys": {c: r[c] for c in ("market", "advertiser",
+                                                                "campaign")},
+                "metric": r["metric"], "start": r["start"], "end": r["end"], "note": "seen"}
+        try:
+            iid = data.add_incident(body)["incident"]["incident_id"]
+        except ReviewError:
+            continue  # overlaps a labelled incident: take another alert
+        aid = r["alert_id"]
+        break
+    data.set_verdict(aid, "real", "the outage the labels missed")
+
+    def same_config(ses, *, warm_start, **kw):
+        return SimpleNamespace(config=warm_start[0], feasible=True, reason="", provenance={})
+
+    res = retune(ses, tmp_path / "v.csv", None, 1, tuner=same_config,
+                 executor=SerialExecutor(), added_incidents=tmp_path / "added.csv")
+    # the added incident already covers the real alert (no labelled one does): no second
+    # incident is made from the verdict
+    assert res.verdicts.already_applied == [aid] and len(res.verdicts.new_incidents) == 0
+    assert iid in res.incidents.incident_id.tolist()
+    merged = merged_frame(res.session, res.verdicts, res.added)
+    assert merged["incident_id"].tolist() == [*ses.incidents.incident_id.tolist(), iid]
