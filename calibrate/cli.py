@@ -134,11 +134,33 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("workspace")
     p.add_argument("--verdicts", required=True, help="reviewed alerts file (verdict column)")
     p.add_argument("--previous", default=None, help="previous tuned config (warm start)")
+    p.add_argument("--added-incidents", default=None,
+                   help="incidents added in `calibrate review` (its --incidents-out file), "
+                        "merged into the labels")
     p.add_argument("--out", required=True)
     p.add_argument("--report", default=None)
     p.add_argument("--trials", type=int, default=None)
     _force_arg(p, "existing --out, merged incidents, known false alarms and this tool's files "
                   "in the report folder")
+    _engine_args(p)
+
+    p = sub.add_parser("review", help="review alerts and label incidents in the browser")
+    p.add_argument("workspace")
+    p.add_argument("--config", default=None,
+                   help="tuned config whose alerts to review (default: the workspace's "
+                        "[detector]); the plots show its replay")
+    p.add_argument("--alerts", default=None,
+                   help="review only the alerts of this file (from a replay of --config)")
+    p.add_argument("--verdicts", required=True,
+                   help="verdicts file (.csv) the page saves to, in the format "
+                        "`retune --verdicts` reads; an existing one is resumed")
+    p.add_argument("--incidents-out", default=None,
+                   help="incidents file (.csv) for incidents added on the page (never the "
+                        "workspace's own incidents file)")
+    p.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    p.add_argument("--host", default="127.0.0.1",
+                   help="address to listen on (default 127.0.0.1: this machine only)")
+    p.add_argument("--no-browser", action="store_true", help="do not open a browser")
     _engine_args(p)
 
     p = sub.add_parser("demo", help="run the whole job on the bundled sample data")
@@ -316,6 +338,16 @@ def cmd_retune(args) -> int:
     return cli_retune(args)
 
 
+def cmd_review(args) -> int:
+    from calibrate.review_app import review
+
+    review(args.workspace, verdicts=args.verdicts, config=args.config, alerts=args.alerts,
+           incidents_out=args.incidents_out, host=args.host, port=args.port,
+           open_browser=not args.no_browser, engine=args.engine, workers=args.workers,
+           scheduler=args.scheduler, say=lambda line: print(line, flush=True))
+    return 0
+
+
 def cmd_demo(args) -> int:
     from calibrate.demo import run_demo
 
@@ -330,6 +362,7 @@ COMMANDS = {
     "tune": cmd_tune,
     "report": cmd_report,
     "retune": cmd_retune,
+    "review": cmd_review,
     "demo": cmd_demo,
 }
 

@@ -192,20 +192,27 @@ def _check_row(row: pd.Series, ref: pd.Series, keys: tuple[str, ...], where: str
                              f"replay ('{want}'); was the file made from another config?")
 
 
-def merge_incidents(ses: api.Session, verdicts: Verdicts, where: str) -> Incidents:
-    """The workspace's incidents plus those from `real` verdicts (validated again)."""
-    inc = incidents_from_frame(merged_frame(ses, verdicts), ses.ws, ses.history, where)
+def merge_incidents(ses: api.Session, verdicts: Verdicts, where: str,
+                    added: pd.DataFrame | None = None) -> Incidents:
+    """The workspace's incidents, `added` ones (from `calibrate review`) and those from
+    `real` verdicts (validated again)."""
+    inc = incidents_from_frame(merged_frame(ses, verdicts, added), ses.ws, ses.history, where)
     return route_teams(inc, ses.routes)
 
 
-def merged_frame(ses: api.Session, verdicts: Verdicts) -> pd.DataFrame:
-    """The merged incidents as an incidents CSV (original rows first, unchanged)."""
+def merged_frame(ses: api.Session, verdicts: Verdicts | None,
+                 added: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The merged incidents as an incidents CSV (original rows first, unchanged; then
+    the `added` rows, then those from `real` verdicts)."""
     frames = []
     if ses.ws.incidents.path is not None:
         frames.append(read_text_csv(Path(ses.ws.incidents.path)))
-    add = verdicts.new_incidents.copy()
+    if added is not None:
+        frames.append(added.astype(str))
+    add = (verdicts.new_incidents.copy() if verdicts is not None
+           else pd.DataFrame(columns=["incident_id"]))
     if frames and len(add):
-        taken = set(frames[0]["incident_id"].astype(str))
+        taken = set(pd.concat(frames)["incident_id"].astype(str))
         add["incident_id"] = [_free_id(i, taken) for i in add["incident_id"]]
     frames.append(add.astype(str))
     return pd.concat(frames, ignore_index=True).fillna("")
@@ -380,6 +387,7 @@ class RetuneResult:
     comparison: Comparison
     session: api.Session
     provenance: dict[str, Any] = field(default_factory=dict)
+    added: pd.DataFrame | None = None  # incidents added in `calibrate review`
 
 
 Tuner = Callable[..., Any]
@@ -397,6 +405,7 @@ def retune(
     workers: int | None = None,
     scheduler: str | None = None,
     progress: bool = False,
+    added_incidents: str | Path | None = None,
     **tune_kwargs: Any,
 ) -> RetuneResult:
     """Merge verdicts into the labels and tune again, warm-started from `previous`.
@@ -413,15 +422,30 @@ def retune(
     tuner : callable, optional
         ``tune(ses, *, trials, warm_start, known_false, ...)``; default
         `calibrate.search.tune`.
+    added_incidents : path, optional
+        Incidents CSV of incidents added in `calibrate review` (``--incidents-out``),
+        merged into the labels before the verdicts are read.
     """
     previous = previous or ses.ws.detector
+    added = None
+    added_held_out = 0
+    if added_incidents is not None:
+        added = read_text_csv(Path(added_incidents))
+        own_added = incidents_from_frame(added, ses.ws, ses.history, str(added_incidents))
+        from calibrate.search import split_hour
+
+        # labelled while looking at the held-out weeks: that check is then not independent
+        added_held_out = int((own_added.start >= split_hour(ses)).sum())
+        both = incidents_from_frame(merged_frame(ses, None, added), ses.ws, ses.history,
+                                    f"{added_incidents} (with the workspace's incidents)")
+        ses = replace(ses, incidents=route_teams(both, ses.routes))
     # one executor for every replay and the search (its workers start once)
     own = executor is None
     if own:
         executor = make_executor(engine, workers, scheduler)
     try:
         verdicts, merged, ses2, result, old2, new = _retune_steps(
-            ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs)
+            ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs, added)
     finally:
         if own:
             executor.close()
@@ -432,18 +456,27 @@ def retune(
                 known_false_alarms=len(verdicts.known_false),
                 incidents_added=len(verdicts.new_incidents),
                 held_out_incidents_added=len(verdicts.held_out_incidents))
+    if added_held_out:
+        prov.update(held_out_incidents_added_in_review=added_held_out)
+        verdicts.held_out_incidents.extend(["(added in review)"] * added_held_out)
     if verdicts.held_out_incidents and hasattr(result, "verdict_reasons"):
         result.verdict_reasons = [*result.verdict_reasons, HELD_OUT_NOTE]
-    return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov)
+    if added is not None:
+        prov.update(incidents_added_in_review=str(added_incidents),
+                    incidents_added_in_review_count=len(added))
+    return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov,
+                        added)
 
 
-def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs):
+def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs,
+                  added=None):
     rp = api.make_replayer(ses, progress=progress, executor=executor)
     old = rp.replay(previous)
     from calibrate.search import split_hour
 
     verdicts = read_verdicts(verdicts_path, ses, old, split_hour(ses))
-    merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)")
+    merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)",
+                             added)
     ses2 = replace(ses, incidents=merged)
     if tuner is None:
         from calibrate.search import tune as tuner
@@ -575,7 +608,8 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
     out, inc_path, false_path, report = retune_paths(out, report)
     check_outputs((out, inc_path, false_path), force, folders=[report])
     written = [write_config(out, res.config, res.provenance, force=force)]
-    written.append(write_table(inc_path, merged_frame(res.session, res.verdicts), force=force))
+    written.append(write_table(inc_path, merged_frame(res.session, res.verdicts, res.added),
+                               force=force))
     kf = res.verdicts.known_false.to_frame()
     written.append(write_table(false_path, kf.drop(columns=["series"]), force=force))
     c = res.comparison
@@ -615,7 +649,8 @@ def cli_retune(args: Any) -> int:
     ses = api.open_session(args.workspace)
     previous = load_config(args.previous) if args.previous else None
     res = retune(ses, verdicts, previous, args.trials, engine=args.engine,
-                 workers=args.workers, scheduler=args.scheduler, progress=True)
+                 workers=args.workers, scheduler=args.scheduler, progress=True,
+                 added_incidents=getattr(args, "added_incidents", None))
     for line in res.verdicts.lines():
         print(line)
     written = write_retune_outputs(res, out, Path(args.report) if args.report else None,
