@@ -82,11 +82,11 @@ class ReplayResult:
     routes: dict[str, np.ndarray] = field(default_factory=dict)
 
     def alerts_frame(self) -> pd.DataFrame:
-        """Alerts in the DESIGN.md contract (one row per episode)."""
+        """Alerts in the alerts contract of docs/detector.md (one row per episode)."""
         return alerts_frame(self.episodes, self.history)
 
     def scores_frame(self) -> pd.DataFrame:
-        """Per-hour scores (DESIGN.md contract) for every replayed hour."""
+        """Per-hour scores (docs/detector.md contract) for every replayed hour."""
         h = self.history
         parts = []
         for (level, metric), ms in self.scores.items():
@@ -433,7 +433,7 @@ def sweep_runs(
 
 
 def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
-    """Episodes as the Alerts CSV contract of DESIGN.md, sorted by start."""
+    """Episodes as the Alerts CSV contract of docs/detector.md, sorted by start."""
     hours = history.hours
     cols: dict[str, object] = {
         "alert_id": [f"A{i + 1:06d}" for i in range(len(episodes))],

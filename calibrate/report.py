@@ -1,6 +1,6 @@
 """The calibration report: what a team lead reads before approving a rollout.
 
-Two steps, kept apart (see STYLE.md):
+Two steps, kept apart (content as tested data first, rendering after):
 
 1. `build_report_data` computes a `ReportData` record from one replay of the
    chosen settings (plus, optionally, a replay of the current settings and the

@@ -1,7 +1,7 @@
 """Typed detector settings, validated once where they enter the program.
 
 `DetectorSettings` holds one complete detector configuration (the names of
-DESIGN.md's detector semantics). `DetectorConfig` is a base configuration plus
+the detector semantics of docs/detector.md). `DetectorConfig` is a base configuration plus
 optional per-group overrides; `DetectorConfig.for_series(level, metric)` resolves
 the settings one series and metric are replayed with.
 """

@@ -1,6 +1,6 @@
 """Exactness of the replay against the plain reference loop built here.
 
-Reference (the detector semantics of DESIGN.md, written out literally): for every
+Reference (the detector semantics of docs/detector.md, written out literally): for every
 hour t, statsmodels' STL fitted on the trailing window at the last refit hour,
 expected value from that fit, and numpy.percentile over the W remainders the
 detector holds just before t. statsmodels and numpy are the outside references.
@@ -157,7 +157,7 @@ def test_compiled_quartiles_bitwise_equal_numpy(w):
 
 @pytest.mark.parametrize("sides", ["up", "down", "both"])
 def test_fence_scores_match_numpy_formula(sides):
-    # Reference: the fence score written with plain numpy array operations (DESIGN.md
+    # Reference: the fence score written with plain numpy array operations (docs/detector.md
     # definition): (r - Q3)/IQR up, (Q1 - r)/IQR down, inf/0 at IQR = 0, NaN if undefined.
     from calibrate.decompose import fence_scores
 

@@ -4,7 +4,7 @@ References used here (each test names its own):
 - brute force in the test: replay every grid multiplier through `Replayer.replay`
   (the detector's own fence_multiplier, no sweep) and score it with
   `api.score_episodes`, the path `calibrate replay` + `calibrate score` take;
-- Optuna's documented behaviour (REFERENCES.md, Optuna 5): a trial is feasible when
+- Optuna's documented behaviour (Optuna 5 API reference): a trial is feasible when
   every constraint value is <= 0; `enqueue_trial` runs the given parameters first;
   a study in a JournalStorage file keeps its trials across processes.
 """
