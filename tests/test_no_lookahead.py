@@ -9,6 +9,8 @@ as a user's (`open_session` from the files, `replay_session` with the workspace'
 `[detector]`, whose `min_impact` is above 0). What a production detector has seen at
 hour t must not change when later hours arrive (README, "The workspace").
 
+Campaign-level clicks and impressions take one-hour-ahead expected values
+(`expected_value = "forecast"`, first scored hour L + W = 96), the rest in-fit ones.
 Clicks are fitted robustly (the compiled STL kernel fits each window on its own), so
 their per-hour results must be bit for bit those of the full run. The non-robust fit
 is one BLAS product over all windows, whose rounding depends on how many windows
@@ -65,6 +67,18 @@ fence_window_hours = 24
 fence_multiplier = 1.5
 flatline_hours = 3
 min_impact = 40.0
+
+[detector.group.forecast_robust]
+levels = ["campaign"]
+metrics = ["clicks"]
+expected_value = "forecast"
+robust = true
+min_impact = 8.0
+
+[detector.group.forecast]
+levels = ["campaign"]
+metrics = ["impressions"]
+expected_value = "forecast"
 
 [detector.group.ratio]
 metrics = ["ctr"]
@@ -134,6 +148,7 @@ def runs(tmp_path_factory) -> dict[int | None, ReplayResult]:
     # the data exercise what the alert test is for: some episode runs across a cut
     eps = out[None].episodes
     assert any(((eps.start <= c) & (eps.end > c + 1)).any() for c in CUTS)
+    assert (out[None].alerts_frame()["expected_value"] == "forecast").any()
     return out
 
 
