@@ -150,9 +150,7 @@ def unreplayable(
     config: DetectorConfig, ws: Workspace, history: History, name: str
 ) -> list[tuple[str, str]]:
     """(where, what) for each settings table some watched series is replayed with whose
-    first scored hour lies beyond the history (a decomposition window longer than it, or
-    with forecast expected values the window plus the fence window): those series are
-    never scored.
+    decomposition window is longer than the history: those series are never replayed.
 
     `name` is how messages refer to the file `config` came from (pure).
     """
@@ -162,20 +160,10 @@ def unreplayable(
         for metric in ws.metric_names:
             group = next((g for g in config.groups if g.matches(level, metric)), None)
             table = "[detector]" if group is None else f"[detector.group.{group.name}]"
-            settings = config.base if group is None else group.settings
-            window = settings.decomposition_window_hours
-            if table in seen or settings.first_scored_hour < history.n_hours:
+            window = (config.base if group is None else group.settings).decomposition_window_hours
+            if table in seen or window <= history.n_hours:
                 continue
             seen.add(table)
-            if window <= history.n_hours:  # a forecast's fence window does not fit
-                out.append((
-                    f"{name} {table} key 'expected_value'",
-                    f"\"forecast\" scores from hour decomposition_window_hours + "
-                    f"fence_window_hours = {settings.first_scored_hour}, beyond the history "
-                    f"({history.n_hours} hours): no alert could ever be raised; shorten the "
-                    "windows or load more history",
-                ))
-                continue
             out.append((
                 f"{name} {table} key 'decomposition_window_hours'",
                 f"{window} hours is longer than the history ({history.n_hours} hours), so "

@@ -100,11 +100,3 @@ def test_tune_searches_the_mode_on_the_latest_first_scored_hour(ses, tmp_path: P
     assert 'expected_value = "' in out.read_text(encoding="utf-8")
     assert load_config(out) == res.config
 
-
-def test_a_forecast_that_can_score_no_hour_is_refused(ses) -> None:
-    # 840 hours of history: a window of 800 leaves hours to score in-fit, but no
-    # room for 72 forecast remainders before a scored hour (800 + 72 > 839)
-    cfg = ses.ws.detector.with_base(decomposition_window_hours=800)
-    api.require_replayable(ses, cfg)
-    with pytest.raises(InputError, match=r"key 'expected_value'.* 872, beyond the history"):
-        api.require_replayable(ses, cfg.with_base(expected_value="forecast"))
