@@ -158,10 +158,11 @@ def replay_session(
 
 
 def first_scored_hour(config: DetectorConfig, ws: Workspace) -> int:
-    """First hour every series is replayed at (the longest decomposition window)."""
-    windows = [config.base.decomposition_window_hours]
-    windows += [g.settings.decomposition_window_hours for g in config.groups]
-    return max(windows) - 1
+    """First hour every series is scored at: the latest `first_scored_hour` of the
+    settings in `config` (L - 1 with ``expected_value = "fit"``, L + W with
+    ``"forecast"``)."""
+    settings = [config.base, *(g.settings for g in config.groups)]
+    return max(s.first_scored_hour for s in settings)
 
 
 def score_episodes(

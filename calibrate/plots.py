@@ -209,7 +209,8 @@ def series_png(panel: SeriesPanel) -> bytes:
     t = np.array([_hour(x) for x in panel.times])
     ax.fill_between(t, panel.lower, panel.upper, color=FEASIBLE, alpha=0.15, linewidth=0,
                     label=f"fences (k = {panel.k:.3g})", step="mid")
-    ax.plot(t, panel.expected, color=FEASIBLE, linewidth=1.0, linestyle="--", label="expected")
+    ax.plot(t, panel.expected, color=FEASIBLE, linewidth=1.0, linestyle="--",
+            label=f"expected ({panel.expected_value})")
     ax.plot(t, panel.value, color=INK, linewidth=1.1, label="value")
     first = True
     for s, e in panel.incident_spans:

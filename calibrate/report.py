@@ -162,6 +162,7 @@ class SeriesPanel:
     incident_spans: list[tuple[str, str]]
     alert_spans: list[tuple[str, str]]
     note: str = ""
+    expected_value: str = "fit"  # the mode of the expected line: "fit" or "forecast"
 
 
 @dataclass
@@ -639,6 +640,12 @@ def incident_rows(
     return rows, delays
 
 
+EXPECTED_CAPTION = {
+    "fit": "Expected value: in-fit (the STL fit ending at each hour).",
+    "forecast": "Expected value: forecast (one hour ahead, from the fit ending before).",
+}
+
+
 def series_panels(
     ses: api.Session,
     chosen: ReplayResult,
@@ -757,7 +764,9 @@ def _panel(
         kind=kind, title=title, level=lv, label=label, metric=metric, times=times,
         value=_floats(ms.value[s, sl]), expected=_floats(expected), lower=_floats(lower),
         upper=_floats(upper), k=float(k), incident_spans=inc_spans, alert_spans=al_spans,
-        note=note,
+        note=" ".join(x for x in (note.rstrip(".") + "." if note else "",
+                                 EXPECTED_CAPTION[ms.settings.expected_value]) if x),
+        expected_value=ms.settings.expected_value,
     )
 
 

@@ -44,8 +44,9 @@ counts an incident as caught when any group's alerts catch it.
 
 Holdout: the last ``holdout_fraction`` of the history, rounded to whole weeks, is
 held out; objective and constraints use only ``[first_hour, split_hour)``, where
-``first_hour`` is the longest candidate decomposition window minus one, so every
-trial is scored on the same hours. Replays run over the whole history; with no
+``first_hour`` is the latest first scored hour over the space (the longest candidate
+decomposition window minus one, or L + W with ``expected_value = "forecast"``), so
+every trial is scored on the same hours. Replays run over the whole history; with no
 look-ahead, hours before the split never see later data.
 """
 
@@ -1068,7 +1069,9 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     if windows_l is None:
         windows_l = [max(int(p.spec.high) for p in space
                          if p.setting == "decomposition_window_hours")]
-    first_hour = max(windows_l) - 1
+    fence_w = candidate_values(space, "fence_window_hours",
+                               [c.base.fence_window_hours for c in starts]) or ()
+    first_hour = _first_hour(space, starts, windows_l, fence_w)
     n = ses.history.n_hours
     if ws.search.holdout_start is not None:
         # the first hour of the given day: whatever comes later, the tuning never reads it
@@ -1078,10 +1081,8 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
         split = holdout_split(n, first_hour, ws.search.holdout_fraction)
     if split - first_hour < 24:
         raise CalibrationError(
-            f"{ws.file}: the history ({n} hours) is too short to tune: the longest "
-            f"decomposition window needs {first_hour + 1} hours before the first scored hour")
-    fence_w = candidate_values(space, "fence_window_hours",
-                               [c.base.fence_window_hours for c in starts]) or ()
+            f"{ws.file}: the history ({n} hours) is too short to tune: the detector "
+            f"settings searched need {first_hour + 1} hours before the first scored hour")
     lo, hi = ws.search.multiplier_low, ws.search.multiplier_high
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
@@ -1096,6 +1097,22 @@ def _impact_plan(ses: Session, starts: Sequence[DetectorConfig],
     return {g: impact_grids(impact_ranges(ses, g or None, end_hour),
                             [current_impacts(ses, c, g or None) for c in starts])
             for g in solved_groups(ses)}
+
+
+def _first_hour(space: list[Param], starts: Sequence[DetectorConfig],
+                windows_l: Sequence[int], fence_w: Sequence[int]) -> int:
+    """The latest first scored hour over the space, so every trial is scored on the same
+    hours: L - 1 for the longest window L, or with `forecast` expected values in the
+    space, the largest L + W of a window and a fence window below it."""
+    settings = [s for c in starts for s in (c.base, *(g.settings for g in c.groups))]
+    first = max(windows_l) - 1
+    modes = candidate_values(space, "expected_value", [s.expected_value for s in settings])
+    if "forecast" not in (modes or ()):
+        return first
+    ws_f = list(fence_w) + [s.fence_window_hours for s in settings]
+    ws_f += [int(p.spec.high) for p in space if p.setting == "fence_window_hours"
+             and p.spec.kind != "choice"]
+    return max([first, *(L + W for L in windows_l for W in ws_f if W < L)])
 
 
 def study_result(

@@ -15,6 +15,7 @@ from tests.synthetic import make_workspace
 ALERT_COLUMNS = [
     "alert_id", "level", "market", "advertiser", "campaign", "metric", "start", "end",
     "raised_hour", "peak_hour", "peak_score", "value", "expected", "impact", "team", "detectors",
+    "expected_value",
 ]
 SCORE_COLUMNS = [
     "level", "market", "advertiser", "campaign", "metric", "hour", "value", "expected",
