@@ -107,6 +107,16 @@ def test_tighter_multiplier_never_adds_flags(ws):
         assert any(a <= t.start[i] and t.end[i] <= b for a, b in spans)
 
 
+@pytest.mark.parametrize(
+    "args, needle",
+    [
+        (["replay", "nope.toml", "--out", "a.csv"], "no such workspace file"),
+        (["score", "WS", "--alerts", "missing.csv"], "no such alerts file"),
+        (["replay", "WS", "--out", "a.csv", "--metrics", "bogus"], "unknown metric 'bogus'"),
+        (["replay", "WS", "--out", "a.csv", "--config", "none.toml"], "no such config file"),
+        (["volume", "WS", "--from", "2026-13-45"], "--from"),
+    ],
+)
 def test_errors_are_one_line(ws, capsys, args, needle):
     args = [str(ws) if a == "WS" else a for a in args]
     assert main(args) == 1
