@@ -164,10 +164,11 @@ def replay_session(
 
 
 def first_scored_hour(config: DetectorConfig, ws: Workspace) -> int:
-    """First hour every series is replayed at (the longest decomposition window)."""
-    windows = [config.base.decomposition_window_hours]
-    windows += [g.settings.decomposition_window_hours for g in config.groups]
-    return max(windows) - 1
+    """First hour every series is scored at: the latest `first_scored_hour` of the
+    settings in `config` (L - 1 with ``expected_value = "fit"``, L + W with
+    ``"forecast"``)."""
+    settings = [config.base, *(g.settings for g in config.groups)]
+    return max(s.first_scored_hour for s in settings)
 
 
 def scored_period(
@@ -191,9 +192,9 @@ def scored_period(
     if end <= start:
         hours = ses.history.hours
         if first_scored >= n:
-            what = (f"the first scored hour ({first_scored + 1} hours of decomposition "
-                    f"window) is past the end of the history ({n} hours): nothing can be "
-                    "scored; shorten the window or load more history")
+            what = (f"the first scored hour (hour {first_scored}, after the decomposition "
+                    f"window's warm-up) is past the end of the history ({n} hours): nothing "
+                    "can be scored; shorten the window or load more history")
         else:
             what = (f"the period ends before the first scored hour "
                     f"{hours[first_scored]:%Y-%m-%dT%H:%MZ} (the decomposition window's "
@@ -234,7 +235,8 @@ def score_episodes(
         related=ses.history if related else None,
     )
     n_days = (end - scored) / 24.0
-    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal, unscorable=unscorable)
+    return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal, unscorable=unscorable,
+                   start_hour=scored, seed=ses.ws.search.seed)
 
 
 def alert_volume(

@@ -86,6 +86,8 @@ EXAMPLES = {
                "calibrate report sample_data --study --out reports/so-far"],
     "retune": ["calibrate retune sample_data --verdicts reviewed.csv --previous tuned.toml "
                "--out tuned-v2.toml --report reports/v2"],
+    "review": ["calibrate review sample_data --config tuned.toml --verdicts reviewed.csv "
+               "--incidents-out added-incidents.csv"],
     "demo": ["calibrate demo --out demo-output --force"],
 }
 
@@ -219,6 +221,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--previous", default=None,
                    help="tuned config the reviewed alerts came from, warm-started from "
                    "(default: the workspace's [detector] settings)")
+    p.add_argument("--added-incidents", default=None,
+                   help="incidents added in `calibrate review` (its --incidents-out file), "
+                        "merged into the labels (default: none)")
     p.add_argument("--out", required=True, help="new tuned config to write, .toml (required)")
     p.add_argument("--report", default=None,
                    help="comparison report folder (default: no report)")
@@ -226,6 +231,27 @@ def build_parser() -> argparse.ArgumentParser:
                    help="trial budget of the new study (default: [search] trials, else 60)")
     _force_arg(p, "existing --out, merged incidents, known false alarms and this tool's files "
                   "in the report folder")
+    _engine_args(p)
+
+    p = _command(sub, "review", "review alerts and label incidents in the browser")
+    _workspace_arg(p)
+    p.add_argument("--config", default=None,
+                   help="tuned config whose alerts to review (default: the workspace's "
+                        "[detector]); the plots show its replay")
+    p.add_argument("--alerts", default=None,
+                   help="review only the alerts of this file, from a replay of --config "
+                        "(default: every alert of the replay)")
+    p.add_argument("--verdicts", required=True,
+                   help="verdicts file (.csv) the page saves to, in the format "
+                        "`retune --verdicts` reads; an existing one is resumed (required)")
+    p.add_argument("--incidents-out", default=None,
+                   help="incidents file (.csv) for incidents added on the page (never the "
+                        "workspace's own incidents file; default: none)")
+    p.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    p.add_argument("--host", default="127.0.0.1",
+                   help="address to listen on (default 127.0.0.1: this machine only)")
+    p.add_argument("--no-browser", action="store_true",
+                   help="do not open a browser (default: open one)")
     _engine_args(p)
 
     p = _command(sub, "demo", "run the whole job on the bundled sample data")
@@ -440,6 +466,16 @@ def cmd_retune(args) -> int:
     return cli_retune(args)
 
 
+def cmd_review(args) -> int:
+    from calibrate.review_app import review
+
+    review(args.workspace, verdicts=args.verdicts, config=args.config, alerts=args.alerts,
+           incidents_out=args.incidents_out, host=args.host, port=args.port,
+           open_browser=not args.no_browser, engine=args.engine, workers=args.workers,
+           scheduler=args.scheduler, say=lambda line: print(line, flush=True))
+    return 0
+
+
 def cmd_demo(args) -> int:
     from calibrate.demo import run_demo
 
@@ -454,6 +490,7 @@ COMMANDS = {
     "tune": cmd_tune,
     "report": cmd_report,
     "retune": cmd_retune,
+    "review": cmd_review,
     "demo": cmd_demo,
 }
 

@@ -107,6 +107,9 @@ def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, 
     write_table(out / "alerts-for-review.csv", review, force=force)
     print(f"    {len(review)} alerts written to {out / 'alerts-for-review.csv'} "
           "(fill in the verdict column, then run `calibrate retune`)")
+    print(f"    or review them in the browser: calibrate review {out / 'workspace'} "
+          f"--config {out / 'tuned.toml'} --verdicts {out / 'reviewed.csv'} "
+          f"--incidents-out {out / 'added-incidents.csv'}")
     return tuned, result
 
 

@@ -2,7 +2,7 @@
 
 An `Episodes` table is what the replay raises (one row per alert episode) and what
 scoring consumes; `replay.alerts_frame` turns it into the Alerts CSV contract of
-DESIGN.md. Hour positions are indices into `History.hours`; `end` is exclusive.
+docs/detector.md. Hour positions are indices into `History.hours`; `end` is exclusive.
 `CodedEpisodes` holds the same columns with the text ones as integer codes (what a
 multiplier-grid sweep makes, millions of rows that only get counted); its text
 columns are decoded on access and `decode` gives an `Episodes`.

@@ -3,7 +3,7 @@
 Pipeline stage 6 (first half). An `Incidents` table holds columns of numpy arrays,
 like `Episodes`: level, series index into ``History.levels[level].keys``, metric
 ("" = any metric), and ``start``/``end`` as hour indices into ``History.hours``
-(``end`` exclusive). `load_incidents` reads the CSV contract of DESIGN.md;
+(``end`` exclusive). `load_incidents` reads the CSV contract of docs/detector.md;
 `incidents_from_frame` does the same checks on an in-memory frame.
 
 The row/column resolvers here (`FrameRows`, `resolve_series`, `resolve_hours`) are

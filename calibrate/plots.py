@@ -277,7 +277,8 @@ def series_figure(panel: SeriesPanel) -> plt.Figure:
         fences += f", drawn from {floor:g}"
     ax.fill_between(t, lower, upper, color=FEASIBLE, alpha=0.15, linewidth=0,
                     label=fences, step="mid")
-    ax.plot(t, expected, color=FEASIBLE, linewidth=1.0, linestyle="--", label="expected")
+    ax.plot(t, expected, color=FEASIBLE, linewidth=1.0, linestyle="--",
+            label=f"expected ({panel.expected_value})")
     ax.plot(t, panel.value, color=INK, linewidth=1.1, label="value")
     first = True
     for s, e in panel.incident_spans:

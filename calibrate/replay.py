@@ -86,12 +86,13 @@ class ReplayResult:
     routes: dict[str, np.ndarray] = field(default_factory=dict)
 
     def alerts_frame(self) -> pd.DataFrame:
-        """Alerts in the DESIGN.md contract (one row per episode)."""
-        return alerts_frame(self.episodes, self.history)
+        """Alerts in the alerts contract of docs/detector.md (one row per episode), with the
+        `expected_value` mode that raised each."""
+        return alerts_frame(self.episodes, self.history, self.config)
 
     def scores_frame(self) -> pd.DataFrame:
-        """Per-hour scores (DESIGN.md contract) for every replayed hour, as one frame
-        (`score_blocks` gives the same rows block by block, in the same order)."""
+        """Per-hour scores (docs/detector.md contract) for every replayed hour, as one
+        frame (`score_blocks` gives the same rows block by block, in the same order)."""
         parts = list(self.score_blocks(None))
         if not parts:
             return pd.DataFrame()
@@ -448,8 +449,11 @@ def sweep_runs(
     return RunTable(runs=runs, lo=ints[3], hi=ints[4], order=order, raised=raised)
 
 
-def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
-    """Episodes as the Alerts CSV contract of DESIGN.md, sorted by start."""
+def alerts_frame(episodes: Episodes, history: History,
+                 config: DetectorConfig | None = None) -> pd.DataFrame:
+    """Episodes as the Alerts CSV contract of docs/detector.md, sorted by start; with the
+    `config` that raised them, a last column `expected_value` says for each alert
+    whether its expected values were in-fit (`fit`) or one hour ahead (`forecast`)."""
     hours = history.hours
     cols: dict[str, object] = {
         "alert_id": [f"A{i + 1:06d}" for i in range(len(episodes))],
@@ -477,6 +481,12 @@ def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
         team=episodes.team,
         detectors=episodes.detectors,
     )
+    if config is not None:
+        mode = np.full(len(episodes), "", dtype=object)
+        for lv, m in set(zip(episodes.level, episodes.metric, strict=True)):
+            sel = (episodes.level == lv) & (episodes.metric == m)
+            mode[sel] = config.for_series(lv, m).expected_value
+        cols["expected_value"] = mode
     return pd.DataFrame(cols)
 
 

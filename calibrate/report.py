@@ -1,6 +1,6 @@
 """The calibration report: what a team lead reads before approving a rollout.
 
-Two steps, kept apart (see STYLE.md):
+Two steps, kept apart (content as tested data first, rendering after):
 
 1. `build_report_data` computes a `ReportData` record from one replay of the
    chosen settings (plus, optionally, a replay of the current settings and the
@@ -38,11 +38,13 @@ from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
 from calibrate.scoring import (
     ANY_LABEL,
+    HELD_OUT_NOTE,
     load_axis,
     match,
     multiplier_curve,
     pareto_front,
     period_filter,
+    validation_verdict,
 )
 from calibrate.settings import DetectorConfig
 
@@ -161,6 +163,7 @@ class SeriesPanel:
     incident_spans: list[tuple[str, str]]
     alert_spans: list[tuple[str, str]]
     note: str = ""
+    expected_value: str = "fit"  # the mode of the expected line: "fit" or "forecast"
     # fences and expected values are drawn no lower than this (0 for a metric that
     # cannot be negative, `can_be_negative`); None: drawn as they are
     floor: float | None = None
@@ -195,6 +198,9 @@ class ReportData:
     impact: CurveData | None = None
     # with groups: per group, the same as that group's minimum impact moves alone
     impact_groups: list[tuple[str, CurveData]] = field(default_factory=list)
+    # out-of-sample verdict: verdict ("holds", "does not hold", "cannot tell"), reasons,
+    # interval methods, what the tuning labels can show, independence of the check
+    validation: dict[str, Any] = field(default_factory=dict)
 
     @property
     def changed(self) -> list[str]:
@@ -219,6 +225,7 @@ def build_report_data(
     provenance: Mapping[str, Any] | None = None,
     title: str = "Calibration report",
     source: str = "",
+    derived_from_held_out: bool = False,
 ) -> ReportData:
     """Compute the report's content from a replay of the chosen settings.
 
@@ -240,6 +247,9 @@ def build_report_data(
         The study's best trade-offs (`calibrate.search.pareto_frame`).
     feasible, reason, holdout_warning : optional
         What the search said.
+    derived_from_held_out : bool
+        Some incidents were made from verdicts on held-out-week alerts (`retune`): the
+        held-out check is then not independent, and the report says so.
     """
     ws, hist = ses.ws, ses.history
     n = hist.n_hours
@@ -256,10 +266,13 @@ def build_report_data(
     budgets = {t: goal.budget(t) for t in teams}
 
     periods = []
+    held_out = None
     for name, a, b in bounds:
         # every period counts from the first scored hour, as `score` and `volume` do
-        figs = api.score_episodes(ses, chosen.episodes, a, b,
-                                  first_scored=first).to_json_dict()
+        figures = api.score_episodes(ses, chosen.episodes, a, b, first_scored=first)
+        if name == "held-out weeks":
+            held_out = figures
+        figs = figures.to_json_dict()
         cur = None
         if cur_replay is not None:
             cur = api.score_episodes(ses, cur_replay.episodes, a, b,
@@ -280,6 +293,17 @@ def build_report_data(
     volume = volume_data(ses, chosen, first, split)
     incidents, delays = incident_rows(periods, hist.hours)
     panels, left_out = series_panels(ses, chosen, first, n, incidents)
+    from calibrate import search
+
+    verdict, reasons = validation_verdict(held_out, goal)
+    validation = {
+        "verdict": verdict, "reasons": reasons,
+        "interval_method": periods[0].figures.get("interval_method", ""),
+        "labels": search.labels_line(periods[0].figures["incidents"], goal),
+        "independent": not derived_from_held_out,
+    }
+    if derived_from_held_out:
+        validation["reasons"] = [*reasons, HELD_OUT_NOTE]
     return ReportData(
         title=title,
         generated=datetime.now(UTC).strftime("%Y-%m-%d %H:%M UTC"),
@@ -305,6 +329,7 @@ def build_report_data(
         panels_left_out=left_out,
         incidents=incidents,
         provenance=dict(provenance or {}),
+        validation=validation,
         impact=impact,
         impact_groups=impact_groups,
     )
@@ -621,6 +646,12 @@ def incident_rows(
     return rows, delays
 
 
+EXPECTED_CAPTION = {
+    "fit": "Expected value: in-fit (the STL fit ending at each hour).",
+    "forecast": "Expected value: forecast (one hour ahead, from the fit ending before).",
+}
+
+
 def series_panels(
     ses: api.Session,
     chosen: ReplayResult,
@@ -745,7 +776,9 @@ def _panel(
         kind=kind, title=title, level=lv, label=label, metric=metric, times=times,
         value=_floats(ms.value[s, sl]), expected=_floats(expected), lower=_floats(lower),
         upper=_floats(upper), k=float(k), incident_spans=inc_spans, alert_spans=al_spans,
-        note=note, floor=floor,
+        note=" ".join(x for x in (note.rstrip(".") + "." if note else "",
+                                 EXPECTED_CAPTION[ms.settings.expected_value]) if x),
+        expected_value=ms.settings.expected_value, floor=floor,
     )
 
 
@@ -775,6 +808,7 @@ def summary_dict(data: ReportData) -> dict[str, Any]:
         "feasible": data.feasible,
         "reason": data.reason,
         "holdout_warning": data.holdout_warning,
+        "validation": data.validation,
         "periods": [
             {
                 "name": p.name,
@@ -934,6 +968,29 @@ def goal_rows(data: ReportData) -> tuple[list[str], list[list[Any]]]:
     return headers, rows
 
 
+def fold_table(v: Mapping[str, Any]) -> tuple[list[str], list[list[Any]]]:
+    """Rolling folds: test hours, recall and load with intervals, and each setting's value
+    per fold (a setting that moves between folds is loosely pinned down by the labels)."""
+    folds = v["folds"]
+    headers = ["", *[f"fold {r['fold']}" for r in folds]]
+    rows: list[list[Any]] = [
+        ["test hours", *[f"{r['test_start_hour']}-{r['test_end_hour']}" for r in folds]],
+        ["recall (95%)", *[
+            "no incidents" if not r["incidents"] else
+            f"{r['caught']} of {r['incidents']}, {_pct(r['recall'][0])} "
+            f"({_pct(r['recall'][1])} to {_pct(r['recall'][2])})" for r in folds]],
+    ]
+    teams = list(dict.fromkeys(t for r in folds for t in r["alerts_per_analyst_day"]))
+    for t in teams:
+        rows.append([f"alerts per analyst per day, {t}", *[
+            "" if t not in r["alerts_per_analyst_day"] else
+            "{:.2f} ({:.2f} to {:.2f})".format(*r["alerts_per_analyst_day"][t])
+            for r in folds]])
+    for name, vals in v.get("stability", {}).items():
+        rows.append([name, *vals])
+    return headers, rows
+
+
 def metric_rows(data: ReportData) -> tuple[list[str], list[list[Any]], list[str]]:
     """Recall and alerts of the chosen settings per watched metric and per detector, one
     column per period, and a warning per metric with labelled incidents in a period but
@@ -1029,7 +1086,7 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         f"<p>Goal: catch at least {_pct(data.goal['target_recall'])} of labelled incidents "
         f"(miss rate at most {_pct(data.goal['max_miss_rate'])}) while every team stays "
         f"within its alert budget ({_e(_budgets_text(data.goal))} alerts per analyst per "
-        "day). Intervals are 95% Wilson intervals: with few incidents they are wide.</p>",
+        "day). Intervals are 95%; with few incidents they are wide.</p>",
     ]
     for p in data.periods:
         cls = "met" if p.goal_met else "notmet"
@@ -1040,6 +1097,18 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         )
     if data.holdout_warning:
         parts.append(f"<p><strong>Held-out check:</strong> {_e(data.holdout_warning)}</p>")
+    v = data.validation
+    if v:
+        parts.append(f"<p><strong>Out-of-sample verdict: {_e(v['verdict'].upper())}.</strong> "
+                     f"{_e('; '.join(v['reasons']))}</p>")
+        parts.append(f"<p>{_e(v['labels'])}. The tuning-week figures are optimistic (the "
+                     "settings were chosen on those labels); judge by the held-out ones. "
+                     f"Intervals: {_e(v['interval_method'])}.</p>")
+    if v.get("folds"):
+        headers, rows = fold_table(v)
+        parts.append("<p>Rolling validation: each fold was tuned on the weeks before its "
+                     "test block and scored there (out of sample).</p>")
+        parts.append(_table(headers, rows))
     if data.reason:
         parts.append(f"<p><strong>Search:</strong> {_e(data.reason)}</p>")
     headers, rows = goal_rows(data)
@@ -1181,6 +1250,17 @@ def render_markdown(data: ReportData) -> str:
         lines.append(f"- **{p.name}** ({p.start[:10]} to {p.end[:10]}): {p.verdict}")
     if data.holdout_warning:
         lines.append(f"- Held-out check: {data.holdout_warning}")
+    v = data.validation
+    if v:
+        lines.append(f"- **Out-of-sample verdict: {v['verdict'].upper()}.** "
+                     + "; ".join(v["reasons"]))
+        lines.append(f"- {v['labels']}. The tuning-week figures are optimistic (the settings "
+                     "were chosen on those labels); judge by the held-out ones. Intervals: "
+                     f"{v['interval_method']}.")
+    if v.get("folds"):
+        headers, rows = fold_table(v)
+        lines += ["", "Rolling validation (each fold tuned on the weeks before its test "
+                  "block, scored there):", "", *_md_table(headers, rows)]
     if data.reason:
         lines.append(f"- Search: {data.reason}")
     lines.append("")
@@ -1317,6 +1397,7 @@ def write_config_report(
 
 def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: bool = True,
                  progress: bool = False, steps: tqdm | None = None,
+                 derived_from_held_out: bool = False,
                  **replay_kwargs: Any) -> ReportData:
     """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`,
     judged against the goal the run was tuned to (`result.goal`, when set).
@@ -1341,7 +1422,16 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
         feasible=result.feasible, reason=result.reason or "",
         holdout_warning=result.holdout_warning or "", provenance=prov,
         title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
+        derived_from_held_out=derived_from_held_out,
     ))
+    if getattr(result, "folds", None):
+        from calibrate import rolling, search
+
+        data.validation.update(
+            verdict=result.verdict, reasons=list(result.verdict_reasons),
+            folds=search.fold_rows(result),
+            stability={n: [str(x) for x in v]
+                       for n, v in rolling.stability(result.folds).items()})
     _step(bar, "plots and files", lambda: write_report_data(
         data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
     if steps is None:

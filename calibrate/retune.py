@@ -35,10 +35,11 @@ from calibrate.executors import make_executor
 from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.replay import ReplayResult, alerts_frame
 from calibrate.review import VERDICTS
-from calibrate.scoring import match, multiplier_curve, route_teams
+from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_teams
 from calibrate.settings import DetectorConfig
 
 CHECKED_COLUMNS = ("level", "metric", "start")
+
 
 
 @dataclass
@@ -53,6 +54,9 @@ class Verdicts:
     false_alert_ids: list[str]
     already_applied: list[str]  # `real` alerts an incident already covers
     repeated: list[str]  # same alert and verdict given more than once
+    # incidents made from verdicts on alerts raised in the held-out weeks: a held-out
+    # check using them is no longer independent of the review
+    held_out_incidents: list[str] = field(default_factory=list)
 
     def lines(self) -> list[str]:
         """Plain-text summary."""
@@ -63,6 +67,10 @@ class Verdicts:
             f"new incidents from `real` verdicts: {len(self.new_incidents)}",
             f"known false alarms the search must avoid: {len(self.known_false)}",
         ]
+        if self.held_out_incidents:
+            out.append(f"{len(self.held_out_incidents)} new incident(s) come from alerts of "
+                       "the held-out weeks (ids RH-...): the held-out check of the new "
+                       "config is no longer independent of this review")
         if self.already_applied:
             out.append("already applied (a labelled incident covers them): "
                        + ", ".join(self.already_applied))
@@ -71,8 +79,12 @@ class Verdicts:
         return out
 
 
-def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) -> Verdicts:
+def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult,
+                  split_hour: int | None = None) -> Verdicts:
     """Read and validate a reviewed alerts file against a replay of the previous config.
+
+    Incidents made from `real` verdicts on alerts raised at or after `split_hour` (the
+    held-out weeks) are marked: their id starts ``RH-`` and their note says so.
 
     Raises
     ------
@@ -100,6 +112,7 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) ->
     false_pos: list[int] = []
     already: list[str] = []
     repeated: list[str] = []
+    held_out: list[str] = []
     comments = df["comment"].tolist() if "comment" in df.columns else [""] * len(df)
     for i, (aid, verdict) in enumerate(zip(df["alert_id"], df["verdict"], strict=True)):
         row_no = i + 2
@@ -131,12 +144,18 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) ->
                 already.append(aid)
             else:
                 r = ref.iloc[p]
+                held = split_hour is not None and previous.episodes.raised[p] >= split_hour
+                iid = f"{'RH' if held else 'R'}-{aid}"
+                where_from = "held-out-week review" if held else "review"
                 new_rows.append({
-                    "incident_id": f"R-{aid}", "level": r["level"],
+                    "incident_id": iid, "level": r["level"],
                     **{c: r[c] for c in hist.key_columns}, "metric": r["metric"],
                     "start": r["start"], "end": r["end"],
-                    "note": f"from review ({path.name}): {str(comments[i]).strip()}".rstrip(": "),
+                    "note": f"from {where_from} ({path.name}): "
+                            f"{str(comments[i]).strip()}".rstrip(": "),
                 })
+                if held:
+                    held_out.append(iid)
         elif v == "false":
             false_pos.append(p)
     ep = previous.episodes.take(np.array(false_pos, dtype=np.int64))
@@ -150,7 +169,7 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult) ->
                                                       *hist.key_columns, "metric", "start",
                                                       "end", "note"]),
         known_false=known, false_alert_ids=list(known.incident_id), already_applied=already,
-        repeated=repeated,
+        repeated=repeated, held_out_incidents=held_out,
     )
 
 
@@ -173,20 +192,27 @@ def _check_row(row: pd.Series, ref: pd.Series, keys: tuple[str, ...], where: str
                              f"replay ('{want}'); was the file made from another config?")
 
 
-def merge_incidents(ses: api.Session, verdicts: Verdicts, where: str) -> Incidents:
-    """The workspace's incidents plus those from `real` verdicts (validated again)."""
-    inc = incidents_from_frame(merged_frame(ses, verdicts), ses.ws, ses.history, where)
+def merge_incidents(ses: api.Session, verdicts: Verdicts, where: str,
+                    added: pd.DataFrame | None = None) -> Incidents:
+    """The workspace's incidents, `added` ones (from `calibrate review`) and those from
+    `real` verdicts (validated again)."""
+    inc = incidents_from_frame(merged_frame(ses, verdicts, added), ses.ws, ses.history, where)
     return route_teams(inc, ses.routes)
 
 
-def merged_frame(ses: api.Session, verdicts: Verdicts) -> pd.DataFrame:
-    """The merged incidents as an incidents CSV (original rows first, unchanged)."""
+def merged_frame(ses: api.Session, verdicts: Verdicts | None,
+                 added: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The merged incidents as an incidents CSV (original rows first, unchanged; then
+    the `added` rows, then those from `real` verdicts)."""
     frames = []
     if ses.ws.incidents.path is not None:
         frames.append(read_text_csv(Path(ses.ws.incidents.path)))
-    add = verdicts.new_incidents.copy()
+    if added is not None:
+        frames.append(added.astype(str))
+    add = (verdicts.new_incidents.copy() if verdicts is not None
+           else pd.DataFrame(columns=["incident_id"]))
     if frames and len(add):
-        taken = set(frames[0]["incident_id"].astype(str))
+        taken = set(pd.concat(frames)["incident_id"].astype(str))
         add["incident_id"] = [_free_id(i, taken) for i in add["incident_id"]]
     frames.append(add.astype(str))
     return pd.concat(frames, ignore_index=True).fillna("")
@@ -361,6 +387,7 @@ class RetuneResult:
     comparison: Comparison
     session: api.Session
     provenance: dict[str, Any] = field(default_factory=dict)
+    added: pd.DataFrame | None = None  # incidents added in `calibrate review`
 
 
 Tuner = Callable[..., Any]
@@ -378,6 +405,7 @@ def retune(
     workers: int | None = None,
     scheduler: str | None = None,
     progress: bool = False,
+    added_incidents: str | Path | None = None,
     **tune_kwargs: Any,
 ) -> RetuneResult:
     """Merge verdicts into the labels and tune again, warm-started from `previous`.
@@ -394,15 +422,30 @@ def retune(
     tuner : callable, optional
         ``tune(ses, *, trials, warm_start, known_false, ...)``; default
         `calibrate.search.tune`.
+    added_incidents : path, optional
+        Incidents CSV of incidents added in `calibrate review` (``--incidents-out``),
+        merged into the labels before the verdicts are read.
     """
     previous = previous or ses.ws.detector
+    added = None
+    added_held_out = 0
+    if added_incidents is not None:
+        added = read_text_csv(Path(added_incidents))
+        own_added = incidents_from_frame(added, ses.ws, ses.history, str(added_incidents))
+        from calibrate.search import split_hour
+
+        # labelled while looking at the held-out weeks: that check is then not independent
+        added_held_out = int((own_added.start >= split_hour(ses)).sum())
+        both = incidents_from_frame(merged_frame(ses, None, added), ses.ws, ses.history,
+                                    f"{added_incidents} (with the workspace's incidents)")
+        ses = replace(ses, incidents=route_teams(both, ses.routes))
     # one executor for every replay and the search (its workers start once)
     own = executor is None
     if own:
         executor = make_executor(engine, workers, scheduler)
     try:
         verdicts, merged, ses2, result, old2, new = _retune_steps(
-            ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs)
+            ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs, added)
     finally:
         if own:
             executor.close()
@@ -411,15 +454,29 @@ def retune(
     prov.update(retuned_from_verdicts=str(verdicts_path),
                 verdicts_sha256=hashlib.sha256(Path(verdicts_path).read_bytes()).hexdigest(),
                 known_false_alarms=len(verdicts.known_false),
-                incidents_added=len(verdicts.new_incidents))
-    return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov)
+                incidents_added=len(verdicts.new_incidents),
+                held_out_incidents_added=len(verdicts.held_out_incidents))
+    if added_held_out:
+        prov.update(held_out_incidents_added_in_review=added_held_out)
+        verdicts.held_out_incidents.extend(["(added in review)"] * added_held_out)
+    if verdicts.held_out_incidents and hasattr(result, "verdict_reasons"):
+        result.verdict_reasons = [*result.verdict_reasons, HELD_OUT_NOTE]
+    if added is not None:
+        prov.update(incidents_added_in_review=str(added_incidents),
+                    incidents_added_in_review_count=len(added))
+    return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov,
+                        added)
 
 
-def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs):
+def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs,
+                  added=None):
     rp = api.make_replayer(ses, progress=progress, executor=executor)
     old = rp.replay(previous)
-    verdicts = read_verdicts(verdicts_path, ses, old)
-    merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)")
+    from calibrate.search import split_hour
+
+    verdicts = read_verdicts(verdicts_path, ses, old, split_hour(ses))
+    merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)",
+                             added)
     ses2 = replace(ses, incidents=merged)
     if tuner is None:
         from calibrate.search import tune as tuner
@@ -551,7 +608,8 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
     out, inc_path, false_path, report = retune_paths(out, report)
     check_outputs((out, inc_path, false_path), force, folders=[report])
     written = [write_config(out, res.config, res.provenance, force=force)]
-    written.append(write_table(inc_path, merged_frame(res.session, res.verdicts), force=force))
+    written.append(write_table(inc_path, merged_frame(res.session, res.verdicts, res.added),
+                               force=force))
     kf = res.verdicts.known_false.to_frame()
     written.append(write_table(false_path, kf.drop(columns=["series"]), force=force))
     c = res.comparison
@@ -572,7 +630,8 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
     }
     written.append(write_report_data_files(files, report, force=force))
     if all(hasattr(res.tune, a) for a in ("trials", "split_hour", "first_hour", "current")):
-        write_report(res.session, res.tune, report / "calibration", force=force)
+        write_report(res.session, res.tune, report / "calibration", force=force,
+                     derived_from_held_out=bool(res.verdicts.held_out_incidents))
         written.append(report / "calibration")
     return written
 
@@ -591,7 +650,8 @@ def cli_retune(args: Any) -> int:
     previous = load_config(args.previous) if args.previous else None
     res = retune(ses, verdicts, previous, args.trials, engine=args.engine,
                  workers=args.workers, scheduler=args.scheduler,
-                 progress=not getattr(args, "quiet", False))
+                 progress=not getattr(args, "quiet", False),
+                 added_incidents=getattr(args, "added_incidents", None))
     for line in res.verdicts.lines():
         print(line)
     written = write_retune_outputs(res, out, Path(args.report) if args.report else None,

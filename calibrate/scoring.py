@@ -456,6 +456,7 @@ class Figures:
     # listed apart and left out of every figure above
     before_first_scored: int = 0
     before_first_scored_ids: list[str] = field(default_factory=list)
+    interval_method: str = ""
     per_team: pd.DataFrame = field(default_factory=pd.DataFrame)
     per_level: pd.DataFrame = field(default_factory=pd.DataFrame)
     per_metric: pd.DataFrame = field(default_factory=pd.DataFrame)
@@ -504,6 +505,8 @@ def figures(
     confidence: float = 0.95,
     goal: Goal | None = None,
     unscorable: Incidents | None = None,
+    start_hour: int = 0,
+    seed: int = 0,
 ) -> Figures:
     """Miss rate, recall, precision (Wilson intervals), delay and load per team.
 
@@ -522,14 +525,40 @@ def figures(
     unscorable : Incidents, optional
         Incidents of the period that begin before the first scored hour (left out of
         `incidents`); counted and listed apart.
+    start_hour, seed : int
+        First hour of the period (days are counted from it) and the seed of the
+        bootstrap intervals. Alerts cluster by series and day, so precision's interval
+        resamples series-days and each team's alert-load interval resamples days
+        (`BOOTSTRAP_METHOD`), not single alerts.
     """
     _check_lengths(match, episodes, incidents)
     if not n_days > 0:
         raise ValueError(f"n_days must be positive, but got {n_days=}")
     s = _summary(match.caught, match.delay, match.alert_true, confidence)
+    day = (np.asarray(episodes.raised, dtype=np.int64) - start_hour) // 24
+    series_day = pd.factorize(pd.MultiIndex.from_arrays(
+        [np.asarray(episodes.level, dtype=object), np.asarray(episodes.series), day]))[0] \
+        if len(episodes) else np.zeros(0, dtype=np.int64)
+    s["precision_low"], s["precision_high"] = cluster_bootstrap_ratio(
+        series_day, match.alert_true.astype(np.float64), confidence=confidence, seed=seed)
     args = (match, episodes, incidents)
+    per_team = breakdown(*args, by="team", teams_analysts=teams_analysts, n_days=n_days,
+                         confidence=confidence, goal=goal)
+    if len(per_team) and "analysts" in per_team.columns:
+        n_blocks = max(int(math.ceil(n_days - 1e-9)), 1)
+        lows, highs = [], []
+        for team, row in per_team.iterrows():
+            counts = np.bincount(np.clip(day[episodes.team == team], 0, n_blocks - 1),
+                                 minlength=n_blocks).astype(np.float64)
+            lo, hi = day_bootstrap_total(counts, confidence=confidence, seed=seed)
+            den = row["analysts"] * n_days
+            lows.append(lo / den if den > 0 else math.nan)
+            highs.append(hi / den if den > 0 else math.nan)
+        per_team["alerts_per_analyst_day_low"] = lows
+        per_team["alerts_per_analyst_day_high"] = highs
     return Figures(
         **s,
+        interval_method=BOOTSTRAP_METHOD,
         caught_related=int(match.caught_related.sum()),
         related_alerts=int(match.alert_related.sum()),
         n_days=float(n_days),
@@ -538,13 +567,137 @@ def figures(
         before_first_scored=0 if unscorable is None else len(unscorable),
         before_first_scored_ids=[] if unscorable is None else [
             str(x) for x in unscorable.to_frame()["incident_id"].tolist()],
-        per_team=breakdown(*args, by="team", teams_analysts=teams_analysts, n_days=n_days,
-                           confidence=confidence, goal=goal),
+        per_team=per_team,
         per_level=breakdown(*args, by="level", confidence=confidence),
         per_metric=breakdown(*args, by="metric", confidence=confidence),
         per_detector=detector_table(match, episodes),
         per_incident=incident_table(match, episodes, incidents),
     )
+
+
+HELD_OUT_NOTE = ("the held-out labels include incidents made from analysts' verdicts on "
+                 "held-out alerts: this check is no longer independent")
+BOOTSTRAP_REPS = 1000
+BOOTSTRAP_METHOD = (
+    "miss rate and recall: Wilson score interval; precision: cluster bootstrap over "
+    f"series-days; alert load: bootstrap over days ({BOOTSTRAP_REPS} resamples, "
+    "percentile interval, seeded)")
+
+
+def cluster_bootstrap_ratio(cluster: np.ndarray, x: np.ndarray, confidence: float = 0.95,
+                            seed: int = 0, reps: int = BOOTSTRAP_REPS) -> tuple[float, float]:
+    """Percentile interval of ``sum(x) / len(x)`` when whole clusters are resampled with
+    replacement (the items of a cluster are not independent: alerts of one series on one
+    day); NaN for no items.
+
+    Parameters
+    ----------
+    cluster : ndarray of int
+        Cluster code of each item (0 .. n_clusters - 1).
+    x : ndarray of float
+        Item values (1.0 for a true alert, 0.0 for a false one).
+    """
+    if len(x) == 0:
+        return math.nan, math.nan
+    size = np.bincount(cluster).astype(np.float64)
+    total = np.bincount(cluster, weights=x)
+    keep = size > 0
+    size, total = size[keep], total[keep]
+    ratios = _resampled(len(size), reps, seed, lambda w: (w @ total) / (w @ size))
+    a = (1.0 - confidence) / 2.0
+    return float(np.quantile(ratios, a)), float(np.quantile(ratios, 1.0 - a))
+
+
+def day_bootstrap_total(counts: np.ndarray, confidence: float = 0.95, seed: int = 0,
+                        reps: int = BOOTSTRAP_REPS) -> tuple[float, float]:
+    """Percentile interval of the total of per-day `counts` when the days are resampled
+    with replacement (a team's alert load: busy days come in runs of alerts)."""
+    if len(counts) == 0:
+        return math.nan, math.nan
+    totals = _resampled(len(counts), reps, seed, lambda w: w @ counts)
+    a = (1.0 - confidence) / 2.0
+    return float(np.quantile(totals, a)), float(np.quantile(totals, 1.0 - a))
+
+
+def _resampled(n: int, reps: int, seed: int, stat) -> np.ndarray:
+    """`stat` of `reps` resamples of n units, each resample given as how often each unit
+    was drawn; drawn in chunks to bound memory."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for done in range(0, reps, 100):
+        k = min(100, reps - done)
+        out.append(stat(rng.multinomial(n, np.full(n, 1.0 / n), size=k).astype(np.float64)))
+    return np.concatenate(out)
+
+
+def zero_miss_bound(n_incidents: int, confidence: float = 0.95) -> float:
+    """The lowest miss-rate upper bound any setting can show on `n_incidents` labels: the
+    Wilson upper limit at zero misses (1 with no incidents)."""
+    if n_incidents <= 0:
+        return 1.0
+    return float(wilson(0, n_incidents, confidence)[1])
+
+
+def incidents_needed(max_miss_rate: float, confidence: float = 0.95,
+                     limit: int = 100_000) -> int | None:
+    """Fewest labelled incidents whose zero-miss upper bound is at most `max_miss_rate`
+    (None beyond `limit`, e.g. a target of 0)."""
+    lo, hi = 1, limit
+    if zero_miss_bound(hi, confidence) > max_miss_rate:
+        return None
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if zero_miss_bound(mid, confidence) <= max_miss_rate:
+            hi = mid
+        else:
+            lo = mid + 1
+    return lo
+
+
+def validation_verdict(figs: Figures | None, goal: Goal) -> tuple[str, list[str]]:
+    """One word on whether a config meets the goal out of sample, with the reasons.
+
+    "holds" when the miss rate's upper limit is within the target and every team's
+    alert-load upper limit within its budget; "does not hold" when the miss rate's
+    lower limit, or some team's load lower limit, is beyond it; else "cannot tell" (an
+    interval spans the target, or there are no out-of-sample incidents).
+    """
+    if figs is None:
+        return "cannot tell", ["no out-of-sample weeks to check on"]
+    fails, unsure, ok = [], [], []
+    target = goal.max_miss_rate
+    if figs.incidents == 0:
+        unsure.append("no labelled incident in the out-of-sample weeks")
+    else:
+        span = (f"miss rate {figs.miss_rate:.1%} ({figs.miss_rate_low:.1%} to "
+                f"{figs.miss_rate_high:.1%}, {figs.incidents} incidents) against the target "
+                f"{target:.1%}")
+        if figs.miss_rate_low > target:
+            fails.append(span)
+        elif figs.miss_rate_high > target:
+            unsure.append(span)
+        else:
+            ok.append(span)
+    pt = figs.per_team
+    if len(pt) and "alerts_per_analyst_day_high" in pt.columns:
+        for team, row in pt.iterrows():
+            if not row.get("analysts", 0) > 0 or not math.isfinite(goal.budget(team)):
+                continue
+            b = goal.budget(team)
+            span = (f"team {team}: {row['alerts_per_analyst_day']:.2f} alerts per analyst per "
+                    f"day ({row['alerts_per_analyst_day_low']:.2f} to "
+                    f"{row['alerts_per_analyst_day_high']:.2f}) against its budget {b:g}")
+            if row["alerts_per_analyst_day_low"] > b:
+                fails.append(span)
+            elif row["alerts_per_analyst_day_high"] > b:
+                unsure.append(span)
+            else:
+                ok.append(span)
+    if fails:
+        return "does not hold", fails + unsure
+    if unsure:
+        return "cannot tell", unsure
+    return "holds", ok
 
 
 def _check_lengths(match: Match, episodes: Episodes, incidents: Incidents) -> None:

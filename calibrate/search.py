@@ -44,8 +44,9 @@ counts an incident as caught when any group's alerts catch it.
 
 Holdout: the last ``holdout_fraction`` of the history, rounded to whole weeks, is
 held out; objective and constraints use only ``[first_hour, split_hour)``, where
-``first_hour`` is the longest candidate decomposition window minus one, so every
-trial is scored on the same hours. Replays run over the whole history; with no
+``first_hour`` is the latest first scored hour over the space (the longest candidate
+decomposition window minus one, or L + W with ``expected_value = "forecast"``), so
+every trial is scored on the same hours. Replays run over the whole history; with no
 look-ahead, hours before the split never see later data.
 """
 
@@ -66,8 +67,9 @@ import optuna
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate import api, errors, studies
+from calibrate import api, errors, rolling, studies
 from calibrate.api import Session
+from calibrate.episodes import Episodes
 from calibrate.errors import CalibrationError, InputError
 from calibrate.executors import Executor
 from calibrate.incidents import Incidents
@@ -81,12 +83,16 @@ from calibrate.scoring import (
     curve_loads,
     exact_solve,
     impact_curves,
+    incidents_needed,
     load_axis,
+    match,
     multiplier_curve,
     pareto_front,
     period_filter,
     solve_multiplier,
+    validation_verdict,
     wilson,
+    zero_miss_bound,
 )
 from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
 from calibrate.workspace import BASE_GROUP, Goal, SearchParam
@@ -450,11 +456,17 @@ class Evaluator:
     group_min_impacts: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
     incidents: Incidents = field(init=False)
     false_windows: Incidents | None = field(init=False)
+    # the goal settings are judged by: the miss-rate target tightened by
+    # `goal.spare_incidents` (the target must hold with that many more misses)
+    judge: Goal = field(init=False)
 
     def __post_init__(self) -> None:
         if self.ses.incidents is None:
             raise InputError(str(self.ses.ws.file), "no [incidents] path: nothing to tune against")
         self.incidents = period_filter(self.ses.incidents, self.first_hour, self.split_hour)
+        n = len(self.incidents)
+        self.judge = self.goal if not n or not self.goal.spare_incidents else replace(
+            self.goal, max_miss_rate=self.goal.max_misses(n) / n)
         self.false_windows = None
         if self.known_false is not None and len(self.known_false):
             self.false_windows = self.known_false
@@ -488,8 +500,8 @@ class Evaluator:
             if pt is not None:
                 ev = self._exact_figures(pt, None)
             else:  # infeasible: the grid point closest to the goal
-                _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
-                j = _fallback_index(c, self.goal)
+                _, reason = solve_multiplier(c, self.judge.max_miss_rate, self.judge)
+                j = _fallback_index(c, self.judge)
                 ev = self._figures(
                     feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
                     caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kf[j]),
@@ -519,7 +531,7 @@ class Evaluator:
         runs = sweep_runs(scores, ks, self.replayer.routes,
                           start_hours=(self.first_hour, self.split_hour), min_impacts=grids)
         return exact_solve(runs, ks, self.incidents, ws.incidents.early_hours,
-                           ws.incidents.late_hours, self.ses.analysts, self.n_days, self.goal,
+                           ws.incidents.late_hours, self.ses.analysts, self.n_days, self.judge,
                            self.false_windows, KNOWN_FALSE_PENALTY)
 
     def _exact_figures(self, pt: ExactPoint, grids: dict[str, np.ndarray] | None) -> Evaluation:
@@ -527,7 +539,7 @@ class Evaluator:
             feasible=True, reason="", k=pt.k, group_k={}, caught=pt.caught, alerts=pt.alerts,
             kf=pt.known_false, team_alerts=pt.team_alerts, teams=pt.teams,
             min_impact=None if grids is None else _level(grids, pt.level))
-        ev.reason = f"k={pt.k:g}: " + _reason(ev, self.goal)
+        ev.reason = f"k={pt.k:g}: " + _reason(ev, self.judge)
         return ev
 
     def _evaluate_with_impact(self, config: DetectorConfig) -> Evaluation:
@@ -546,13 +558,13 @@ class Evaluator:
         else:
             picks = []
             for lv, c in enumerate(curves):
-                j = _fallback_index(c, self.goal)
+                j = _fallback_index(c, self.judge)
                 miss = 0.0 if np.isnan(c.miss_rate[j]) else float(c.miss_rate[j])
-                picks.append((max(miss - self.goal.max_miss_rate, 0.0),
+                picks.append((max(miss - self.judge.max_miss_rate, 0.0),
                               self._budget_ratio(c, j), -float(c.ks[j]), float(lv), lv, j))
             *_, lv, j = min(picks)
             c = curves[lv]
-            _, reason = solve_multiplier(c, self.goal.max_miss_rate, self.goal)
+            _, reason = solve_multiplier(c, self.judge.max_miss_rate, self.judge)
             ev = self._figures(
                 feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
                 caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
@@ -566,7 +578,7 @@ class Evaluator:
         `curves` (curve l at minimum impact level l of `grids`; None: the config's own)."""
         pts = best_tradeoffs(
             np.concatenate([c.caught for c in curves]),
-            np.concatenate([curve_loads(c, self.ses.analysts, self.goal) for c in curves]),
+            np.concatenate([curve_loads(c, self.ses.analysts, self.judge) for c in curves]),
             np.concatenate([c.ks for c in curves]),
             np.concatenate([np.full(len(c.ks), float(lv)) for lv, c in enumerate(curves)]))
         return [[c, x, k, None if grids is None else _level(grids, int(lv))]
@@ -575,14 +587,14 @@ class Evaluator:
     def _evaluate_groups(self, config: DetectorConfig,
                          scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
         parts, teams = self._group_parts(config, scores)
-        j = self._joint(parts, teams, self.goal.max_miss_rate)
+        j = self._joint(parts, teams, self.judge.max_miss_rate)
         ev = self._figures(feasible=True, reason="",
                            k=float(np.median(list(j.group_k.values()))), group_k=j.group_k,
                            caught=j.caught, alerts=j.alerts, kf=j.kf, team_alerts=j.team_alerts,
                            teams=tuple(teams))
         ev.group_min_impact = j.group_min_impact
         ev.feasible = all(v <= 0 for v in ev.constraints)
-        ev.reason = _reason(ev, self.goal)
+        ev.reason = _reason(ev, self.judge)
         return ev
 
     def group_front(self, config: DetectorConfig) -> list[JointSolve]:
@@ -591,12 +603,12 @@ class Evaluator:
         less load (`scoring.best_tradeoffs`); most incidents caught first."""
         parts, teams = self._group_parts(config, self.replayer.scores(config))
         n_inc = len(self.incidents)
-        budgets = {t: self.goal.budget(t) for t in self.ses.analysts}
+        budgets = {t: self.judge.budget(t) for t in self.ses.analysts}
         solves = [self._joint(parts, teams, (n_inc - c) / n_inc if n_inc else 0.0)
                   for c in range(n_inc + 1)]
         for js in solves:
             rates, _ = _max_ratio(dict(zip(teams, js.team_alerts, strict=True)),
-                                  self.ses.analysts, self.goal, self.n_days)
+                                  self.ses.analysts, self.judge, self.n_days)
             js.load = load_axis(rates, budgets, self.ses.analysts)[0]
         n = len(solves)
         pts = best_tradeoffs(np.array([js.caught for js in solves]),
@@ -687,7 +699,7 @@ class Evaluator:
 
     def _budget_ratio(self, c: Curve, j: int) -> float:
         return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
-                          self.goal, self.n_days)[1]
+                          self.judge, self.n_days)[1]
 
     def _figures(self, *, feasible: bool, reason: str, k: float, group_k: dict[str, float],
                  caught: int, alerts: int, kf: int, team_alerts: np.ndarray,
@@ -696,10 +708,10 @@ class Evaluator:
         miss = (n_inc - caught) / n_inc if n_inc else 0.0
         high = float(wilson(n_inc - caught, n_inc)[1]) if n_inc else 0.0
         rates, ratio = _max_ratio(dict(zip(teams, team_alerts, strict=True)), self.ses.analysts,
-                                  self.goal, self.n_days)
+                                  self.judge, self.n_days)
         total_analysts = sum(self.ses.analysts.values()) or 1
         value = (alerts + KNOWN_FALSE_PENALTY * kf) / (total_analysts * self.n_days)
-        constraints = [miss - self.goal.max_miss_rate, ratio - 1.0]
+        constraints = [miss - self.judge.max_miss_rate, ratio - 1.0]
         return Evaluation(
             feasible=feasible, reason=reason, k=k, group_k=group_k, incidents=n_inc,
             caught=caught, miss_rate=miss, miss_rate_high=high, alerts=alerts,
@@ -842,6 +854,17 @@ class TuneResult:
     goal : Goal
         The goal the trials were judged against (the workspace's, or an override);
         the report judges with it too.
+    verdict, verdict_reasons : str, list of str
+        Out of sample (held-out weeks): "holds", "does not hold" or "cannot tell"
+        (`scoring.validation_verdict`), with the reasons.
+    thin_margin : int
+        Incidents caught on the tuning weeks only by alerts whose peak fence score is
+        within 10% of the multiplier (a little less sensitivity would miss them).
+    labels : str
+        What the tuning-week labels can show at best (`labels_line`).
+    folds, pooled : list of rolling.Fold, Figures
+        With ``[search] validation = "rolling"``: each fold's chosen settings and test
+        figures, and the test blocks' figures together (the verdict then uses them).
     """
 
     config: DetectorConfig
@@ -859,6 +882,12 @@ class TuneResult:
     storage: str
     provenance: dict[str, Any]
     goal: Goal | None = None
+    verdict: str = "cannot tell"
+    verdict_reasons: list[str] = field(default_factory=list)
+    thin_margin: int = 0
+    labels: str = ""
+    folds: list[rolling.Fold] = field(default_factory=list)  # rolling validation only
+    pooled: Figures | None = None  # the folds' test blocks together
 
 
 def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> str:
@@ -967,9 +996,47 @@ def tune(
             study = _run_study(ses, ev, space, starts, name, store, budget, progress)
             result = _result(ses, ev, space, study, name, store_name, current, goal,
                              store_front=True)
+            if ws.search.validation == "rolling":
+                _rolling(ses, ev, space, starts, name, store, budget, progress, result)
     finally:
         ev.replayer.close()
     return result
+
+
+def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[DetectorConfig],
+             name: str, store: Any, budget: int, progress: bool, result: TuneResult) -> None:
+    """Rolling validation (`calibrate.rolling`): one study per fold on the hours before its
+    test block, sharing the evaluator's replayer (and so its cached fits); fills the
+    folds, their pooled figures and the verdict into `result`."""
+    s = ses.ws.search
+    folds = rolling.fold_bounds(ev.first_hour, ev.split_hour, s.folds, s.gap_days)
+    episodes = []
+    for f in folds:
+        api.require_incidents(ses, ev.first_hour, f.train_end)
+        fev = Evaluator(ses, ev.replayer, ev.ks, ev.first_hour, f.train_end, ev.goal,
+                        ev.known_false)
+        grids = _impact_plan(ses, starts, f.train_end)
+        fev.min_impacts = grids.get("")
+        fev.group_min_impacts = {g: v for g, v in grids.items() if g}
+        study = _run_study(ses, fev, space, starts, f"{name}-fold{f.number}of{len(folds)}",
+                           store, budget, progress)
+        best, chosen, _, f.config = _chosen(ses, space, study, ses.ws.detector)
+        f.feasible = best is not None
+        f.settings = {**chosen.params, "fence_multiplier": chosen.user_attrs.get("k"),
+                      **{f"min_impact[{m}]": v for m, v in
+                         (chosen.user_attrs.get("min_impact") or {}).items()}}
+        eps = ev.replayer.replay(f.config).episodes
+        f.figures = api.score_episodes(ses, eps, f.test_start, f.test_end)
+        episodes.append(eps)
+    result.folds = folds
+    result.pooled = rolling.pooled_figures(ses, folds, episodes)
+    word, why = validation_verdict(result.pooled, result.goal or ses.ws.goal)
+    why = [f"rolling folds pooled: {r}" for r in why]
+    if result.holdout is not None:  # the held-out check still counts
+        order = ["holds", "cannot tell", "does not hold"]
+        word = max(word, result.verdict, key=order.index)
+        why = why + [f"held-out weeks: {r}" for r in result.verdict_reasons]
+    result.verdict, result.verdict_reasons = word, why
 
 
 def _evaluator(ses: Session, ks: np.ndarray, ms: dict[str, np.ndarray], fence_w: Sequence[int],
@@ -1002,23 +1069,50 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     if windows_l is None:
         windows_l = [max(int(p.spec.high) for p in space
                          if p.setting == "decomposition_window_hours")]
-    first_hour = max(windows_l) - 1
-    n = ses.history.n_hours
-    split = holdout_split(n, first_hour, ws.search.holdout_fraction)
-    if split - first_hour < 24:
-        raise CalibrationError(
-            f"{ws.file}: the history ({n} hours) is too short to tune: the longest "
-            f"decomposition window needs {first_hour + 1} hours before the first scored hour")
     fence_w = candidate_values(space, "fence_window_hours",
                                [c.base.fence_window_hours for c in starts]) or ()
+    first_hour = _first_hour(space, starts, windows_l, fence_w)
+    n = ses.history.n_hours
+    if ws.search.holdout_start is not None:
+        # the first hour of the given day: whatever comes later, the tuning never reads it
+        day = pd.Timestamp(ws.search.holdout_start, tz="UTC")
+        split = int(ses.history.hours.searchsorted(day))
+    else:
+        split = holdout_split(n, first_hour, ws.search.holdout_fraction)
+    if split - first_hour < 24:
+        raise CalibrationError(
+            f"{ws.file}: the history ({n} hours) is too short to tune: the detector "
+            f"settings searched need {first_hour + 1} hours before the first scored hour")
     lo, hi = ws.search.multiplier_low, ws.search.multiplier_high
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
     ks = np.unique(np.r_[ks, extra])
-    ms = {g: impact_grids(impact_ranges(ses, g or None, split),
-                          [current_impacts(ses, c, g or None) for c in starts])
-          for g in solved_groups(ses)}
-    return space, starts, first_hour, split, fence_w, ks, ms
+    return space, starts, first_hour, split, fence_w, ks, _impact_plan(ses, starts, split)
+
+
+def _impact_plan(ses: Session, starts: Sequence[DetectorConfig],
+                 end_hour: int) -> dict[str, dict[str, np.ndarray]]:
+    """Per solved group, its per-metric minimum-impact grids, from hours before
+    `end_hour` only."""
+    return {g: impact_grids(impact_ranges(ses, g or None, end_hour),
+                            [current_impacts(ses, c, g or None) for c in starts])
+            for g in solved_groups(ses)}
+
+
+def _first_hour(space: list[Param], starts: Sequence[DetectorConfig],
+                windows_l: Sequence[int], fence_w: Sequence[int]) -> int:
+    """The latest first scored hour over the space, so every trial is scored on the same
+    hours: L - 1 for the longest window L, or with `forecast` expected values in the
+    space, the largest L + W of a window and a fence window below it."""
+    settings = [s for c in starts for s in (c.base, *(g.settings for g in c.groups))]
+    first = max(windows_l) - 1
+    modes = candidate_values(space, "expected_value", [s.expected_value for s in settings])
+    if "forecast" not in (modes or ()):
+        return first
+    ws_f = list(fence_w) + [s.fence_window_hours for s in settings]
+    ws_f += [int(p.spec.high) for p in space if p.setting == "fence_window_hours"
+             and p.spec.kind != "choice"]
+    return max([first, *(L + W for L in windows_l for W in ws_f if W < L)])
 
 
 def study_result(
@@ -1263,22 +1357,30 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
     return df
 
 
+def _chosen(ses: Session, space: list[Param], study: optuna.Study, current: DetectorConfig):
+    """The study's best feasible trial (or the least infeasible): (best or None, chosen
+    trial, its structural config, the config with its solved settings filled in)."""
+    finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
+    best = _best_feasible(finished)
+    chosen = best if best is not None else _least_infeasible(finished)
+    structure = _config_from(chosen.params, space, ses, current)
+    a = chosen.user_attrs
+    if structure.groups:
+        config = with_group_solve(structure, a["group_k"], a.get("group_min_impact") or {},
+                                  ses.ws.search.tune_by)
+    else:
+        config = structure.with_base(fence_multiplier=a["k"])
+    if a.get("min_impact") is not None:
+        config = config.with_base(**_per_metric_impact(a["min_impact"]))
+    return best, chosen, structure, config
+
+
 def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
             store_name: str, current: DetectorConfig, goal: Goal,
             store_front: bool = False) -> TuneResult:
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
-    best = _best_feasible(finished)
-    chosen = best if best is not None else _least_infeasible(finished)
-    config = _config_from(chosen.params, space, ses, current)
+    best, chosen, structure, config = _chosen(ses, space, study, current)
     a = chosen.user_attrs
-    structure = config
-    if config.groups:
-        config = with_group_solve(config, a["group_k"], a.get("group_min_impact") or {},
-                                  ses.ws.search.tune_by)
-    else:
-        config = config.with_base(fence_multiplier=a["k"])
-    if a.get("min_impact") is not None:
-        config = config.with_base(**_per_metric_impact(a["min_impact"]))
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
     fronts = {}
@@ -1314,12 +1416,16 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
     else:
         reason = infeasible_reason(finished, goal)
     warning = holdout_warning(holdout, goal)
+    verdict, why = validation_verdict(holdout, goal)
+    thin = thin_margin(ses, episodes, config, ev.first_hour, ev.split_hour)
     prov = provenance(ses, config, name, store_name, goal, tuning, holdout, ev, chosen, feasible,
                       reason, len(finished))
     return TuneResult(config=config, current=current, feasible=feasible, reason=reason,
                       split_hour=ev.split_hour, first_hour=ev.first_hour, tuning=tuning,
                       holdout=holdout, holdout_warning=warning, trials=trials, pareto=pareto,
-                      study_name=name, storage=store_name, provenance=prov, goal=goal)
+                      study_name=name, storage=store_name, provenance=prov, goal=goal,
+                      verdict=verdict, verdict_reasons=why, thin_margin=thin,
+                      labels=labels_line(len(ev.incidents), goal))
 
 
 def _per_metric_impact(values: dict[str, float]) -> dict[str, Any]:
@@ -1451,8 +1557,9 @@ def _pct(x: float | None) -> str:
 
 def side_by_side(result: TuneResult) -> list[str]:
     """Tuning and held-out figures side by side, with 95% intervals."""
-    cols = [("tuning weeks", result.tuning), ("held-out weeks", result.holdout)]
-    lines = [f"{'':<28}" + "".join(f"{n:>28}" for n, _ in cols)]
+    cols = [("tuning weeks (in-sample)", result.tuning),
+            ("held-out weeks (out-of-sample)", result.holdout)]
+    lines = [f"{'':<28}" + "".join(f"{n:>32}" for n, _ in cols)]
 
     def cell(f: Figures | None, what: str) -> str:
         if f is None:
@@ -1469,7 +1576,12 @@ def side_by_side(result: TuneResult) -> list[str]:
             return f"{_pct(f.precision)} ({_pct(f.precision_low)}-{_pct(f.precision_high)})"
         team = what.split(":", 1)[1]
         if team in f.per_team.index and "alerts_per_analyst_day" in f.per_team.columns:
-            return f"{f.per_team.loc[team, 'alerts_per_analyst_day']:.2f}"
+            row = f.per_team.loc[team]
+            if "alerts_per_analyst_day_low" in f.per_team.columns:
+                return (f"{row['alerts_per_analyst_day']:.2f} "
+                        f"({row['alerts_per_analyst_day_low']:.2f}-"
+                        f"{row['alerts_per_analyst_day_high']:.2f})")
+            return f"{row['alerts_per_analyst_day']:.2f}"
         return "n/a"
 
     rows = [("incidents", "incidents"), ("recall (95% interval)", "recall"),
@@ -1479,8 +1591,53 @@ def side_by_side(result: TuneResult) -> list[str]:
              if n > 0] if "analysts" in result.tuning.per_team.columns else []
     rows += [(f"{t}: per analyst-day", f"team:{t}") for t in teams]
     for label, what in rows:
-        lines.append(f"{label:<28}" + "".join(f"{cell(f, what):>28}" for _, f in cols))
+        lines.append(f"{label:<28}" + "".join(f"{cell(f, what):>32}" for _, f in cols))
+    lines.append("the tuning-week figures are optimistic: the settings were chosen on those "
+                 "labels; judge by the held-out ones. Intervals: "
+                 + (result.tuning.interval_method or "95% Wilson"))
     return lines
+
+
+def labels_line(n_incidents: int, goal: Goal) -> str:
+    """What `n_incidents` tuning-week labels can show at best: the miss-rate upper bound
+    of a setting that misses none (Wilson), against the target; one line."""
+    bound = zero_miss_bound(n_incidents)
+    head = (f"{n_incidents} labelled incident(s) in the tuning weeks: even a setting that "
+            f"misses none shows a miss rate of at most {bound:.1%} (95% upper bound)")
+    if goal.spare_incidents and goal.max_misses(n_incidents) < 0:
+        return (head + f"; with spare_incidents = {goal.spare_incidents} no setting can meet "
+                f"the target {goal.max_miss_rate:.1%}: there are too few incidents")
+    if bound <= goal.max_miss_rate:
+        return head + f", within the target {goal.max_miss_rate:.1%}"
+    need = incidents_needed(goal.max_miss_rate)
+    more = "" if need is None else f"; showing it would take at least {need} labelled incidents"
+    return (head + f", above the target {goal.max_miss_rate:.1%}: these labels cannot show the "
+            "target is met, only that it is not clearly missed" + more)
+
+
+def split_hour(ses: Session) -> int:
+    """First held-out hour of the workspace's search (`n_hours`: none held out)."""
+    return _plan(ses, ())[3]
+
+
+def tuning_incidents(ses: Session) -> int:
+    """Labelled incidents in the tuning weeks the search would use."""
+    _, _, first_hour, split, *_ = _plan(ses, ())
+    return len(period_filter(ses.incidents, first_hour, split)) if ses.incidents else 0
+
+
+def thin_margin(ses: Session, episodes: Episodes, config: DetectorConfig, start: int,
+                end: int, margin: float = 0.1) -> int:
+    """Incidents of ``[start, end)`` caught, but only by fence alerts whose peak score is
+    within `margin` (relative) of their series' multiplier."""
+    eps = period_filter(episodes, start, end)
+    inc = period_filter(ses.incidents, start, end)
+    m = match(eps, inc, ses.ws.incidents.early_hours, ses.ws.incidents.late_hours)
+    k = np.array([config.for_series(lv, mt).fence_multiplier
+                  for lv, mt in zip(eps.level, eps.metric, strict=True)])
+    fence_only = np.array(["flatline" not in d for d in eps.detectors], dtype=bool)
+    close = fence_only & (np.nan_to_num(eps.peak_score, nan=np.inf) <= k * (1.0 + margin))
+    return sum(1 for i in np.flatnonzero(m.caught) if close[m.alerts_of(int(i))].all())
 
 
 def metric_lines(result: TuneResult) -> list[str]:
@@ -1588,6 +1745,7 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         print(f"note: tune_by = \"{tune_by}\" tunes {what}; the tuned config leaves out "
               f"the workspace's groups ({names}). Use tune_by = \"group\" to tune them.")
     progress = not getattr(args, "quiet", False)
+    print(f"before the search: {labels_line(tuning_incidents(ses), goal)}")
     result = tune(ses, trials=args.trials, storage=args.storage,
                   study_name=getattr(args, "study", None), goal=goal, executor=executor,
                   progress=progress)
@@ -1596,6 +1754,12 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         print(line)
     for line in metric_lines(result):
         print(line)
+    for line in fold_lines(result):
+        print(line)
+    if result.thin_margin:
+        print(f"knife edge: {result.thin_margin} caught incident(s) are caught only by alerts "
+              "whose peak fence score is within 10% of the multiplier; [goal] spare_incidents "
+              "= N keeps the target with N more misses")
     if result.holdout_warning:
         print(f"warning: {result.holdout_warning}")
     if not result.feasible:
@@ -1603,6 +1767,7 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         for line in pareto_lines(result):
             print(line)
         print(f"nothing written to {out}")
+        print(verdict_line(result))
         return errors.GOAL_NOT_MET
     print(result.reason)
     print(changed_settings_line(result))
@@ -1612,4 +1777,62 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
         write_report(ses, result, Path(args.report), force=force, executor=executor,
                      progress=progress)
         print(f"report written to {args.report}")
+    print(verdict_line(result))
     return 0
+
+
+def fold_rows(result: TuneResult) -> list[dict[str, Any]]:
+    """Rolling folds as plain rows: hours, chosen settings and test figures with their
+    intervals (out of sample for the settings each fold chose)."""
+    rows = []
+    for f in result.folds:
+        fig = f.figures
+        teams = {} if fig is None else {
+            t: [_json_safe(r.get("alerts_per_analyst_day")),
+                _json_safe(r.get("alerts_per_analyst_day_low")),
+                _json_safe(r.get("alerts_per_analyst_day_high"))]
+            for t, r in fig.per_team.to_dict(orient="index").items() if r.get("analysts")}
+        rows.append({
+            "fold": f.number, "train_end_hour": f.train_end, "test_start_hour": f.test_start,
+            "test_end_hour": f.test_end, "feasible_on_its_tuning_hours": f.feasible,
+            "settings": _json_safe(f.settings),
+            "caught": None if fig is None else fig.caught,
+            "incidents": None if fig is None else fig.incidents,
+            "recall": None if fig is None else _json_safe(
+                [fig.recall, fig.recall_low, fig.recall_high]),
+            "alerts_per_analyst_day": teams,
+        })
+    return rows
+
+
+def fold_lines(result: TuneResult) -> list[str]:
+    """Terminal lines of the rolling validation (nothing without folds)."""
+    if not result.folds:
+        return []
+    lines = ["rolling validation (each fold tuned on the weeks before its test block; "
+             "test figures out-of-sample):"]
+    for r in fold_rows(result):
+        rec = r["recall"]
+        recall = ("no incidents" if not r["incidents"] else
+                  f"recall {_pct(rec[0])} ({_pct(rec[1])}-{_pct(rec[2])}), "
+                  f"{r['caught']} of {r['incidents']}")
+        load = ", ".join(f"{t} {v[0]:.2f} ({v[1]:.2f}-{v[2]:.2f})"
+                         for t, v in r["alerts_per_analyst_day"].items())
+        k = r["settings"].get("fence_multiplier")
+        lines.append(f"  fold {r['fold']}: {recall}; per analyst-day {load}; k={k:.3g}"
+                     if k is not None else f"  fold {r['fold']}: {recall}; {load}")
+    moving = {n: v for n, v in rolling.stability(result.folds).items() if len(set(map(
+        str, v))) > 1}
+    lines.append("  settings that differ between folds: " + (", ".join(
+        f"{n} {v}" for n, v in moving.items()) or "none"))
+    if result.pooled is not None:
+        p = result.pooled
+        lines.append(f"  pooled test blocks: recall {_pct(p.recall)} ({_pct(p.recall_low)}-"
+                     f"{_pct(p.recall_high)}), {p.caught} of {p.incidents}")
+    return lines
+
+
+def verdict_line(result: TuneResult) -> str:
+    """The out-of-sample verdict and its reasons, one line (printed last)."""
+    return (f"out-of-sample verdict: {result.verdict.upper()}: "
+            + "; ".join(result.verdict_reasons))

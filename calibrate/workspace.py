@@ -6,6 +6,7 @@ is the only place a workspace file is parsed and checked.
 
 from __future__ import annotations
 
+import datetime
 import math
 import tomllib
 from collections.abc import Mapping
@@ -63,6 +64,18 @@ class Goal:
 
     max_miss_rate: float = 0.2
     max_alerts_per_analyst_day: float | dict[str, float] = 5.0
+    # the miss-rate target must still hold if this many more caught incidents were missed
+    # (a margin against sitting on the knife edge of the weakest caught incident)
+    spare_incidents: int = 0
+
+    def max_misses(self, n_incidents: int) -> int:
+        """Most incidents of `n_incidents` a setting may miss, spare ones counted."""
+        if n_incidents <= 0:
+            return 0
+        allowed = 0
+        while allowed < n_incidents and (allowed + 1) / n_incidents <= self.max_miss_rate:
+            allowed += 1
+        return max(allowed - self.spare_incidents, -1)
 
     def budget(self, team: str) -> float:
         """Alert budget per analyst per day for `team` (inf when none is set)."""
@@ -98,6 +111,13 @@ class SearchSpace:
     multiplier_high: float = 10.0
     trials: int = 60
     holdout_fraction: float = 0.25
+    # first held-out day (UTC, "YYYY-MM-DD"); replaces holdout_fraction when set
+    holdout_start: str | None = None
+    # "holdout" (one check on the held-out weeks) or "rolling": time-ordered folds of the
+    # tuning weeks, each tuned on the weeks before it and scored on the next block
+    validation: str = "holdout"
+    folds: int = 3
+    gap_days: int = 0
     tune_by: str = "all"  # one of GROUPINGS
     seed: int = 0
     # per group (level or metric name): searched settings that replace `params`' ones
@@ -137,7 +157,8 @@ SECTIONS = (
     "history", "measures", "metrics", "levels", "incidents", "teams",
     "goal", "detector", "search", "watch",
 )
-_SEARCH_SPECIAL = ("fence_multiplier", "trials", "holdout_fraction", "tune_by", "seed",
+_SEARCH_SPECIAL = ("fence_multiplier", "trials", "holdout_fraction", "holdout_start",
+                   "validation", "folds", "gap_days", "tune_by", "seed",
                    "groups")
 
 
@@ -389,8 +410,10 @@ def _teams(t: Mapping[str, Any], root: Path, where: str) -> Teams:
 
 
 def _goal(t: Mapping[str, Any], teams: Teams, where: str) -> Goal:
-    _only(t, ("max_miss_rate", "max_alerts_per_analyst_day"), where)
+    _only(t, ("max_miss_rate", "max_alerts_per_analyst_day", "spare_incidents"), where)
     values: dict[str, Any] = {}
+    if "spare_incidents" in t:
+        values["spare_incidents"] = _int(t["spare_incidents"], _loc(where, "spare_incidents"), 0)
     if "max_miss_rate" in t:
         loc = _loc(where, "max_miss_rate")
         rate = _number(t["max_miss_rate"], loc)
@@ -453,6 +476,22 @@ def _search(t: Mapping[str, Any], where: str) -> SearchSpace:
             if not 0 < x < 0.9:
                 raise InputError(loc, f"must be above 0 and below 0.9, but got {raw!r}")
             values["holdout_fraction"] = x
+        elif key == "holdout_start":
+            try:
+                day = datetime.date.fromisoformat(raw) if isinstance(raw, str) else raw
+            except ValueError:
+                day = None
+            if not isinstance(day, datetime.date) or isinstance(day, datetime.datetime):
+                raise InputError(loc, f"must be a date \"YYYY-MM-DD\", but got {raw!r}")
+            values["holdout_start"] = day.isoformat()
+        elif key == "validation":
+            if raw not in ("holdout", "rolling"):
+                raise InputError(loc, f"must be 'holdout' or 'rolling', but got {raw!r}")
+            values["validation"] = raw
+        elif key == "folds":
+            values["folds"] = _int(raw, loc, 2)
+        elif key == "gap_days":
+            values["gap_days"] = _int(raw, loc, 0)
         elif key == "tune_by":
             if raw not in GROUPINGS:
                 raise InputError(loc, f"must be one of {', '.join(GROUPINGS)}, but got {raw!r}")

@@ -9,11 +9,12 @@ as a user's (`open_session` from the files, `replay_session` with the workspace'
 `[detector]`, whose `min_impact` is above 0). What a production detector has seen at
 hour t must not change when later hours arrive (README, "The workspace").
 
-Clicks are fitted robustly (the compiled STL kernel fits each window on its own), so
-their per-hour results must be bit for bit those of the full run. The non-robust fit
-is one BLAS product over all windows, whose rounding depends on how many windows
-there are (one ulp seen): those per-hour values and impacts are compared to 1e-12
-relative (1e-10 absolute), the flags and alert hours still exactly.
+Campaign-level clicks and impressions take one-hour-ahead expected values
+(`expected_value = "forecast"`, first scored hour L + W = 96), the rest in-fit ones.
+Clicks are fitted robustly (the compiled STL kernel fits each window on its own), the
+other metrics by the linear smoother (BLAS products in blocks of one shape, so each
+window's fit depends on that window alone): every per-hour result and every finished
+alert's impact must be bit for bit those of the full run.
 """
 
 from __future__ import annotations
@@ -65,6 +66,18 @@ fence_window_hours = 24
 fence_multiplier = 1.5
 flatline_hours = 3
 min_impact = 40.0
+
+[detector.group.forecast_robust]
+levels = ["campaign"]
+metrics = ["clicks"]
+expected_value = "forecast"
+robust = true
+min_impact = 8.0
+
+[detector.group.forecast]
+levels = ["campaign"]
+metrics = ["impressions"]
+expected_value = "forecast"
 
 [detector.group.ratio]
 metrics = ["ctr"]
@@ -134,6 +147,7 @@ def runs(tmp_path_factory) -> dict[int | None, ReplayResult]:
     # the data exercise what the alert test is for: some episode runs across a cut
     eps = out[None].episodes
     assert any(((eps.start <= c) & (eps.end > c + 1)).any() for c in CUTS)
+    assert (out[None].alerts_frame()["expected_value"] == "forecast").any()
     return out
 
 
@@ -162,12 +176,7 @@ def test_scores_and_flags_at_or_before_the_cut_match_full_history(runs, cut) -> 
             j = rows_part[lab]
             for name in PER_HOUR:
                 got, want = getattr(ps, name)[j], getattr(fs, name)[i, : cut + 1]
-                if fs.settings.robust or name == "value":
-                    np.testing.assert_array_equal(got, want, err_msg=f"{name} of {where}")
-                else:  # see the module docstring
-                    np.testing.assert_allclose(
-                        got, want, rtol=1e-12, atol=1e-10, err_msg=f"{name} of {where}"
-                    )
+                np.testing.assert_array_equal(got, want, err_msg=f"{name} of {where}")
             np.testing.assert_array_equal(
                 ps.flagged()[j], fs.flagged()[i, : cut + 1], err_msg=f"flags of {where}"
             )
@@ -213,10 +222,7 @@ def test_alerts_raised_at_or_before_the_cut_match_full_history(runs, cut) -> Non
         where = f"alert {tuple(a[ident])} (cut at hour {cut})"
         if b["end"] <= cut + 1:  # over by the cut: everything is known
             assert a["end"] == b["end"], where
-            if runs[None].config.for_series(a["level"], a["metric"]).robust:
-                assert a["impact"] == b["impact"], where
-            else:  # rounding of the non-robust fit, see the module docstring
-                assert a["impact"] == pytest.approx(b["impact"], rel=1e-12, abs=1e-10), where
+            assert a["impact"] == b["impact"], where
         else:  # still running at the cut: known up to the cut
             assert a["end"] == cut + 1, where
             want = impact_so_far(runs[None], b, cut)

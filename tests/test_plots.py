@@ -82,7 +82,8 @@ def test_fences_of_a_metric_that_cannot_be_negative_are_drawn_from_zero(figures,
     ax = figures[0].axes[0]
     band = next(c for c in ax.collections if isinstance(c, matplotlib.collections.PolyCollection))
     ys = np.concatenate([path.vertices[:, 1] for path in band.get_paths()])
-    expected = next(ln for ln in ax.get_lines() if ln.get_label() == "expected").get_ydata()
+    expected = next(ln for ln in ax.get_lines()
+                    if ln.get_label().startswith("expected")).get_ydata()
     fences = next(c.get_label() for c in ax.collections if c.get_label().startswith("fences"))
     if floor is None:
         assert ys.min() == pytest.approx(min(p.lower[:4] + p.lower[5:]))

@@ -236,11 +236,46 @@ def test_bad_rows_name_file_row_and_column(ses, previous, reviewed, tmp_path: Pa
     assert what in msg
 
 
-def test_with_the_real_search_if_present(ses, previous, reviewed, tmp_path: Path) -> None:
-    pytest.importorskip("calibrate.search")
+def test_with_the_real_search(ses, previous, reviewed, tmp_path: Path) -> None:
+    """The real search behind retune: every false alarm the new config still raises is
+    explained, and the known false alarms are counted as the file marks them."""
+    from calibrate.search import TuneResult
+
     df = reviewed.copy()
     df.loc[df.index[~df["_true"]][:4], "verdict"] = "false"
     path = _write(df, tmp_path / "reviewed.csv")
     res = retune(ses, path, previous, 4, executor=SerialExecutor())
+    assert isinstance(res.tune, TuneResult)
     c = res.comparison
-    assert len(c.still_raised) < c.known_false_total or len(c.why) == len(c.still_raised)
+    assert c.known_false_total == 4 == res.provenance["known_false_alarms"]
+    assert len(c.why) == len(c.still_raised) <= 4
+
+
+def test_incidents_from_held_out_alerts_are_marked(ses, previous, reviewed,
+                                                  tmp_path: Path) -> None:
+    """A `real` verdict on an alert raised in the held-out weeks (the last week here)
+    becomes an RH- incident; one from the tuning weeks an R- one. Reference: the split
+    of the workspace's search and the alerts' raised hours from the replay."""
+    from calibrate.retune import read_verdicts
+    from calibrate.search import split_hour
+
+    rep = api.replay_session(ses, previous, executor=SerialExecutor(), progress=False)
+    split = split_hour(ses)
+    assert 0 < split < ses.history.n_hours
+    frame = reviewed.copy()
+    row_of = {a: i for i, a in enumerate(rep.alerts_frame()["alert_id"])}
+    frame["_held"] = [rep.episodes.raised[row_of[a]] >= split for a in frame["alert_id"]]
+    false_rows = frame[~frame["_true"]]
+    held = false_rows[false_rows["_held"]].head(2)
+    tuning = false_rows[~false_rows["_held"]].head(1)
+    assert len(held) == 2 and len(tuning) == 1
+    frame.loc[held.index, "verdict"] = "real"
+    frame.loc[tuning.index, "verdict"] = "real"
+    path = _write(frame, tmp_path / "reviewed.csv")
+    v = read_verdicts(path, ses, rep, split)
+    assert sorted(v.held_out_incidents) == sorted(f"RH-{a}" for a in held["alert_id"])
+    ids = set(v.new_incidents["incident_id"])
+    assert {f"R-{a}" for a in tuning["alert_id"]} <= ids
+    assert all("held-out-week review" in n for n in
+               v.new_incidents.loc[v.new_incidents["incident_id"].str.startswith("RH-"), "note"])
+    assert any("no longer independent" in line for line in v.lines())

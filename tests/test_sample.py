@@ -145,9 +145,6 @@ def test_workspace_toml(workspace: Path) -> None:
 def test_loads_as_workspace(workspace: Path) -> None:
     from calibrate.workspace import load_workspace
 
-    try:
-        ws = load_workspace(workspace)
-    except NotImplementedError:
-        pytest.skip("load_workspace is not implemented yet")
+    ws = load_workspace(workspace)
     assert ws.history.key_columns == tuple(KEYS)
     assert set(ws.levels) == set(sample.LEVELS)

@@ -278,7 +278,8 @@ def test_point_level_against_sklearn() -> None:
 
 def test_range_based_tatbul_examples() -> None:
     bits = lambda s: np.array([c == "1" for c in s])  # noqa: E731
-    # Tatbul et al. (2018), alpha=0, flat bias, gamma=1; values in REFERENCES.md
+    # Tatbul et al. (2018), NeurIPS, "Precision and Recall for Time Series":
+    # alpha=0, flat bias, gamma=1
     p, r = range_precision_recall(bits("0011111"), bits("0111100"))
     assert (p, r) == pytest.approx((0.75, 0.6))
     p, r = range_precision_recall(bits("00110110110"), bits("01111111111"))
@@ -290,7 +291,7 @@ def test_range_based_tatbul_examples() -> None:
 
 @pytest.mark.parametrize(
     ("count", "nobs", "low", "high"),
-    [  # R binom.confint(method="wilson") values stored in statsmodels' tests (REFERENCES.md)
+    [  # R binom.confint(method="wilson") values stored in statsmodels' tests (Wilson 1927)
         (4, 20, 0.0806576626, 0.4160174323),
         (18, 20, 0.6989663548, 0.9721335188),
         (0, 30, 0.0, 0.1135134),
@@ -311,7 +312,7 @@ def test_figures_intervals_on_twenty_incidents() -> None:
     ep = eps([(C, 0, "clicks", s + 1, s + 2) for s in starts[4:]])
     f = figures(match(ep, inc, 0, 0), ep, inc, {}, n_days=10.0)
     assert (f.caught, f.missed, f.miss_rate) == (16, 4, 0.2)
-    # R binom.confint wilson 4/20 (REFERENCES.md)
+    # R binom.confint wilson 4/20, as stored in statsmodels' tests
     assert (f.miss_rate_low, f.miss_rate_high) == pytest.approx((0.0806576626, 0.4160174323))
     # statsmodels proportion_confint(16, 20, method="wilson")
     assert (f.recall_low, f.recall_high) == pytest.approx(

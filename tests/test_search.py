@@ -4,7 +4,7 @@ References used here (each test names its own):
 - brute force in the test: replay every grid multiplier through `Replayer.replay`
   (the detector's own fence_multiplier, no sweep) and score it with
   `api.score_episodes`, the path `calibrate replay` + `calibrate score` take;
-- Optuna's documented behaviour (REFERENCES.md, Optuna 5): a trial is feasible when
+- Optuna's documented behaviour (Optuna 5 API reference): a trial is feasible when
   every constraint value is <= 0; `enqueue_trial` runs the given parameters first;
   a study in a JournalStorage file keeps its trials across processes.
 """
@@ -21,7 +21,7 @@ import optuna
 import pandas as pd
 import pytest
 
-from calibrate import api, search
+from calibrate import api, scoring, search
 from calibrate.cli import main
 from calibrate.episodes import Episodes
 from calibrate.errors import InputError
@@ -83,9 +83,12 @@ def test_tune_finds_a_feasible_setting_no_worse_than_today(ses, tmp_path):
     cur = ses.ws.detector.base
     assert (t0["fence_window_hours"], t0["seasonal_span"]) == (
         cur.fence_window_hours, cur.seasonal_span)
-    if t0["feasible"]:
-        chosen = res.trials[res.trials["feasible"]]["value"].min()
-        assert chosen <= t0["value"]
+    # never worse than today's structural settings at their own best multiplier, found
+    # independently by replaying every breakpoint (minimum impact 0, today's)
+    ks = np.geomspace(ses.ws.search.multiplier_low, ses.ws.search.multiplier_high, 80)
+    ref = _brute_force_k(ses, ses.ws.detector, ks, res.first_hour, res.split_hour, goal)
+    assert ref is not None
+    assert res.tuning.alerts <= ref[2]
     assert res.split_hour == ses.history.n_hours - 168  # 25% of 5 weeks -> 1 whole week
     assert res.first_hour == 167
     assert len(res.pareto) >= 1
@@ -689,7 +692,15 @@ def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
             "--storage", str(tmp_path / "cli.journal")]
     assert main(argv) == 0
     text = capsys.readouterr().out
-    assert "tuning weeks" in text and "held-out weeks" in text
+    assert "tuning weeks (in-sample)" in text and "held-out weeks (out-of-sample)" in text
+    # before the search, what the labels can show; last, the out-of-sample verdict
+    first = next(x for x in text.splitlines() if x.startswith("before the search: "))
+    assert "labelled incident(s) in the tuning weeks" in first
+    last = text.strip().splitlines()[-1]
+    res = search.study_result(api.open_session(ws), storage=str(tmp_path / "cli.journal"),
+                              engine="serial")
+    assert last.startswith(f"out-of-sample verdict: {res.verdict.upper()}: ")
+    assert res.verdict == scoring.validation_verdict(res.holdout, res.goal)[0]
     tuned = load_config(out).base
     assert tuned.fence_multiplier > 0
     # the changed settings, today's value -> the written one

@@ -66,9 +66,9 @@ def co2_monthly() -> np.ndarray:
 @pytest.mark.parametrize(
     ("period", "seasonal", "expected"),
     [
-        # REFERENCES.md, statsmodels STL(...).config: period 24 seasonal 7 -> 47 / 25
+        # statsmodels STL(...).config defaults: period 24 seasonal 7 -> 47 / 25
         (24, 7, (47, 25)),
-        # REFERENCES.md, statsmodels STL(...).config: period 168 seasonal 7 -> 321 / 169
+        # statsmodels STL(...).config defaults: period 168 seasonal 7 -> 321 / 169
         (168, 7, (321, 169)),
     ],
 )
@@ -106,7 +106,7 @@ def test_co2_monthly_bit_identical(co2_monthly: np.ndarray, robust: bool) -> Non
 
 
 def _r_call_fit(y: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    # R call from REFERENCES.md: stl(ts(x, frequency=12), s.window=35, s.degree=1,
+    # R call of statsmodels' stl_co2_r_result.csv: stl(ts(x, frequency=12), s.window=35, s.degree=1,
     # t.window=19, t.degree=1, l.window=13, l.degree=1, s.jump=4, t.jump=2, l.jump=2,
     # inner=1, outer=2)
     return stl_fit(y, 12, 35, trend=19, low_pass=13, seasonal_jump=4, trend_jump=2,
@@ -127,7 +127,7 @@ def test_r_reference_endpoints() -> None:
     # The 348-point monthly CO2 series statsmodels ships for its R comparison.
     y = pd.read_csv(folder / "stl_co2.csv", header=None).iloc[:, 0].to_numpy(float)
     tr, se, re = _r_call_fit(y)
-    # REFERENCES.md (R stl output as shipped by statsmodels): first and last points.
+    # R stl output as shipped by statsmodels (tsa/stl/tests/results): first and last points.
     assert se[0] == pytest.approx(-0.13125464, abs=1e-8)
     assert tr[0] == pytest.approx(315.5519, abs=1e-4)
     assert re[0] == pytest.approx(0.159314918, abs=1e-8)

@@ -3,14 +3,19 @@
 Prints every ratio it measures:
 - per series-hour: the replay (compiled kernel / linear smoother, fanned out over
   all cores) versus the plain loop (statsmodels STL on the trailing window every
-  hour + numpy percentiles), non-robust and robust, decomposition window 672,
-  hourly refit, 100 series x 90 days. The reference loop is timed on a sample of
-  hours of a few series (it takes ~10-75 s per series) and reported per series-hour;
+  hour + numpy percentiles), non-robust and robust, each with in-fit expected values
+  (`expected_value = "fit"`) and with one-hour-ahead ones (`"forecast"`), decomposition
+  window 672, hourly refit, 100 series x 90 days. Both sides are timed `--runs` times
+  (default 3) and the median is used. The `fit` reference loop is timed on a sample of
+  hours of a few series (each hour one fit, whose own remainders fill the fence
+  window); the `forecast` loop needs the forecast remainders of the W hours before
+  each scored hour, so it runs over W + `--ref-hours` consecutive hours (one fit per
+  hour) and is reported per hour it processed;
 - flags: the replay's flags equal the reference loop's on every timed hour;
 - memory: peak RSS of a replay of 1,000 series x 90 days x 4 metrics (target < 2 GB).
 
 Usage: python tests/benchmarks/bench_replay.py [--series 100] [--days 90] [--ref-hours 60]
-       [--memory-series 1000] [--skip-memory]
+       [--runs 3] [--memory-series 1000] [--skip-memory] [--skip-robust]
 """
 
 from __future__ import annotations
@@ -72,8 +77,91 @@ def reference_hours(y, s: DetectorSettings, hours):
     return np.array(flags)
 
 
+def _score(r, q1, q3):
+    iqr = q3 - q1
+    if iqr == 0:
+        return np.inf if (r > q3 or r < q1) else 0.0
+    return max((r - q3) / iqr, (q1 - r) / iqr)
+
+
+def reference_forecast(y, s: DetectorSettings, first: int, n_hours: int):
+    """The plain forecast loop (hourly refit) over hours first - W .. first + n_hours - 1:
+    STL on the window ending the hour before, expected = trend at its end + seasonal
+    one period back; flags of the last `n_hours` hours, each from the W forecast
+    remainders before it. Returns the flags and the number of hours processed."""
+    L, W, k, P = s.decomposition_window_hours, s.fence_window_hours, s.fence_multiplier, \
+        s.period_hours
+    rem = {}
+    flags = []
+    for t in range(first - W, first + n_hours):
+        fit = STL(y[t - L : t], period=P, seasonal=s.seasonal_span, robust=s.robust).fit()
+        rem[t] = y[t] - (fit.trend[L - 1] + fit.seasonal[L - P])
+        if t >= first:
+            q1, q3 = np.percentile([rem[i] for i in range(t - W, t)], [25, 75])
+            flags.append(_score(rem[t], q1, q3) > k)
+    return np.array(flags), W + n_hours
+
+
 def peak_rss_mb() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _mode_line(args, s: DetectorSettings, hist: History, y_all, workers: int) -> None:
+    """Time one configuration against its plain loop and print the line."""
+    cfg = DetectorConfig(base=s)
+    n = hist.n_hours
+    L, W = s.decomposition_window_hours, s.fence_window_hours
+    # warm up compilation and the smoother matrix on a tiny history
+    Replayer(synthetic_history(2, 40, 1), progress=False).scores(cfg)
+    ex = LocalExecutor(workers)
+    rp = Replayer(hist, executor=ex, progress=False)
+    t0 = time.perf_counter()
+    scores = rp.scores(cfg)[("series", "m0")]
+    cold = time.perf_counter() - t0
+    warm = []
+    for _ in range(args.runs):
+        rp.cache.clear()  # same workers, now warm: the cost of each refit in a search
+        t0 = time.perf_counter()
+        scores = rp.scores(cfg)[("series", "m0")]
+        warm.append(time.perf_counter() - t0)
+    ex.close()
+    ours = float(np.median(warm))
+    # replayed hours (each one fit in the plain loop): from L - 1 in-fit, from L forecast
+    first = L - 1 if s.expected_value == "fit" else L
+    series_hours = args.series * (n - first)
+    per_ours = ours / series_hours
+    rng = np.random.default_rng(1)
+    per_ref_runs, ref_count, agree = [], 0, True
+    for _ in range(args.runs):
+        ref_time, count = 0.0, 0
+        for i in range(args.ref_series):
+            score = fence_scores(scores.remainder[i], scores.q1[i], scores.q3[i], "both")
+            if s.expected_value == "fit":
+                hrs = np.sort(rng.choice(np.arange(L - 1, n), args.ref_hours, replace=False))
+                t0 = time.perf_counter()
+                ref_flags = reference_hours(y_all[i], s, hrs)
+                ref_time += time.perf_counter() - t0
+                count += len(hrs)
+            else:
+                start = int(rng.integers(L + W, n - args.ref_hours))
+                hrs = np.arange(start, start + args.ref_hours)
+                t0 = time.perf_counter()
+                ref_flags, processed = reference_forecast(y_all[i], s, start, args.ref_hours)
+                ref_time += time.perf_counter() - t0
+                count += processed
+            agree &= bool(np.array_equal(np.nan_to_num(score[hrs], nan=-1) > 3.0, ref_flags))
+        per_ref_runs.append(ref_time / count)
+        ref_count = count
+    per_ref = float(np.median(per_ref_runs))
+    label = "robust" if s.robust else "non-robust"
+    print(f"replay {label}, expected_value = {s.expected_value}: {args.series} series x "
+          f"{args.days} days, window 672, hourly refit, {workers} workers: {ours:.2f} s warm "
+          f"(median of {args.runs}: {', '.join(f'{x:.2f}' for x in warm)}; {cold:.2f} s with "
+          f"worker start-up) = {per_ours * 1e6:.1f} us per series-hour; reference loop "
+          f"{per_ref * 1e3:.2f} ms per series-hour (median of {args.runs} runs of {ref_count} "
+          f"hours); ratio {per_ref / per_ours:.0f}x (target "
+          f"{'200' if not s.robust else '40'}x), with start-up "
+          f"{per_ref * series_hours / cold:.0f}x; flags identical: {agree}", flush=True)
 
 
 def main() -> None:
@@ -85,51 +173,18 @@ def main() -> None:
     ap.add_argument("--memory-series", type=int, default=1000)
     ap.add_argument("--skip-memory", action="store_true")
     ap.add_argument("--skip-robust", action="store_true")
+    ap.add_argument("--runs", type=int, default=3, help="timed runs per side (median)")
     args = ap.parse_args()
     print(f"machine: {platform.platform()}, {os.cpu_count()} cores, python "
           f"{platform.python_version()}")
     hist = synthetic_history(args.series, args.days, 1)
     y_all = hist.levels["series"].values["m0"]
-    n = hist.n_hours
     workers = os.cpu_count() or 1
     for robust in (False,) if args.skip_robust else (False, True):
-        s = DetectorSettings(decomposition_window_hours=672, fence_window_hours=168,
-                             fence_multiplier=3.0, robust=robust)
-        cfg = DetectorConfig(base=s)
-        # warm up compilation and the smoother matrix on a tiny history
-        Replayer(synthetic_history(2, 30, 1), progress=False).scores(cfg)
-        ex = LocalExecutor(workers)
-        rp = Replayer(hist, executor=ex, progress=False)
-        t0 = time.perf_counter()
-        scores = rp.scores(cfg)[("series", "m0")]
-        cold = time.perf_counter() - t0
-        rp.cache.clear()  # same workers, now warm: the cost of each refit in a search
-        t0 = time.perf_counter()
-        scores = rp.scores(cfg)[("series", "m0")]
-        ours = time.perf_counter() - t0
-        ex.close()
-        series_hours = args.series * (n - 671)
-        per_ours = ours / series_hours
-        rng = np.random.default_rng(1)
-        ref_time, ref_count, agree = 0.0, 0, True
-        for i in range(args.ref_series):
-            hrs = np.sort(rng.choice(np.arange(671, n), args.ref_hours, replace=False))
-            t0 = time.perf_counter()
-            ref_flags = reference_hours(y_all[i], s, hrs)
-            ref_time += time.perf_counter() - t0
-            ref_count += len(hrs)
-            score = fence_scores(scores.remainder[i], scores.q1[i], scores.q3[i], "both")
-            agree &= bool(np.array_equal(np.nan_to_num(score[hrs], nan=-1) > 3.0, ref_flags))
-        per_ref = ref_time / ref_count
-        label = "robust" if robust else "non-robust"
-        print(f"replay {label}: {args.series} series x {args.days} days, window 672, hourly refit,"
-              f" {workers} workers: {ours:.2f} s warm ({cold:.2f} s with worker start-up) ="
-              f" {per_ours * 1e6:.1f} us per series-hour;"
-              f" reference loop {per_ref * 1e3:.2f} ms per series-hour"
-              f" ({ref_count} hours timed); ratio {per_ref / per_ours:.0f}x"
-              f" (target {'200' if not robust else '40'}x),"
-              f" with start-up {per_ref * series_hours / cold:.0f}x;"
-              f" flags identical: {agree}")
+        for mode in ("fit", "forecast"):
+            s = DetectorSettings(decomposition_window_hours=672, fence_window_hours=168,
+                                 fence_multiplier=3.0, robust=robust, expected_value=mode)
+            _mode_line(args, s, hist, y_all, workers)
     if not args.skip_memory:
         before = peak_rss_mb()
         big = synthetic_history(args.memory_series, args.days, 4, seed=2)
