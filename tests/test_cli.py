@@ -211,35 +211,33 @@ def test_version_is_the_installed_distributions(capsys):
     assert capsys.readouterr().out == f"calibrate {importlib.metadata.version('calibrate')}\n"
 
 
-@pytest.mark.parametrize("where", ["before", "after", "absent"])
-def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, capsys, where,
+def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, capsys,
                                                                monkeypatch):
     import sys
 
     from calibrate.outputs import write_config
 
-    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)  # report's bar: terminals only
-
-    quiet = {"before": ["--quiet"], "after": [], "absent": []}[where]
-    late = ["-q"] if where == "after" else []
-    assert main([*quiet, "replay", str(ws), "--out", str(tmp_path / "a.csv"),
-                 "--engine", "serial", *late]) == 0
-    replay = capsys.readouterr()
     cfg = tmp_path / "c.toml"
     write_config(cfg, api.open_session(ws, incidents=False).ws.detector, {})
-    assert main([*quiet, "report", str(ws), "--config", str(cfg), "--out",
-                 str(tmp_path / "rep"), "--engine", "serial", *late]) == 0
-    report = capsys.readouterr()
-    assert "alerts written" in replay.out and "report written" in report.out
+    replay = ["replay", str(ws), "--out", str(tmp_path / "a.csv"), "--engine", "serial",
+              "--force"]
+    report = ["report", str(ws), "--config", str(cfg), "--out", str(tmp_path / "rep"),
+              "--engine", "serial", "--force"]
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)  # report's bar: terminals only
+    runs = {}
+    for name, argv in (("replay", replay), ("replay -q after", [*replay, "-q"]),
+                       ("report", report), ("--quiet report", ["--quiet", *report])):
+        assert main(argv) == 0
+        runs[name] = capsys.readouterr()
     monkeypatch.undo()
-    assert main(["report", str(ws), "--config", str(cfg), "--out", str(tmp_path / "rep"),
-                 "--engine", "serial", "--force"]) == 0
-    assert capsys.readouterr().err == ""  # stderr not a terminal: no report bar
-    if where == "absent":
-        assert "replay:" in replay.err and "report:" in report.err
-        assert "0/4 [" in report.err and "step/s, replay]" in report.err
-    else:
-        assert replay.err == "" and report.err == ""
+    assert main(report) == 0
+    runs["report, stderr not a terminal"] = capsys.readouterr()
+    assert "alerts written" in runs["replay -q after"].out
+    assert "report written" in runs["--quiet report"].out
+    assert "replay:" in runs["replay"].err
+    assert "0/4 [" in runs["report"].err and "step/s, replay]" in runs["report"].err
+    for name in ("replay -q after", "--quiet report", "report, stderr not a terminal"):
+        assert runs[name].err == "", name
 
 
 def test_usage_errors_and_an_unmet_goal_have_their_own_exit_codes(ws, capsys):
