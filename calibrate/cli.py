@@ -449,19 +449,19 @@ def cmd_volume(args) -> int:
 
 
 def cmd_tune(args) -> int:
-    from calibrate.search import cli_tune
+    from calibrate.commands import cli_tune
 
     return cli_tune(args)
 
 
 def cmd_report(args) -> int:
-    from calibrate.report import cli_report
+    from calibrate.commands import cli_report
 
     return cli_report(args)
 
 
 def cmd_retune(args) -> int:
-    from calibrate.retune import cli_retune
+    from calibrate.commands import cli_retune
 
     return cli_retune(args)
 

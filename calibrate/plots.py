@@ -19,7 +19,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 if TYPE_CHECKING:
-    from calibrate.report import CurveData, SeriesPanel, TradeoffData, VolumeData
+    from calibrate.report_data import CurveData, SeriesPanel, TradeoffData, VolumeData
 
 # Our own palette: colour-blind friendly, distinct in greyscale print too.
 INK = "#222222"

@@ -23,7 +23,7 @@ import html
 import json
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -33,9 +33,18 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from calibrate import api
-from calibrate.errors import CalibrationError, UsageError
+from calibrate.errors import CalibrationError
 from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
+from calibrate.report_data import (
+    CurveData,
+    PeriodData,
+    ReportData,
+    SeriesPanel,
+    SettingRow,
+    TradeoffData,
+    VolumeData,
+)
 from calibrate.scoring import (
     ANY_LABEL,
     HELD_OUT_NOTE,
@@ -48,163 +57,11 @@ from calibrate.scoring import (
 )
 from calibrate.settings import DetectorConfig
 
-CAUTION = (
-    "A tuned configuration is only as good as the incident labels it was tuned on: "
-    "incidents nobody labelled count as false alerts, and labelled incidents that were "
-    "never real pull the fences too tight. Check the settings on held-out weeks (below) "
-    "and with the analysts who will receive the alerts before rollout."
-)
 MAX_MISSED_PANELS = 20
 FALSE_ALERT_PANELS = 3
 PANEL_BEFORE_HOURS = 72
 PANEL_AFTER_HOURS = 48
 CURVE_POINTS = 80
-
-
-# --------------------------------------------------------------------------- records
-
-
-@dataclass
-class PeriodData:
-    """Figures of the chosen (and current) settings over one period."""
-
-    name: str
-    start_hour: int
-    end_hour: int
-    start: str
-    end: str
-    figures: dict[str, Any]
-    goal_met: bool
-    verdict: str
-    current_figures: dict[str, Any] | None = None
-
-
-@dataclass
-class SettingRow:
-    """One detector setting, current value next to the chosen one."""
-
-    name: str
-    current: Any
-    chosen: Any
-
-    @property
-    def changed(self) -> bool:
-        return self.current != self.chosen
-
-
-@dataclass
-class TradeoffData:
-    """Points of the recall / alert-load trade-off plot (tuning weeks)."""
-
-    x: list[float]
-    y: list[float]
-    feasible: list[bool]
-    pareto: list[bool]
-    chosen_x: float | None
-    chosen_y: float | None
-    budget: float | None
-    target_recall: float
-    x_label: str
-    curve_x: list[float] = field(default_factory=list)
-    curve_y: list[float] = field(default_factory=list)
-    # best trade-offs over every trial and every multiplier of its grid (a search's
-    # `pareto` frame); empty: the step line joins the undominated trial points
-    front_x: list[float] = field(default_factory=list)
-    front_y: list[float] = field(default_factory=list)
-
-
-@dataclass
-class CurveData:
-    """Recall and alert load of the chosen settings over a multiplier grid."""
-
-    ks: list[float]
-    recall: list[float]
-    recall_low: list[float]
-    recall_high: list[float]
-    alerts: list[int]
-    teams: list[str]
-    team_rate: list[list[float]]
-    budgets: list[float | None]
-    target_recall: float
-    chosen_k: float | None
-    per_group: bool = False  # groups have their own multipliers: the curve moves one k for all
-    # minimum-impact curves: per x, each metric's minimum impact (its own units)
-    impacts: list[dict[str, float]] = field(default_factory=list)
-
-
-@dataclass
-class VolumeData:
-    """Alerts per analyst per day per team and ISO week (chosen settings)."""
-
-    weeks: list[str]
-    teams: list[str]
-    rate: list[list[float]]
-    alerts: list[list[int]]
-    budgets: list[float | None]
-    first_holdout_week: int | None
-    table: list[dict[str, Any]]
-
-
-@dataclass
-class SeriesPanel:
-    """One series around a missed incident or a run of false alerts."""
-
-    kind: str  # "missed incident" or "false alerts"
-    title: str
-    level: str
-    label: str
-    metric: str
-    times: list[str]
-    value: list[float]
-    expected: list[float]
-    lower: list[float]
-    upper: list[float]
-    k: float
-    incident_spans: list[tuple[str, str]]
-    alert_spans: list[tuple[str, str]]
-    note: str = ""
-    expected_value: str = "fit"  # the mode of the expected line: "fit" or "forecast"
-    # fences and expected values are drawn no lower than this (0 for a metric that
-    # cannot be negative, `can_be_negative`); None: drawn as they are
-    floor: float | None = None
-
-
-@dataclass
-class ReportData:
-    """Everything the report shows, as plain data (rendered afterwards)."""
-
-    title: str
-    generated: str
-    workspace: str
-    source: str
-    goal: dict[str, Any]
-    feasible: bool | None
-    reason: str
-    holdout_warning: str
-    periods: list[PeriodData]
-    settings: list[SettingRow]
-    tradeoff: TradeoffData
-    curve: CurveData
-    volume: VolumeData
-    delays: list[float]
-    early_hours: int
-    late_hours: int
-    panels: list[SeriesPanel]
-    panels_left_out: int
-    incidents: list[dict[str, Any]]
-    caution: str = CAUTION
-    provenance: dict[str, Any] = field(default_factory=dict)
-    # recall and load over minimum impacts at the chosen k (None: groups differ in it)
-    impact: CurveData | None = None
-    # with groups: per group, the same as that group's minimum impact moves alone
-    impact_groups: list[tuple[str, CurveData]] = field(default_factory=list)
-    # out-of-sample verdict: verdict ("holds", "does not hold", "cannot tell"), reasons,
-    # interval methods, what the tuning labels can show, independence of the check
-    validation: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def changed(self) -> list[str]:
-        return [r.name for r in self.settings if r.changed]
 
 
 # --------------------------------------------------------------------------- build
@@ -1348,7 +1205,7 @@ def _review_csv(result: ReplayResult) -> bytes:
     return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
 
 
-def _steps_bar(progress: bool, total: int = 4) -> tqdm:
+def steps_bar(progress: bool, total: int = 4) -> tqdm:
     """A progress bar over a report's steps (the replays, figures, plots and files) on
     a terminal: nothing without `progress`, nor when stderr goes to a file or a pipe
     (where it would only precede an error line)."""
@@ -1356,7 +1213,7 @@ def _steps_bar(progress: bool, total: int = 4) -> tqdm:
                 leave=False)
 
 
-def _step(bar: tqdm, what: str, work: Callable[[], Any]) -> Any:
+def step(bar: tqdm, what: str, work: Callable[[], Any]) -> Any:
     bar.set_postfix_str(what)
     out = work()
     bar.update(1)
@@ -1378,18 +1235,18 @@ def write_config_report(
     """Replay `config` (and the current settings) and write its report to `out_dir`;
     `progress` shows a bar over the steps."""
     current = current or ses.ws.detector
-    bar = _steps_bar(progress)
+    bar = steps_bar(progress)
     rp = api.make_replayer(ses, progress=False, **replay_kwargs)
     try:
-        chosen = _step(bar, "replay", lambda: rp.replay(config))
-        cur = _step(bar, "replay of today's", lambda: rp.replay(current))
+        chosen = step(bar, "replay", lambda: rp.replay(config))
+        cur = step(bar, "replay of today's", lambda: rp.replay(current))
     finally:
         rp.close()
     first = max(api.first_scored_hour(config, ses.ws), api.first_scored_hour(current, ses.ws))
-    data = _step(bar, "figures", lambda: build_report_data(
+    data = step(bar, "figures", lambda: build_report_data(
         ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
         title="Calibration report", source=source))
-    _step(bar, "plots and files", lambda: write_report_data(
+    step(bar, "plots and files", lambda: write_report_data(
         data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
     bar.close()
     return data
@@ -1405,18 +1262,18 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
     goal = getattr(result, "goal", None)
     if goal is not None and goal != ses.ws.goal:
         ses = replace(ses, ws=replace(ses.ws, goal=goal))
-    bar = steps if steps is not None else _steps_bar(progress)
+    bar = steps if steps is not None else steps_bar(progress)
     rp = api.make_replayer(ses, progress=False, **replay_kwargs)
     try:
-        chosen = _step(bar, "replay", lambda: rp.replay(result.config))
-        cur = _step(bar, "replay of today's", lambda: rp.replay(result.current))
+        chosen = step(bar, "replay", lambda: rp.replay(result.config))
+        cur = step(bar, "replay of today's", lambda: rp.replay(result.current))
     finally:
         rp.close()
     prov = dict(getattr(result, "provenance", {}) or {})
     prov.setdefault("study_name", getattr(result, "study_name", None))
     prov.setdefault("storage", getattr(result, "storage", None))
     prov = {k: v for k, v in prov.items() if v is not None}
-    data = _step(bar, "figures", lambda: build_report_data(
+    data = step(bar, "figures", lambda: build_report_data(
         ses, chosen, current=cur, first_hour=result.first_hour, split_hour=result.split_hour,
         trials=result.trials, front=getattr(result, "pareto", None),
         feasible=result.feasible, reason=result.reason or "",
@@ -1432,53 +1289,11 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
             folds=search.fold_rows(result),
             stability={n: [str(x) for x in v]
                        for n, v in rolling.stability(result.folds).items()})
-    _step(bar, "plots and files", lambda: write_report_data(
+    step(bar, "plots and files", lambda: write_report_data(
         data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
     if steps is None:
         bar.close()
     return data
-
-
-def cli_report(args: Any) -> int:
-    """`calibrate report WORKSPACE (--config C | --study [NAME]) --out DIR`."""
-    from calibrate.outputs import check_outputs, load_config, load_provenance
-
-    config_path, study = getattr(args, "config", None), getattr(args, "study", None)
-    if (config_path is None) == (study is None):
-        raise UsageError("give either --config FILE or --study [NAME]")
-    out = Path(args.out)
-    force = bool(getattr(args, "force", False))
-    progress = not getattr(args, "quiet", False)
-    check_outputs((), force, folders=[out])
-    ses = api.open_session(args.workspace)
-    if ses.incidents is None:
-        raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
-    if study is not None:
-        from calibrate.executors import make_executor
-        from calibrate.search import study_result
-
-        executor = make_executor(args.engine, args.workers, args.scheduler)
-        bar = _steps_bar(progress, total=5)
-        try:
-            result = _step(bar, "study", lambda: study_result(
-                ses, storage=getattr(args, "storage", None), study_name=study or None,
-                executor=executor))
-            write_report(ses, result, out, force=force, executor=executor, steps=bar)
-        finally:
-            bar.close()
-            executor.close()
-        print(f"{result.reason}")
-        print(f"report written to {out / 'index.html'}")
-        return 0
-    config = load_config(config_path)
-    split = load_provenance(config_path).get("split_hour")
-    write_config_report(
-        ses, config, out, split_hour=int(split) if isinstance(split, int) else None,
-        force=force, source=f"config {config_path}", engine=args.engine, workers=args.workers,
-        scheduler=args.scheduler, progress=progress,
-    )
-    print(f"report written to {out / 'index.html'}")
-    return 0
 
 
 # --------------------------------------------------------------------------- helpers

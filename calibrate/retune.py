@@ -30,7 +30,7 @@ import pandas as pd
 
 from calibrate import api
 from calibrate.episodes import Episodes
-from calibrate.errors import CalibrationError, InputError
+from calibrate.errors import InputError
 from calibrate.executors import make_executor
 from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.replay import ReplayResult, alerts_frame
@@ -39,7 +39,6 @@ from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_team
 from calibrate.settings import DetectorConfig
 
 CHECKED_COLUMNS = ("level", "metric", "start")
-
 
 
 @dataclass
@@ -634,37 +633,6 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
                      derived_from_held_out=bool(res.verdicts.held_out_incidents))
         written.append(report / "calibration")
     return written
-
-
-def cli_retune(args: Any) -> int:
-    """`calibrate retune WORKSPACE --verdicts F --out C [--previous P] [--report D]`."""
-    from calibrate.outputs import check_outputs, load_config
-
-    out = Path(args.out)
-    paths = retune_paths(out, Path(args.report) if args.report else None)
-    check_outputs(paths[:3], args.force, folders=paths[3:])
-    verdicts = Path(args.verdicts)
-    if out.resolve() == verdicts.resolve():
-        raise CalibrationError(f"{out}: is the verdicts file; choose another --out")
-    ses = api.open_session(args.workspace)
-    previous = load_config(args.previous) if args.previous else None
-    res = retune(ses, verdicts, previous, args.trials, engine=args.engine,
-                 workers=args.workers, scheduler=args.scheduler,
-                 progress=not getattr(args, "quiet", False),
-                 added_incidents=getattr(args, "added_incidents", None))
-    for line in res.verdicts.lines():
-        print(line)
-    written = write_retune_outputs(res, out, Path(args.report) if args.report else None,
-                                   force=args.force)
-    c = res.comparison
-    print(f"previous: {c.old['caught']}/{c.old['incidents']} caught, {c.old['alerts']} alerts; "
-          f"new: {c.new['caught']}/{c.new['incidents']} caught, {c.new['alerts']} alerts")
-    print(f"known false alarms still raised: {len(c.still_raised)} of {c.known_false_total}")
-    for w in c.why:
-        print(f"    {w}")
-    for p in written:
-        print(f"written: {p}")
-    return 0
 
 
 def _iso(hours: pd.DatetimeIndex, t: int) -> str:

@@ -67,7 +67,7 @@ import optuna
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate import api, errors, rolling, studies
+from calibrate import api, rolling, studies
 from calibrate.api import Session
 from calibrate.episodes import Episodes
 from calibrate.errors import CalibrationError, InputError
@@ -1696,89 +1696,6 @@ def pareto_lines(result: TuneResult) -> list[str]:
         lines.append(f"  recall {_pct(d['recall'])} ({d['caught']} of {d['incidents']}), "
                      f"load {d['load']:.3g}: trial {d['number']}, {k}" + shown)
     return lines
-
-
-def cli_tune(args: Any) -> int:
-    """`calibrate tune WORKSPACE --out tuned.toml [--report DIR] [--trials N] ...`.
-
-    Exit 0 with the config written; 2 when no setting meets the goal (nothing
-    written, the best trade-offs printed).
-    """
-    from calibrate.outputs import check_outputs
-
-    out = Path(args.out)
-    force = bool(getattr(args, "force", False))
-    check_outputs([out], force, folders=[getattr(args, "report", None)])
-    ses = api.open_session(args.workspace)
-    goal = ses.ws.goal
-    mm = getattr(args, "max_miss_rate", None)
-    mb = getattr(args, "max_alerts_per_analyst_day", None)
-    if mm is not None:
-        if not 0.0 <= mm <= 1.0:
-            raise InputError("--max-miss-rate", f"must be between 0 and 1, but got {mm!r}")
-        goal = replace(goal, max_miss_rate=float(mm))
-    if mb is not None:
-        if not mb > 0:
-            raise InputError("--max-alerts-per-analyst-day", f"must be positive, but got {mb!r}")
-        goal = replace(goal, max_alerts_per_analyst_day=float(mb))
-    from calibrate.executors import make_executor
-
-    # one executor for the search and the report: the workers start once
-    executor = make_executor(getattr(args, "engine", "local"), getattr(args, "workers", None),
-                             getattr(args, "scheduler", None))
-    try:
-        return _tune_and_write(ses, args, goal, out, force, executor)
-    finally:
-        executor.close()
-
-
-def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
-                    executor: Executor) -> int:
-    from calibrate.outputs import write_config
-    from calibrate.report import write_report
-
-    tune_by = ses.ws.search.tune_by
-    if tune_by != "group" and ses.ws.detector.groups:
-        names = ", ".join(g.name for g in ses.ws.detector.groups)
-        what = ("one set of settings for every series" if tune_by == "all"
-                else f"one set of settings per {tune_by}")
-        print(f"note: tune_by = \"{tune_by}\" tunes {what}; the tuned config leaves out "
-              f"the workspace's groups ({names}). Use tune_by = \"group\" to tune them.")
-    progress = not getattr(args, "quiet", False)
-    print(f"before the search: {labels_line(tuning_incidents(ses), goal)}")
-    result = tune(ses, trials=args.trials, storage=args.storage,
-                  study_name=getattr(args, "study", None), goal=goal, executor=executor,
-                  progress=progress)
-    print(f"study {result.study_name} ({len(result.trials)} trials) in {result.storage}")
-    for line in side_by_side(result):
-        print(line)
-    for line in metric_lines(result):
-        print(line)
-    for line in fold_lines(result):
-        print(line)
-    if result.thin_margin:
-        print(f"knife edge: {result.thin_margin} caught incident(s) are caught only by alerts "
-              "whose peak fence score is within 10% of the multiplier; [goal] spare_incidents "
-              "= N keeps the target with N more misses")
-    if result.holdout_warning:
-        print(f"warning: {result.holdout_warning}")
-    if not result.feasible:
-        print(f"no setting meets the goal: {result.reason}")
-        for line in pareto_lines(result):
-            print(line)
-        print(f"nothing written to {out}")
-        print(verdict_line(result))
-        return errors.GOAL_NOT_MET
-    print(result.reason)
-    print(changed_settings_line(result))
-    write_config(out, result.config, result.provenance, force=force)
-    print(f"tuned config written to {out}")
-    if getattr(args, "report", None):
-        write_report(ses, result, Path(args.report), force=force, executor=executor,
-                     progress=progress)
-        print(f"report written to {args.report}")
-    print(verdict_line(result))
-    return 0
 
 
 def fold_rows(result: TuneResult) -> list[dict[str, Any]]:

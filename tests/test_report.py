@@ -279,7 +279,7 @@ def test_pareto_front_and_goal_verdict() -> None:
 
 
 def test_cli_report_refuses_an_existing_folder(ses, tmp_path: Path) -> None:
-    from calibrate.report import cli_report
+    from calibrate.commands import cli_report
 
     (tmp_path / "old").mkdir()
     args = SimpleNamespace(workspace=str(ses.ws.file), config=str(ses.ws.file),
