@@ -1,8 +1,8 @@
 """Data flows one way through the pipeline stages: no import cycles, no upward imports.
 
 Imports are read with `ast`, at module level and inside functions (a function-level
-import is still a dependency). Each module has a stage (README, "How the code is laid
-out"); a module may import only modules of its own or an earlier stage.
+import is still a dependency). Each module has a stage (DEVELOPERS.md, "Architecture");
+a module may import only modules of its own or an earlier stage.
 """
 
 from __future__ import annotations
