@@ -12,6 +12,7 @@ on a worker holding its copy.
 
 from __future__ import annotations
 
+import abc
 import contextlib
 import os
 import signal
@@ -120,15 +121,18 @@ def _run_task(token: int, fn: Callable, index: int, task: Any) -> tuple[int, Any
     return index, fn(_SHARED[token], task)
 
 
-class Executor:
-    """Base class: run tasks against shared data, yielding (task index, result)."""
+class Executor(abc.ABC):
+    """The seam where work fans out: run tasks against shared data, yielding (task index,
+    result) as they finish. Implementations: `SerialExecutor`, `LocalExecutor`,
+    `DaskExecutor`."""
 
     workers: int = 1
 
+    @abc.abstractmethod
     def run(self, fn: Callable, shared: Any, tasks: list) -> Iterator[tuple[int, Any]]:
-        raise NotImplementedError
+        """Yield ``(i, fn(shared, tasks[i]))`` for every task, in any order."""
 
-    def close(self) -> None:
+    def close(self) -> None:  # noqa: B027 (a no-op default: not every executor has workers)
         """Release workers (a no-op where there are none)."""
 
     def __enter__(self) -> Executor:

@@ -8,6 +8,7 @@ extending `reader_for`.
 
 from __future__ import annotations
 
+import abc
 import csv
 import gzip
 import hashlib
@@ -27,8 +28,9 @@ _SCAN_BLOCK = 1 << 22
 _MAX_LINE = 1 << 24  # a "row" longer than 16 MB is not a row of hourly figures
 
 
-class HistoryReader:
-    """Base class: read the rows of one history source in chunks.
+class HistoryReader(abc.ABC):
+    """The data-source seam: read the rows of one history source in chunks
+    (`CsvReader`, `ParquetReader`, `SqlReader`; `reader_for` picks one).
 
     Attributes
     ----------
@@ -44,16 +46,16 @@ class HistoryReader:
     def __init__(self, source: HistorySource):
         self.source = source
 
+    @abc.abstractmethod
     def read(self, source: HistorySource, columns: Sequence[str]) -> Iterator[pd.DataFrame]:
         """Yield consecutive chunks holding exactly `columns` (in that order).
 
         Raises `InputError` when the source is missing, unreadable, empty or lacks a column.
         """
-        raise NotImplementedError
 
+    @abc.abstractmethod
     def digest(self) -> str:
         """SHA-256 (hex) of what `read` read; valid once `read` is exhausted."""
-        raise NotImplementedError
 
     def missing(self, present: Sequence[str], columns: Sequence[str]) -> None:
         """Raise for the first of `columns` not in `present`.
