@@ -510,6 +510,10 @@ def _stop_handler(command: str) -> Callable[[int, Any], None]:
     stopping: list[int] = []
 
     def handler(signum: int, frame: Any) -> None:
+        from calibrate.executors import defer_stop
+
+        if not stopping and defer_stop(signum):
+            return  # delivered again once the workers being started are up
         if stopping:
             _say_stopped(command, signum)
             os._exit(EXIT_CODES[signum])

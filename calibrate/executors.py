@@ -42,6 +42,35 @@ def _init_worker(token: int, shared: Any, caller_alive: Connection) -> None:
     single_thread_worker()
 
 
+# Ctrl-C or SIGTERM while a worker is being started would cut the data the fork server
+# hands it half-way (the worker then dies with a traceback of its own); a stop handler
+# asks `defer_stop` first, and a stop that arrives meanwhile is delivered right after
+_starting = 0
+_deferred: list[int] = []
+
+
+def defer_stop(signum: int) -> bool:
+    """For a stop handler: True when workers are being started; the signal is then
+    delivered again as soon as they are."""
+    if _starting:
+        _deferred.append(signum)
+        return True
+    return False
+
+
+@contextlib.contextmanager
+def _starting_workers() -> Iterator[None]:
+    global _starting
+    _starting += 1
+    try:
+        yield
+    finally:
+        _starting -= 1
+        if not _starting and _deferred:
+            os.kill(os.getpid(), _deferred.pop(0))
+            _deferred.clear()
+
+
 def _start_fork_server() -> None:
     """Start the fork server (once per process) with Ctrl-C ignored.
 
@@ -121,6 +150,18 @@ def _run_task(token: int, fn: Callable, index: int, task: Any) -> tuple[int, Any
     return index, fn(_SHARED[token], task)
 
 
+# the resource tracker's note when a stopped run (Ctrl-C, SIGTERM) left a pool's semaphore
+# for it to unlink: it does unlink it, so the note is noise after the one-line message
+TRACKER_NOTE = "ignore:resource_tracker:UserWarning"
+
+
+def _quiet_resource_tracker() -> None:
+    """Pass `TRACKER_NOTE` to the resource tracker process, which multiprocessing starts
+    with this interpreter's warning options (it is started with the first pool)."""
+    if TRACKER_NOTE not in sys.warnoptions:
+        sys.warnoptions.append(TRACKER_NOTE)
+
+
 class Executor(abc.ABC):
     """The seam where work fans out: run tasks against shared data, yielding (task index,
     result) as they finish. Implementations: `SerialExecutor`, `LocalExecutor`,
@@ -166,6 +207,7 @@ class LocalExecutor(Executor):
             self.close()
             self._shared = shared
             context = get_context("forkserver")
+            _quiet_resource_tracker()
             _start_fork_server()
             self._caller_alive = context.Pipe(duplex=False)  # (read end, write end)
             self._pool = ProcessPoolExecutor(
@@ -181,10 +223,11 @@ class LocalExecutor(Executor):
         if self.workers <= 1 or len(tasks) <= 1:
             yield from SerialExecutor().run(fn, shared, tasks)
             return
-        pool = self._pool_for(shared)
-        with _script_not_rerun(fn):  # workers start on the first submits
-            futures = [pool.submit(_run_task, self._token, fn, i, t)
-                       for i, t in enumerate(tasks)]
+        with _starting_workers():
+            pool = self._pool_for(shared)
+            with _script_not_rerun(fn):  # workers start on the first submits
+                futures = [pool.submit(_run_task, self._token, fn, i, t)
+                           for i, t in enumerate(tasks)]
         try:
             for fut in as_completed(futures):
                 yield fut.result()
