@@ -83,3 +83,48 @@ def add_runs_flag(parser: argparse.ArgumentParser) -> None:
 
     parser.add_argument("--runs", type=at_least_three, default=RUNS,
                         help=f"repeats of every measurement (at least {RUNS}; default {RUNS})")
+
+
+class PeakRSS:
+    """Peak resident memory while the `with` block runs, sampled every `every` seconds in
+    a thread: of this process (`self_peak`), of its largest child process (`child_peak`)
+    and of the sum of both and every other child (`total_peak`; pages shared between
+    processes are counted once per process). Bytes."""
+
+    def __init__(self, every: float = 0.05):
+        import threading
+
+        self.every = every
+        self.self_peak = self.child_peak = self.total_peak = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, daemon=True)
+
+    def sample(self) -> None:
+        import psutil
+
+        me = psutil.Process()
+        own = me.memory_info().rss
+        children = []
+        for child in me.children(recursive=True):
+            try:
+                children.append(child.memory_info().rss)
+            except psutil.Error:
+                pass
+        self.self_peak = max(self.self_peak, own)
+        self.child_peak = max(self.child_peak, max(children, default=0))
+        self.total_peak = max(self.total_peak, own + sum(children))
+
+    def _loop(self) -> None:
+        while not self._stop.is_set():
+            self.sample()
+            time.sleep(self.every)
+
+    def __enter__(self) -> PeakRSS:
+        self.sample()
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.sample()
