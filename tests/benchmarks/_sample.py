@@ -14,6 +14,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLE = ROOT / "sample_data" / "workspace.toml"
+_told: list[bool] = []  # the note is printed once per process
 _SHARED_RANGE = re.compile(r"^min_impact\s*=\s*\{[^}\n]*\}[ \t]*\n", re.MULTILINE)
 
 
@@ -37,7 +38,8 @@ def sample_copy(folder: Path, text: str | None = None) -> Path:
     shutil.copytree(SAMPLE.parent, ws)
     fixed, removed = without_shared_impact_range(
         text if text is not None else SAMPLE.read_text(encoding="utf-8"))
-    if removed:
+    if removed and not _told:
+        _told.append(True)
         print("note: dropped the sample's shared [search] min_impact range (one range for "
               "several metrics is refused); each metric is solved from 0 to its typical level")
     (ws / "workspace.toml").write_text(fixed, encoding="utf-8")
