@@ -1,12 +1,18 @@
 """The Python API: everything the CLI does, as functions over a `Session`.
 
 A `Session` is one workspace with its history, owners routing and incidents
-loaded once. Typical use::
+loaded once. Typical use, also as a saved script without an
+``if __name__ == "__main__":`` guard (the local engine's workers never run the
+calling script)::
 
-    from calibrate.api import open_session, replay_session, score_episodes
+    from calibrate.api import alert_volume, open_session, replay_session, score_episodes
+
     ses = open_session("sample_data")
-    result = replay_session(ses)
+    result = replay_session(ses, progress=False)
     figs = score_episodes(ses, result.episodes)
+    print(figs.per_team[["alerts", "alerts_per_analyst_day"]])
+
+(the README's "From Python" example, shortened).
 """
 
 from __future__ import annotations
@@ -158,10 +164,43 @@ def replay_session(
 
 
 def first_scored_hour(config: DetectorConfig, ws: Workspace) -> int:
-    """First hour every series is replayed at (the longest decomposition window)."""
-    windows = [config.base.decomposition_window_hours]
-    windows += [g.settings.decomposition_window_hours for g in config.groups]
-    return max(windows) - 1
+    """First hour every series is scored at: the latest `first_scored_hour` of the
+    settings in `config` (L - 1 with ``expected_value = "fit"``, L + W with
+    ``"forecast"``)."""
+    settings = [config.base, *(g.settings for g in config.groups)]
+    return max(s.first_scored_hour for s in settings)
+
+
+def scored_period(
+    ses: Session, start_hour: int | None = None, end_hour: int | None = None,
+    first_scored: int | None = None,
+) -> tuple[int, int]:
+    """The hours ``[start, end)`` alerts are counted over: from the first scored hour
+    (`first_scored`, default: that of the workspace's `[detector]`, `first_scored_hour`)
+    or `start_hour` if later, to `end_hour` (default: the end of the history).
+
+    "Alerts per analyst per day" divides by these days only, in `score`, `volume` and
+    the report alike: no alert can be raised during the warm-up before the first scored
+    hour, so counting those days would dilute the rate. Raises `InputError` when the
+    period holds no scored hour.
+    """
+    n = ses.history.n_hours
+    if first_scored is None:
+        first_scored = first_scored_hour(ses.ws.detector, ses.ws)
+    start = max(0 if start_hour is None else start_hour, first_scored)
+    end = n if end_hour is None else end_hour
+    if end <= start:
+        hours = ses.history.hours
+        if first_scored >= n:
+            what = (f"the first scored hour (hour {first_scored}, after the decomposition "
+                    f"window's warm-up) is past the end of the history ({n} hours): nothing "
+                    "can be scored; shorten the window or load more history")
+        else:
+            what = (f"the period ends before the first scored hour "
+                    f"{hours[first_scored]:%Y-%m-%dT%H:%MZ} (the decomposition window's "
+                    "warm-up): nothing can be scored; give a later --to")
+        raise InputError("--from/--to", what)
+    return start, end
 
 
 def score_episodes(
@@ -174,19 +213,20 @@ def score_episodes(
 ) -> Figures:
     """Figures for alert episodes against the session's incidents over a period.
 
-    Incidents of the period that begin before `first_scored` (default: the first hour
-    the workspace's `[detector]` settings score, `first_scored_hour`) can never be
-    caught: they are listed apart and left out of recall.
+    Alerts, incidents and days count from the first scored hour (`first_scored`,
+    default that of the workspace's `[detector]` settings; see `scored_period`).
+    Incidents of the period that begin before it can never be caught: they are listed
+    apart and left out of recall.
     """
     if ses.incidents is None:
         raise InputError(str(ses.ws.file), "no [incidents] path: nothing to score against")
-    start = 0 if start_hour is None else start_hour
-    end = ses.history.n_hours if end_hour is None else end_hour
     if first_scored is None:
         first_scored = first_scored_hour(ses.ws.detector, ses.ws)
-    eps = period_filter(episodes, start, end)
-    inc = period_filter(ses.incidents, max(start, first_scored), end)
-    unscorable = period_filter(ses.incidents, start, max(start, min(first_scored, end)))
+    start = 0 if start_hour is None else start_hour
+    scored, end = scored_period(ses, start_hour, end_hour, first_scored)
+    eps = period_filter(episodes, scored, end)
+    inc = period_filter(ses.incidents, scored, end)
+    unscorable = period_filter(ses.incidents, min(start, scored), scored)
     m = match(
         eps,
         inc,
@@ -194,17 +234,34 @@ def score_episodes(
         ses.ws.incidents.late_hours,
         related=ses.history if related else None,
     )
-    n_days = max(end - start, 1) / 24.0
+    n_days = (end - scored) / 24.0
     return figures(m, eps, inc, ses.analysts, n_days, goal=ses.ws.goal, unscorable=unscorable,
-                   start_hour=start, seed=ses.ws.search.seed)
+                   start_hour=scored, seed=ses.ws.search.seed)
 
 
 def alert_volume(
-    ses: Session, episodes, start_hour: int | None = None, end_hour: int | None = None
+    ses: Session, episodes, start_hour: int | None = None, end_hour: int | None = None,
+    first_scored: int | None = None,
 ) -> pd.DataFrame:
-    """Alerts per team per ISO week and per analyst per day, against the budget."""
-    start = 0 if start_hour is None else start_hour
-    end = ses.history.n_hours if end_hour is None else end_hour
-    if end <= start:
+    """Alerts per team per ISO week and per analyst per day, against the budget, over
+    the scored period (`scored_period`: from the first scored hour on)."""
+    if end_hour is not None and end_hour <= (start_hour or 0):
         raise InputError("--from/--to", "the period is empty")
+    start, end = scored_period(ses, start_hour, end_hour, first_scored)
     return volume(episodes, ses.analysts, ses.history.hours, start, end, goal=ses.ws.goal)
+
+
+def volume_per_team(table: pd.DataFrame) -> pd.DataFrame:
+    """One row per team of an `alert_volume` table over its whole period: alerts, days,
+    analysts and alerts per analyst per day (all alerts over all days, not a mean of
+    the weekly rates, which would weigh a partial week like a whole one)."""
+    g = table.groupby("team", sort=False)
+    hours = (table["days"] * 24).round().groupby(table["team"], sort=False).sum()
+    out = pd.DataFrame({"alerts": g["alerts"].sum(), "days": hours / 24.0,
+                        "analysts": g["analysts"].first()})
+    denom = out["analysts"] * out["days"]
+    out["alerts_per_analyst_day"] = (out["alerts"] / denom.where(denom > 0)).astype(float)
+    if "budget" in table.columns:
+        out["budget"] = g["budget"].first()
+        out["over_budget"] = out["alerts_per_analyst_day"] > out["budget"]
+    return out

@@ -1,15 +1,17 @@
 """`calibrate` command line: parse arguments, call the API, map errors to exit codes.
 
 Every command is one function `cmd_NAME(args) -> int`; expected errors
-(`CalibrationError`) print one line on stderr and exit 1, never a traceback.
-Ctrl-C (SIGINT) and SIGTERM stop a command the same way, cleaning up on the way
-out, with one line and exit 130 or 143.
+(`CalibrationError`) print one line on stderr and exit 1, never a traceback
+(`UsageError` exits 2, as argparse does; a tune meeting no goal exits 3: see
+`calibrate.errors`). Ctrl-C (SIGINT) and SIGTERM stop a command the same way,
+cleaning up on the way out, with one line and exit 130 or 143.
 """
 
 from __future__ import annotations
 
 import argparse
 import errno
+import importlib.metadata
 import json
 import logging
 import os
@@ -20,7 +22,8 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from calibrate.errors import CalibrationError
+from calibrate import errors
+from calibrate.errors import CalibrationError, UsageError
 
 
 def _engine_args(p: argparse.ArgumentParser) -> None:
@@ -28,24 +31,31 @@ def _engine_args(p: argparse.ArgumentParser) -> None:
         "--engine",
         choices=("local", "serial", "dask"),
         default="local",
-        help="where decompositions run (default: processes on this machine)",
+        help="where decompositions run: worker processes on this machine, this process "
+        "only, or a Dask cluster (default: local)",
     )
-    p.add_argument("--workers", type=int, default=None, help="worker processes (default: cores)")
+    p.add_argument("--workers", type=int, default=None,
+                   help="worker processes (default: one per core)")
     p.add_argument(
         "--scheduler",
         default=None,
-        help="Dask scheduler address for --engine dask (default: a local cluster)",
+        help="Dask scheduler address for --engine dask (default: start a local cluster)",
     )
 
 
 def _subset_args(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--levels", nargs="+", default=None, help="replay only these levels")
-    p.add_argument("--metrics", nargs="+", default=None, help="replay only these metrics")
+    p.add_argument("--levels", nargs="+", default=None,
+                   help="replay only these levels (default: every level)")
+    p.add_argument("--metrics", nargs="+", default=None,
+                   help="replay only these metrics (default: every watched metric)")
 
 
 def _period_args(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--from", dest="start", default=None, help="first day/hour (ISO-8601, UTC)")
-    p.add_argument("--to", dest="end", default=None, help="end day/hour, exclusive (ISO-8601)")
+    p.add_argument("--from", dest="start", default=None,
+                   help="first day or hour, ISO-8601, UTC (default: the first scored hour; "
+                   "an earlier one is moved to it)")
+    p.add_argument("--to", dest="end", default=None,
+                   help="end day or hour, exclusive, ISO-8601 (default: the end of the history)")
 
 
 def _force_arg(p: argparse.ArgumentParser, what: str) -> None:
@@ -53,119 +63,202 @@ def _force_arg(p: argparse.ArgumentParser, what: str) -> None:
                    help=f"replace {what} (default: refuse to write over anything)")
 
 
+def _workspace_arg(p: argparse.ArgumentParser) -> None:
+    p.add_argument("workspace", help="workspace folder, or its workspace.toml")
+
+
+QUIET_HELP = ("no progress bars or informational log messages on stderr; results, "
+              "warnings and errors still print (default: show them)")
+
+EXAMPLES = {
+    "check": ["calibrate check sample_data"],
+    "replay": ["calibrate replay sample_data --out alerts.csv",
+               "calibrate replay sample_data --config tuned.toml --out alerts.csv "
+               "--scores scores.parquet"],
+    "score": ["calibrate score sample_data --alerts alerts.csv --json figures.json",
+              "calibrate score sample_data --alerts alerts.csv --from 2026-04-06 --to 2026-05-04"],
+    "volume": ["calibrate volume sample_data --config tuned.toml --csv volume.csv",
+               "calibrate volume sample_data --alerts alerts.csv"],
+    "tune": ["calibrate tune sample_data --out tuned.toml --report reports/first --trials 100",
+             "calibrate tune sample_data --out tuned.toml --storage study.journal "
+             "--max-miss-rate 0.2"],
+    "report": ["calibrate report sample_data --config tuned.toml --out reports/tuned",
+               "calibrate report sample_data --study --out reports/so-far"],
+    "retune": ["calibrate retune sample_data --verdicts reviewed.csv --previous tuned.toml "
+               "--out tuned-v2.toml --report reports/v2"],
+    "review": ["calibrate review sample_data --config tuned.toml --verdicts reviewed.csv "
+               "--incidents-out added-incidents.csv"],
+    "demo": ["calibrate demo --out demo-output --force"],
+}
+
+
+def _command(sub, name: str, help: str) -> argparse.ArgumentParser:
+    """A sub-command whose help ends with examples; it takes --quiet too."""
+    lines = "\n".join(f"  {e}" for e in EXAMPLES[name])
+    p = sub.add_parser(name, help=help, description=help[0].upper() + help[1:] + ".",
+                       epilog=f"example{'s' if len(EXAMPLES[name]) > 1 else ''}:\n{lines}",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    # SUPPRESS: absent here, the global flag's value stands
+    p.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
+                   help=QUIET_HELP)
+    return p
+
+
+def _version() -> str:
+    try:
+        return importlib.metadata.version("calibrate")
+    except importlib.metadata.PackageNotFoundError:  # run from a source tree
+        return "unknown (not installed)"
+
+
 def build_parser() -> argparse.ArgumentParser:
     ap = argparse.ArgumentParser(
         prog="calibrate",
         description="Calibrate STL + Tukey-fence alert thresholds against known incidents.",
+        epilog="exit codes:\n  0    done\n  1    bad input, or a file that cannot be "
+        "written\n  2    usage error (options)\n  3    tune: no setting meets the goal\n"
+        "  130  interrupted (Ctrl-C)\n  143  terminated (SIGTERM)\n\n"
+        "examples:\n  calibrate demo\n  calibrate COMMAND --help",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    sub = ap.add_subparsers(dest="command", required=True)
+    ap.add_argument("--version", action="version", version=f"calibrate {_version()}",
+                    help="print the version and exit")
+    ap.add_argument("-q", "--quiet", action="store_true", default=False, help=QUIET_HELP)
+    sub = ap.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    p = sub.add_parser("check", help="validate a workspace and summarise its data")
-    p.add_argument("workspace")
+    p = _command(sub, "check", "validate a workspace and summarise its data")
+    _workspace_arg(p)
 
-    p = sub.add_parser("replay", help="replay history hour by hour and write the alerts")
-    p.add_argument("workspace")
+    p = _command(sub, "replay", "replay history hour by hour and write the alerts")
+    _workspace_arg(p)
     p.add_argument(
-        "--config", default=None, help="tuned config (default: the workspace's [detector])"
+        "--config", default=None,
+        help="tuned config to replay (default: the workspace's [detector] settings)"
     )
-    p.add_argument("--out", required=True, help="alerts file (.csv)")
-    p.add_argument("--scores", default=None, help="per-hour scores file (.parquet or .csv)")
+    p.add_argument("--out", required=True, help="alerts file, .csv or .csv.gz (required)")
+    p.add_argument("--scores", default=None,
+                   help="also write the per-hour scores here, .parquet, .csv or .csv.gz "
+                   "(default: not written)")
     _force_arg(p, "existing --out and --scores files")
     _subset_args(p)
     _engine_args(p)
 
-    p = sub.add_parser("score", help="score an alerts file against the incidents")
-    p.add_argument("workspace")
-    p.add_argument("--alerts", required=True)
-    p.add_argument("--json", default=None, help="write the figures as JSON here")
+    p = _command(sub, "score", "score an alerts file against the incidents")
+    _workspace_arg(p)
+    p.add_argument("--alerts", required=True,
+                   help="alerts file written by `calibrate replay` (required)")
+    p.add_argument("--json", default=None,
+                   help="also write the figures as JSON here (default: not written)")
     _force_arg(p, "an existing --json file")
     p.add_argument(
         "--related",
         action="store_true",
-        help="also credit alerts on ancestor/descendant series (shown separately)",
+        help="also credit alerts on ancestor/descendant series, shown separately "
+        "(default: same series only)",
     )
     _period_args(p)
 
-    p = sub.add_parser("volume", help="alerts per team per week and per analyst per day")
-    p.add_argument("workspace")
-    p.add_argument("--config", default=None, help="config to replay (default: [detector])")
-    p.add_argument("--alerts", default=None, help="count an existing alerts file instead")
-    p.add_argument("--csv", default=None, help="write the table here")
+    p = _command(sub, "volume", "alerts per team per week and per analyst per day")
+    _workspace_arg(p)
+    p.add_argument("--config", default=None,
+                   help="tuned config to replay, or that an --alerts file came from "
+                   "(default: the workspace's [detector] settings)")
+    p.add_argument("--alerts", default=None,
+                   help="count an existing alerts file instead of replaying (default: replay)")
+    p.add_argument("--csv", default=None,
+                   help="also write the table here (default: not written)")
     _force_arg(p, "an existing --csv file")
     _period_args(p)
     _engine_args(p)
 
-    p = sub.add_parser("tune", help="search settings for the least alerts meeting the goal")
-    p.add_argument("workspace")
-    p.add_argument("--out", required=True, help="tuned config to write (.toml)")
-    p.add_argument("--report", default=None, help="report folder (e.g. reports/NAME)")
-    p.add_argument("--trials", type=int, default=None, help="trial budget of the study")
+    p = _command(sub, "tune", "search settings for the least alerts meeting the goal")
+    _workspace_arg(p)
+    p.add_argument("--out", required=True, help="tuned config to write, .toml (required)")
+    p.add_argument("--report", default=None,
+                   help="also write the report into this folder, e.g. reports/NAME "
+                   "(default: no report)")
+    p.add_argument("--trials", type=int, default=None,
+                   help="trial budget of the whole study (default: [search] trials, else 60)")
     p.add_argument(
         "--storage",
         default=None,
-        help="Optuna storage URL or journal file (default: a file in the workspace)",
+        help="Optuna storage URL or journal file "
+        "(default: .calibrate/study.journal in the workspace)",
     )
-    p.add_argument("--study", default=None, help="study name (default: derived from the inputs)")
-    p.add_argument("--max-miss-rate", type=float, default=None, help="override [goal]")
+    p.add_argument("--study", default=None,
+                   help="study name (default: derived from the workspace's inputs and goal)")
+    p.add_argument("--max-miss-rate", type=float, default=None,
+                   help="target miss rate, 0 to 1 (default: [goal] max_miss_rate)")
     p.add_argument(
         "--max-alerts-per-analyst-day",
         type=float,
         default=None,
-        help="override [goal] for every team",
+        help="alert budget of every team (default: [goal] max_alerts_per_analyst_day)",
     )
     _force_arg(p, "an existing --out file and this tool's files in an existing --report "
                   "folder (other files there are kept)")
     _engine_args(p)
 
-    p = sub.add_parser("report", help="write the calibration report for a config or a study")
-    p.add_argument("workspace")
-    p.add_argument("--config", default=None, help="tuned config to report on")
+    p = _command(sub, "report", "write the calibration report for a config or a study")
+    _workspace_arg(p)
+    p.add_argument("--config", default=None,
+                   help="tuned config to report on (default: none; give this or --study)")
     p.add_argument(
         "--study", nargs="?", const="", default=None, metavar="NAME",
-        help="report on a study's best trial so far, running no trial (NAME: default the "
-        "one `calibrate tune` derives from the workspace)")
+        help="report on a study's best trial so far, running no trial (give this or "
+        "--config; NAME default: the one `calibrate tune` derives from the workspace)")
     p.add_argument("--storage", default=None,
-                   help="the study's Optuna storage URL or journal file (with --study)")
-    p.add_argument("--out", required=True, help="report folder")
+                   help="the study's Optuna storage URL or journal file, with --study "
+                   "(default: .calibrate/study.journal in the workspace)")
+    p.add_argument("--out", required=True, help="report folder (required)")
     _force_arg(p, "this tool's files in an existing --out folder (other files there are kept)")
     _engine_args(p)
 
-    p = sub.add_parser("retune", help="merge analysts' verdicts and tune again")
-    p.add_argument("workspace")
-    p.add_argument("--verdicts", required=True, help="reviewed alerts file (verdict column)")
-    p.add_argument("--previous", default=None, help="previous tuned config (warm start)")
+    p = _command(sub, "retune", "merge analysts' verdicts and tune again")
+    _workspace_arg(p)
+    p.add_argument("--verdicts", required=True,
+                   help="reviewed alerts file with a verdict column (required)")
+    p.add_argument("--previous", default=None,
+                   help="tuned config the reviewed alerts came from, warm-started from "
+                   "(default: the workspace's [detector] settings)")
     p.add_argument("--added-incidents", default=None,
                    help="incidents added in `calibrate review` (its --incidents-out file), "
-                        "merged into the labels")
-    p.add_argument("--out", required=True)
-    p.add_argument("--report", default=None)
-    p.add_argument("--trials", type=int, default=None)
+                        "merged into the labels (default: none)")
+    p.add_argument("--out", required=True, help="new tuned config to write, .toml (required)")
+    p.add_argument("--report", default=None,
+                   help="comparison report folder (default: no report)")
+    p.add_argument("--trials", type=int, default=None,
+                   help="trial budget of the new study (default: [search] trials, else 60)")
     _force_arg(p, "existing --out, merged incidents, known false alarms and this tool's files "
                   "in the report folder")
     _engine_args(p)
 
-    p = sub.add_parser("review", help="review alerts and label incidents in the browser")
-    p.add_argument("workspace")
+    p = _command(sub, "review", "review alerts and label incidents in the browser")
+    _workspace_arg(p)
     p.add_argument("--config", default=None,
                    help="tuned config whose alerts to review (default: the workspace's "
                         "[detector]); the plots show its replay")
     p.add_argument("--alerts", default=None,
-                   help="review only the alerts of this file (from a replay of --config)")
+                   help="review only the alerts of this file, from a replay of --config "
+                        "(default: every alert of the replay)")
     p.add_argument("--verdicts", required=True,
                    help="verdicts file (.csv) the page saves to, in the format "
-                        "`retune --verdicts` reads; an existing one is resumed")
+                        "`retune --verdicts` reads; an existing one is resumed (required)")
     p.add_argument("--incidents-out", default=None,
                    help="incidents file (.csv) for incidents added on the page (never the "
-                        "workspace's own incidents file)")
+                        "workspace's own incidents file; default: none)")
     p.add_argument("--port", type=int, default=0, help="port (default: a free one)")
     p.add_argument("--host", default="127.0.0.1",
                    help="address to listen on (default 127.0.0.1: this machine only)")
-    p.add_argument("--no-browser", action="store_true", help="do not open a browser")
+    p.add_argument("--no-browser", action="store_true",
+                   help="do not open a browser (default: open one)")
     _engine_args(p)
 
-    p = sub.add_parser("demo", help="run the whole job on the bundled sample data")
-    p.add_argument("--out", default="demo-output", help="folder for the demo's outputs")
-    p.add_argument("--trials", type=int, default=None)
+    p = _command(sub, "demo", "run the whole job on the bundled sample data")
+    p.add_argument("--out", default="demo-output",
+                   help="folder for the demo's outputs (default: demo-output)")
+    p.add_argument("--trials", type=int, default=None,
+                   help="trial budget of the tune (default: the sample's [search] trials, 40)")
     _force_arg(p, "the demo's own files in an existing --out folder (other files are kept)")
     _engine_args(p)
     return ap
@@ -183,9 +276,18 @@ def cmd_check(args) -> int:
 
 def cmd_replay(args) -> int:
     from calibrate import api
-    from calibrate.outputs import check_outputs, load_config, write_table
+    from calibrate.outputs import (
+        check_outputs,
+        load_config,
+        table_format,
+        write_table,
+        write_table_blocks,
+    )
 
     check_outputs((args.out, args.scores), args.force)
+    for path in (args.out, args.scores):
+        if path:
+            table_format(path)  # a format we cannot write is refused before the replay
     ses = api.open_session(args.workspace, incidents=False)
     config = load_config(args.config) if args.config else ses.ws.detector
     result = api.replay_session(
@@ -197,12 +299,14 @@ def cmd_replay(args) -> int:
         engine=args.engine,
         workers=args.workers,
         scheduler=args.scheduler,
+        progress=not args.quiet,
     )
     alerts = result.alerts_frame()
     write_table(Path(args.out), alerts, force=args.force)
     print(f"{len(alerts)} alerts written to {args.out}")
     if args.scores:
-        write_table(Path(args.scores), result.scores_frame(), force=args.force)
+        # block by block: the whole table would not fit in memory for a large history
+        write_table_blocks(Path(args.scores), result.score_blocks(), force=args.force)
         print(f"per-hour scores written to {args.scores}")
     return 0
 
@@ -213,6 +317,21 @@ def _period(ses, args) -> tuple[int, int]:
     if end <= start:
         raise CalibrationError("--from/--to: the period is empty")
     return start, end
+
+
+def _scored_lines(ses, eps, start: int, end: int, first: int) -> list[str]:
+    """Where the counts start (the first scored hour, or --from if later), and the
+    alerts of the period left out because they come before it."""
+    from calibrate import api
+
+    scored, _ = api.scored_period(ses, start, end, first)
+    when = f"{ses.history.hours[scored]:%Y-%m-%dT%H:%MZ}"
+    lines = [f"counted from {when}: the first scored hour (no alert can be raised during "
+             "the decomposition window's warm-up before it), or --from if later"]
+    early = int(((eps.start >= start) & (eps.start < scored)).sum())
+    if early:
+        lines.append(f"note: {early} alert(s) of the file start before {when}: not counted")
+    return lines
 
 
 def cmd_score(args) -> int:
@@ -230,9 +349,10 @@ def cmd_score(args) -> int:
     eps = episodes_from_alerts_frame(read_text_csv(path), ses.ws, ses.history, str(path))
     eps = route_teams(eps, ses.routes)
     start, end = _period(ses, args)
-    figs = api.score_episodes(ses, eps, start, end, related=args.related)
+    first = api.first_scored_hour(ses.ws.detector, ses.ws)
+    figs = api.score_episodes(ses, eps, start, end, related=args.related, first_scored=first)
     data = figs.to_json_dict()
-    for line in format_figures(data):
+    for line in [*_scored_lines(ses, eps, start, end, first), *format_figures(data)]:
         print(line)
     if args.json:
         write_text(Path(args.json), json.dumps(data, indent=2, default=str), force=args.force)
@@ -286,54 +406,62 @@ def cmd_volume(args) -> int:
 
     check_outputs((args.csv,), args.force)
     ses = api.open_session(args.workspace, incidents=False)
+    config = load_config(args.config) if args.config else ses.ws.detector
     if args.alerts:
+        # the file's alerts count from the first scored hour of the config they came from
+        api.require_replayable(ses, config, args.config)
         path = Path(args.alerts)
         if not path.is_file():
             raise CalibrationError(f"{path}: no such alerts file")
         eps = episodes_from_alerts_frame(read_text_csv(path), ses.ws, ses.history, str(path))
         eps = route_teams(eps, ses.routes)
     else:
-        config = load_config(args.config) if args.config else ses.ws.detector
         eps = api.replay_session(
             ses, config, config_name=args.config, engine=args.engine, workers=args.workers,
-            scheduler=args.scheduler,
+            scheduler=args.scheduler, progress=not args.quiet,
         ).episodes
     start, end = _period(ses, args)
-    if not args.alerts:
-        first = api.first_scored_hour(config, ses.ws)
-        when = ses.history.hours[min(first, ses.history.n_hours - 1)]
-        print(f"first scored hour: {when:%Y-%m-%dT%H:%MZ} (no alert can be raised during "
-              "the decomposition window's warm-up before it)")
-    table = api.alert_volume(ses, eps, start, end)
+    first = api.first_scored_hour(config, ses.ws)
+    for line in _scored_lines(ses, eps, start, end, first):
+        print(line)
+    table = api.alert_volume(ses, eps, start, end, first_scored=first)
     with_budget = "budget" in table.columns
     print(
         f"{'team':<16}{'week':<10}{'alerts':>7}{'per analyst-day':>17}"
         + (f"{'budget':>8}" if with_budget else "")
     )
-    for row in table.itertuples(index=False):
-        line = f"{row.team:<16}{row.week:<10}{row.alerts:>7}{row.alerts_per_analyst_day:>17.2f}"
+
+    def row_line(team, week, alerts, rate, budget=None, over=False) -> str:
+        line = f"{team:<16}{week:<10}{alerts:>7}{rate:>17.2f}"
         if with_budget:
-            line += f"{row.budget:>8g}" + ("  over budget" if row.over_budget else "")
-        print(line)
+            line += f"{budget:>8g}" + ("  over budget" if over else "")
+        return line
+
+    for row in table.itertuples(index=False):
+        print(row_line(row.team, row.week, row.alerts, row.alerts_per_analyst_day,
+                       getattr(row, "budget", None), getattr(row, "over_budget", False)))
+    for team, row in api.volume_per_team(table).iterrows():
+        print(row_line(team, "all", int(row["alerts"]), row["alerts_per_analyst_day"],
+                       row.get("budget"), bool(row.get("over_budget", False))))
     if args.csv:
         write_table(Path(args.csv), table, force=args.force)
     return 0
 
 
 def cmd_tune(args) -> int:
-    from calibrate.search import cli_tune
+    from calibrate.commands import cli_tune
 
     return cli_tune(args)
 
 
 def cmd_report(args) -> int:
-    from calibrate.report import cli_report
+    from calibrate.commands import cli_report
 
     return cli_report(args)
 
 
 def cmd_retune(args) -> int:
-    from calibrate.retune import cli_retune
+    from calibrate.commands import cli_retune
 
     return cli_retune(args)
 
@@ -401,14 +529,19 @@ def main(argv: list[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     previous = {}
     logging_off = logging.root.manager.disable
+    if args.quiet:
+        logging.disable(max(logging_off, logging.INFO))
     if threading.current_thread() is threading.main_thread():
         handler = _stop_handler(args.command)
         previous = {sig: signal.signal(sig, handler) for sig in EXIT_CODES}
     try:
         return COMMANDS[args.command](args)
+    except UsageError as exc:
+        print(f"calibrate {args.command}: {exc}", file=sys.stderr)
+        return errors.USAGE
     except CalibrationError as exc:
         print(f"calibrate {args.command}: {exc}", file=sys.stderr)
-        return 1
+        return errors.BAD_INPUT
     except OSError as exc:
         # a full disk or a read-only folder met outside the writers that say so themselves
         if exc.errno not in (errno.ENOSPC, errno.EDQUOT, errno.EROFS):
@@ -417,7 +550,7 @@ def main(argv: list[str] | None = None) -> int:
 
         print(f"calibrate {args.command}: {os_error(exc.filename or 'a file', exc)}",
               file=sys.stderr)
-        return 1
+        return errors.BAD_INPUT
     except KeyboardInterrupt as exc:
         signum = signal.SIGTERM if isinstance(exc, Terminated) else signal.SIGINT
         _say_stopped(args.command, signum)

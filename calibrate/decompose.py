@@ -127,6 +127,8 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
         Every fence window W to compute quartiles for (each < L).
     """
     y = np.asarray(y, dtype=np.float64)
+    if s.expected_value == "forecast":
+        return _forecast_stream(y, s, fence_windows)
     n = len(y)
     L, h = s.decomposition_window_hours, s.refit_every_hours
     wmax = max(fence_windows)
@@ -140,19 +142,7 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
         return Stream(expected, remainder, q1, q3)
     valid = ~np.isnan(y)
     refits = np.arange(L - 1, n, h)
-    starts = refits - (L - 1)
-    # fancy indexing copies: `windows` is a fresh C-contiguous array, safe to fill in place
-    windows = sliding_window_view(y, L)[starts]
-    missing = np.concatenate(([0], np.cumsum(~valid)))
-    bad = missing[starts + L] > missing[starts]
-    usable = np.ones(len(refits), dtype=bool)
-    for i in np.flatnonzero(bad):
-        filled = _fill_window(windows[i])
-        if filled is None:
-            usable[i] = False
-            windows[i] = 0.0
-        else:
-            windows[i] = filled
+    windows, usable = _windows(y, valid, refits, L)
     trend_last, seas, resid = _fit_windows(windows, s, tail)
     # stream[j, c]: the remainder the detector holds for hour t_j - wmax + c
     hours = np.arange(L - 1, n)
@@ -191,6 +181,82 @@ def remainder_stream(y: np.ndarray, s: DetectorSettings, fence_windows: tuple[in
         a, b = _quartiles(block, s.quartile_method)
         q1[w][hours] = a
         q3[w][hours] = b
+    return Stream(expected, remainder, q1, q3)
+
+
+def _windows(y: np.ndarray, valid: np.ndarray, refits: np.ndarray, L: int):
+    """The fit windows ending at each refit hour, gaps filled inside each window only,
+    and which windows could be fitted at all (not every hour missing)."""
+    starts = refits - (L - 1)
+    # fancy indexing copies: `windows` is a fresh C-contiguous array, safe to fill in place
+    windows = sliding_window_view(y, L)[starts]
+    missing = np.concatenate(([0], np.cumsum(~valid)))
+    bad = missing[starts + L] > missing[starts]
+    usable = np.ones(len(refits), dtype=bool)
+    for i in np.flatnonzero(bad):
+        filled = _fill_window(windows[i])
+        if filled is None:
+            usable[i] = False
+            windows[i] = 0.0
+        else:
+            windows[i] = filled
+    return windows, usable
+
+
+def _forecast_stream(y: np.ndarray, s: DetectorSettings,
+                     fence_windows: tuple[int, ...]) -> Stream:
+    """`remainder_stream` with ``expected_value = "forecast"``.
+
+    Fits end at t0 = L-1, L-1+h, ... as in `fit` mode, but hour t takes its expected
+    value from the last fit ending before t (offset o = t - t0 in 1..h): the trend at
+    t0 plus the seasonal value at t - R*ceil(o/R) (R the repeat period). The fence
+    window of hour t is the W forecast remainders of hours t-W .. t-1, so hours from
+    L (first forecast) and scores from L + W.
+    """
+    n = len(y)
+    L, h = s.decomposition_window_hours, s.refit_every_hours
+    R = _repeat_period(s)
+    expected = np.full(n, np.nan)
+    remainder = np.full(n, np.nan)
+    q1 = {w: np.full(n, np.nan) for w in fence_windows}
+    q3 = {w: np.full(n, np.nan) for w in fence_windows}
+    if n <= L:
+        return Stream(expected, remainder, q1, q3)
+    valid = ~np.isnan(y)
+    refits = np.arange(L - 1, n - 1, h)  # a fit ending at n-1 would forecast nothing
+    windows, usable = _windows(y, valid, refits, L)
+    hours = np.arange(L, n)
+    fit_of = (hours - L) // h
+    if not s.robust and h == 1:
+        # the forecast is one more row of the smoother: trend at L-1 + seasonal at L-R
+        exp = _rows_times(windows, _forecast_row(L, s)[:, None])[:, 0]
+    else:
+        if not s.robust:
+            trend_m, seas_ms = _linear_parts(L, s)
+            trend_last = _rows_times(windows, trend_m[L - 1][:, None])[:, 0]
+            seas = [_rows_times(windows, m[L - R :].T) for m in seas_ms]
+        else:
+            trend, seasonal, _ = _fit_many(windows, s)
+            trend_last = trend[:, L - 1]
+            seas = [c[:, L - R :] for c in seasonal]
+        offset = hours - refits[fit_of]
+        col = R - 1 + offset - R * np.ceil(offset / R).astype(np.int64)
+        exp = trend_last[fit_of]
+        for sc in seas:
+            exp = exp + sc[fit_of, col]
+    exp[~usable[fit_of]] = np.nan
+    expected[hours] = exp
+    remainder[hours] = np.where(valid[hours], y[hours] - exp, np.nan)
+    # fence rows: hour t holds remainder[t - wmax .. t - 1] (undefined hours are NaN)
+    wmax, wmin = max(fence_windows), min(fence_windows)
+    if n <= L + wmin:
+        return Stream(expected, remainder, q1, q3)
+    scored = np.arange(L + wmin, n)
+    stream = sliding_window_view(remainder, wmax)[scored - wmax]
+    for w in fence_windows:
+        a, b = _quartiles(stream[w - wmin :, wmax - w :], s.quartile_method)
+        q1[w][L + w :] = a
+        q3[w][L + w :] = b
     return Stream(expected, remainder, q1, q3)
 
 
@@ -349,6 +415,18 @@ def _linear_parts(L: int, s: DetectorSettings) -> tuple[np.ndarray, list[np.ndar
 def _linear_fitted(L: int, s: DetectorSettings) -> np.ndarray:
     """Matrix F with trend + seasonal = F @ y for a window y (cached)."""
     return _fitted_matrix(L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period)
+
+
+def _forecast_row(L: int, s: DetectorSettings) -> np.ndarray:
+    """Vector f with the one-hour-ahead forecast = f @ y for a window y (cached)."""
+    return _forecast_vector(L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period)
+
+
+@functools.lru_cache(maxsize=16)
+def _forecast_vector(L: int, period: int, seasonal: int, trend: int, weekly: bool) -> np.ndarray:
+    sm = stl_kernel.linear_smoother(L, period, seasonal, trend, weekly)
+    lag = 7 * period if weekly else period
+    return np.ascontiguousarray(sm.trend[L - 1] + sm.seasonal[L - lag])
 
 
 @functools.lru_cache(maxsize=16)

@@ -46,16 +46,18 @@ def run_demo(args) -> int:
     # one executor for every step: its workers start once and keep the history
     executor = make_executor(args.engine, args.workers, args.scheduler)
     try:
-        tuned, result = _steps(ses, out, args.trials, executor, force)
+        tuned, result = _steps(ses, out, args.trials, executor, force,
+                               progress=not getattr(args, "quiet", False))
     finally:
         executor.close()
 
     print("6/6 alert volume per team (tuned settings, held-out weeks)")
-    vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours)
+    vol = api.alert_volume(ses, tuned.episodes, result.split_hour, ses.history.n_hours,
+                           first_scored=result.first_hour)
     write_table(out / "volume.csv", vol, force=force)
-    for row in vol.groupby("team")["alerts_per_analyst_day"].mean().items():
-        print(f"    {row[0]}: {row[1]:.2f} alerts per analyst per day "
-              f"(budget {ses.ws.goal.budget(row[0]):g})")
+    for team, row in api.volume_per_team(vol).iterrows():
+        print(f"    {team}: {row['alerts_per_analyst_day']:.2f} alerts per analyst per day "
+              f"(budget {ses.ws.goal.budget(team):g})")
     took = time.perf_counter() - t_start
     write_text(out / "README.txt", _readme(out, took), force=force)
     print(f"done in {took:.0f} s; outputs in {out}/ (see {out / 'README.txt'})")
@@ -64,10 +66,11 @@ def run_demo(args) -> int:
     return 0
 
 
-def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, force: bool):
+def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, force: bool,
+           progress: bool = True):
     """Steps 2-5: replay today's settings, tune, report, export the tuned alerts."""
     print("2/6 replaying today's [detector] settings hour by hour")
-    current = api.replay_session(ses, executor=executor)
+    current = api.replay_session(ses, executor=executor, progress=progress)
     write_table(out / "alerts-current.csv", current.alerts_frame(), force=force)
     first = api.first_scored_hour(ses.ws.detector, ses.ws)
     figs = api.score_episodes(ses, current.episodes, first)
@@ -76,7 +79,8 @@ def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, 
 
     print("3/6 tuning (the fence multiplier and each metric's minimum impact are solved for "
           "every trial)")
-    result = tune(ses, trials=trials, storage=str(out / "study.journal"), executor=executor)
+    result = tune(ses, trials=trials, storage=str(out / "study.journal"), executor=executor,
+                  progress=progress)
     tuned_path = out / "tuned.toml"
     if result.feasible:
         write_config(tuned_path, result.config, result.provenance, force=force)
@@ -94,11 +98,11 @@ def _steps(ses: api.Session, out: Path, trials: int | None, executor: Executor, 
 
     print("4/6 report")
     report_dir = out / "report"
-    write_report(ses, result, report_dir, force=force, executor=executor)
+    write_report(ses, result, report_dir, force=force, executor=executor, progress=progress)
     print(f"    report written to {report_dir / 'index.html'}")
 
     print("5/6 alerts of the tuned settings, for analysts to review")
-    tuned = api.replay_session(ses, result.config, executor=executor)
+    tuned = api.replay_session(ses, result.config, executor=executor, progress=progress)
     review = review_frame(tuned.alerts_frame())
     write_table(out / "alerts-for-review.csv", review, force=force)
     print(f"    {len(review)} alerts written to {out / 'alerts-for-review.csv'} "

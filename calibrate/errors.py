@@ -1,10 +1,18 @@
-"""The one family of user-facing errors.
+"""The one family of user-facing errors, and the command line's exit codes.
 
-Anything a user can cause (bad file, bad setting, impossible goal) raises a
-`CalibrationError`; the CLI prints its message as one line and exits 1.
+Anything a user can cause (bad file, bad setting) raises a `CalibrationError`; the
+CLI prints its message as one line and exits `BAD_INPUT`. A `UsageError` (options
+that do not go together) exits `USAGE`, as argparse does for its own errors.
 """
 
 from __future__ import annotations
+
+# exit codes of `calibrate` (listed in the README); 130 and 143 (Ctrl-C, SIGTERM) are
+# 128 + the signal's number, set in calibrate.cli
+OK = 0
+BAD_INPUT = 1
+USAGE = 2
+GOAL_NOT_MET = 3
 
 
 class CalibrationError(Exception):
@@ -26,3 +34,7 @@ class InputError(CalibrationError):
         self.where = where
         self.what = what
         super().__init__(f"{where}: {what}")
+
+
+class UsageError(CalibrationError):
+    """Command-line options that do not go together (exit `USAGE`)."""

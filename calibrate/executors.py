@@ -16,7 +16,9 @@ import contextlib
 import os
 import signal
 import socket
+import sys
 import threading
+import types
 from collections import Counter, deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import CancelledError, ProcessPoolExecutor, as_completed
@@ -50,6 +52,9 @@ def _start_fork_server() -> None:
     """
     from multiprocessing import forkserver
 
+    # not the default `__main__`: where Python honours it, the fork server would run
+    # the calling script (an unguarded one would start a replay there, breaking the pool)
+    forkserver.set_forkserver_preload(["calibrate.executors"])
     if threading.current_thread() is not threading.main_thread():
         forkserver.ensure_running()  # signal handlers can only be set in the main thread
         return
@@ -58,6 +63,23 @@ def _start_fork_server() -> None:
         forkserver.ensure_running()
     finally:
         signal.signal(signal.SIGINT, previous)
+
+
+@contextlib.contextmanager
+def _script_not_rerun(fn: Callable) -> Iterator[None]:
+    """While workers start, show multiprocessing a blank `__main__`, so a worker does
+    not run the calling script again: a saved script needs no
+    ``if __name__ == "__main__":`` guard. Task functions defined in that script
+    (rather than in a module) still need the script, so it is left as it is for them."""
+    main = sys.modules.get("__main__")
+    if getattr(fn, "__module__", None) == "__main__" or main is None:
+        yield
+        return
+    sys.modules["__main__"] = types.ModuleType("__main__")
+    try:
+        yield
+    finally:
+        sys.modules["__main__"] = main
 
 
 def exit_with_caller(caller_alive: Connection) -> None:
@@ -156,7 +178,9 @@ class LocalExecutor(Executor):
             yield from SerialExecutor().run(fn, shared, tasks)
             return
         pool = self._pool_for(shared)
-        futures = [pool.submit(_run_task, self._token, fn, i, t) for i, t in enumerate(tasks)]
+        with _script_not_rerun(fn):  # workers start on the first submits
+            futures = [pool.submit(_run_task, self._token, fn, i, t)
+                       for i, t in enumerate(tasks)]
         try:
             for fut in as_completed(futures):
                 yield fut.result()

@@ -124,6 +124,29 @@ def parse_formula(text: str, measures: Sequence[str], where: str) -> Formula:
     return Formula(text=text, names=tuple(names), tree=tree)
 
 
+def never_negative(text: str) -> bool:
+    """True when formula `text` (already checked by `parse_formula`) cannot be negative
+    while its measures are not: measures and numbers >= 0 joined by ``+``, ``*``, ``/``,
+    and ``max``/``min`` of such terms, or ``abs`` of anything. Used to draw fences no
+    lower than 0 for such metrics."""
+    def ok(node: ast.AST) -> bool:
+        if isinstance(node, ast.Constant):
+            return node.value >= 0
+        if isinstance(node, ast.Name):
+            return True
+        if isinstance(node, ast.BinOp):
+            return _BINARY.get(type(node.op)) in ("+", "*", "/") and ok(node.left) \
+                and ok(node.right)
+        if isinstance(node, ast.UnaryOp):
+            return isinstance(node.op, ast.UAdd) and ok(node.operand)
+        if isinstance(node, ast.Call) and isinstance(node.func, ast.Name):
+            return node.func.id == "abs" or (node.func.id in ("max", "min")
+                                              and all(ok(a) for a in node.args))
+        return False
+
+    return ok(ast.parse(text.strip(), mode="eval").body)
+
+
 def _depth(tree: ast.AST) -> int:
     """Operations on the longest path from the root to a leaf (iterative: the tree may
     be deeper than the stack)."""

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import errno
 import glob
+import gzip
 import hashlib
 import json
 import os
@@ -268,16 +269,68 @@ def write_text(path: Path, text: str, force: bool = True) -> Path:
     return write_atomic(path, lambda p: p.write_text(text, encoding="utf-8"), force)
 
 
+def table_format(path: str | Path) -> str:
+    """``"parquet"``, ``"csv"`` or ``"csv.gz"`` by the file's suffix (check it before
+    any work starts); anything else is refused in one line."""
+    name = Path(path).name.lower()
+    for fmt in ("parquet", "csv.gz", "csv"):
+        if name.endswith("." + fmt):
+            return fmt
+    raise CalibrationError(f"{path}: unknown output format (use .csv, .csv.gz or .parquet)")
+
+
 def write_table(path: Path, frame: pd.DataFrame, force: bool = True) -> Path:
     """CSV (optionally .gz) or Parquet by the file's suffix."""
     path = Path(path)
-    name = path.name.lower()
-    if name.endswith(".parquet"):
+    if table_format(path) == "parquet":
         return write_atomic(path, lambda p: frame.to_parquet(p, index=False), force)
-    if name.endswith(".csv") or name.endswith(".csv.gz"):
-        comp = "gzip" if name.endswith(".gz") else None
-        return write_atomic(path, lambda p: frame.to_csv(p, index=False, compression=comp), force)
-    raise CalibrationError(f"{path}: unknown output format (use .csv, .csv.gz or .parquet)")
+    comp = "gzip" if table_format(path) == "csv.gz" else None
+    return write_atomic(path, lambda p: frame.to_csv(p, index=False, compression=comp), force)
+
+
+def write_table_blocks(path: Path, blocks: Iterable[pd.DataFrame], force: bool = True) -> Path:
+    """`write_table` for a table given as frames with the same columns, written one
+    at a time (one Parquet row group each, or appended CSV rows), so only one block
+    is ever in memory. Atomic like every output: a temporary file linked into place."""
+    path = Path(path)
+    fmt = table_format(path)
+
+    def write(tmp: Path) -> None:
+        it = iter(blocks)
+        first = next(it, None)
+        while first is not None and first.empty:  # empty blocks carry no types
+            following = next(it, None)
+            if following is None:
+                break
+            first = following
+        if first is None:
+            first = pd.DataFrame()
+        if fmt == "parquet":
+            _parquet_blocks(tmp, first, it)
+            return
+        opener = gzip.open if fmt == "csv.gz" else open
+        with opener(tmp, "wt", encoding="utf-8", newline="") as fh:
+            first.to_csv(fh, index=False)
+            for block in it:
+                block.to_csv(fh, index=False, header=False)
+
+    return write_atomic(path, write, force)
+
+
+def _parquet_blocks(tmp: Path, first: pd.DataFrame, rest: Iterable[pd.DataFrame]) -> None:
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    if first.empty:  # nothing to stream: the whole (empty) frame as write_table writes it
+        first.to_parquet(tmp, index=False)
+        return
+    table = pa.Table.from_pandas(first, preserve_index=False)
+    with pq.ParquetWriter(tmp, table.schema) as writer:
+        writer.write_table(table)
+        for block in rest:
+            if len(block):
+                writer.write_table(pa.Table.from_pandas(block, schema=table.schema,
+                                                        preserve_index=False))
 
 
 def write_config(

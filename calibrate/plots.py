@@ -19,7 +19,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 if TYPE_CHECKING:
-    from calibrate.report import CurveData, SeriesPanel, TradeoffData, VolumeData
+    from calibrate.report_data import CurveData, SeriesPanel, TradeoffData, VolumeData
 
 # Our own palette: colour-blind friendly, distinct in greyscale print too.
 INK = "#222222"
@@ -106,15 +106,58 @@ def impact_png(data: CurveData, group: str | None = None) -> bytes:
     """Recall (top) and alerts per analyst per day per team (bottom) against the minimum
     impacts (`data.ks`: the share of each metric's range), on a scale linear near 0 and
     logarithmic above."""
-    chosen = "" if data.chosen_k is None else f" (chosen {data.chosen_k:.3g}, red line)"
+    return _png(impact_figure(data, group))
+
+
+def impact_figure(data: CurveData, group: str | None = None) -> plt.Figure:
+    """The figure of `impact_png`: the x axis is the minimum impact in % of each metric's
+    range, and its label gives each range's top in the metric's own units."""
+    chosen = "" if data.chosen_k is None else f" (chosen {100 * data.chosen_k:.3g}%, red line)"
     positive = [m for m in data.ks if m > 0]
     of = "the minimum impacts" if group is None else f"group {group}'s minimum impacts"
-    return _curve_png(data, f"Moving {of} at the chosen k{chosen}",
-                      "minimum impact, as a share of each metric's range (in its own units)",
-                      symlog=min(positive) if positive else None)
+    tops = impact_range_tops(data)
+    unit = ", ".join(f"{m} {v:.4g}" for m, v in tops.items())
+    xlabel = "minimum impact, % of each metric's range" + (
+        f"\n100% = {unit} (each in its own units)" if unit else "")
+    return curve_figure(data, f"Moving {of} at the chosen k{chosen}", xlabel,
+                        symlog=min(positive) if positive else None, percent_x=True)
+
+
+def impact_range_tops(data: CurveData) -> dict[str, float]:
+    """Each metric's minimum impact at 100% of its range, from the curve's points (share
+    `ks[i]` holds ``low + share * (high - low)`` of each metric, `impacts[i]`)."""
+    ks = np.asarray(data.ks, dtype=float)
+    impacts = list(getattr(data, "impacts", None) or [])
+    if len(impacts) != len(ks) or not len(ks) or ks.max() <= 0:
+        return {}
+    lo_i, hi_i = int(np.argmin(ks)), int(np.argmax(ks))
+    span = ks[hi_i] - ks[lo_i]
+    return {m: impacts[lo_i][m] + (impacts[hi_i][m] - impacts[lo_i][m]) * (1 - ks[lo_i]) / span
+            for m in impacts[hi_i]}
+
+
+def _budget_lines(ax: plt.Axes, teams: Sequence[str], budgets: Sequence[float | None],
+                  colour_of, shared: str = INK) -> None:
+    """One dashed line per distinct budget, labelled with the teams it applies to (teams
+    sharing a budget would otherwise draw lines on top of each other); a budget of one
+    team takes `colour_of(team index)`, a shared one `shared`."""
+    by_budget: dict[float, list[int]] = {}
+    for j, b in enumerate(budgets):
+        if b is not None and np.isfinite(b):
+            by_budget.setdefault(float(b), []).append(j)
+    for b, idx in sorted(by_budget.items()):
+        colour = colour_of(idx[0]) if len(idx) == 1 else shared
+        ax.axhline(b, color=colour, linestyle="--", linewidth=1.1,
+                   label=f"budget {b:g}: {', '.join(teams[j] for j in idx)}")
 
 
 def _curve_png(data: CurveData, title: str, xlabel: str, symlog: float | None = None) -> bytes:
+    return _png(curve_figure(data, title, xlabel, symlog))
+
+
+def curve_figure(data: CurveData, title: str, xlabel: str, symlog: float | None = None,
+                 percent_x: bool = False) -> plt.Figure:
+    """The figure of `multiplier_png` and `impact_png` (for tests: not yet a PNG)."""
     fig, (top, bottom) = plt.subplots(2, 1, figsize=(7.0, 5.0), sharex=True,
                                       gridspec_kw={"height_ratios": [1, 1.2]})
     if symlog is not None:
@@ -137,21 +180,28 @@ def _curve_png(data: CurveData, title: str, xlabel: str, symlog: float | None = 
     for j, team in enumerate(data.teams):
         bottom.step(ks, data.team_rate[j], where="post", linewidth=1.4,
                     color=TEAM_COLOURS[j % len(TEAM_COLOURS)], label=team)
-    budgets = sorted({b for b in data.budgets if b is not None and np.isfinite(b)})
-    for b in budgets:
-        bottom.axhline(b, color=BUDGET, linestyle="--", linewidth=1.2)
-    if budgets:
-        bottom.plot([], [], color=BUDGET, linestyle="--", label="budget")
+    _budget_lines(bottom, data.teams, data.budgets, lambda _: BUDGET, BUDGET)
     bottom.set_ylabel("alerts per analyst per day", fontsize=9)
     bottom.set_xlabel(xlabel, fontsize=9)
     bottom.set_ylim(bottom=0)
     bottom.legend(fontsize=7.5, loc="upper right", framealpha=0.9)
+    if percent_x:  # 0.1% stays 0.1% (PercentFormatter rounds it to 0%)
+        bottom.xaxis.set_major_formatter(
+            matplotlib.ticker.FuncFormatter(lambda x, _: f"{100 * x:.4g}%"))
     fig.tight_layout()
-    return _png(fig)
+    return fig
+
+
+MAX_WEEK_LABELS = 8  # "2026-W10" at 8 pt: more than this overlap on a 7-inch chart
 
 
 def volume_png(data: VolumeData) -> bytes:
     """Alerts per analyst per day, per team and ISO week, against each team's budget."""
+    return _png(volume_figure(data))
+
+
+def volume_figure(data: VolumeData) -> plt.Figure:
+    """The figure of `volume_png` (for tests: not yet a PNG)."""
     weeks, teams = list(data.weeks), list(data.teams)
     fig, ax = plt.subplots(figsize=(7.0, 3.6))
     _style(ax)
@@ -162,20 +212,24 @@ def volume_png(data: VolumeData) -> bytes:
         rates = np.asarray(data.rate[j], dtype=float)
         ax.bar(xs - 0.4 + width * (j + 0.5), np.nan_to_num(rates), width, color=colour,
                label=team, edgecolor="white", linewidth=0.5)
-        b = data.budgets[j]
-        if b is not None and np.isfinite(b):
-            ax.hlines(b, -0.5, len(weeks) - 0.5, colors=colour, linestyles="--", linewidth=1.0)
+    _budget_lines(ax, teams, data.budgets, lambda j: TEAM_COLOURS[j % len(TEAM_COLOURS)])
     if data.first_holdout_week is not None:
         ax.axvline(data.first_holdout_week - 0.5, color=INK, linewidth=0.9)
         ax.annotate("held-out weeks →", (data.first_holdout_week - 0.45, 0.98),
                     xycoords=("data", "axes fraction"), fontsize=7.5, va="top",
                     bbox={"facecolor": "white", "edgecolor": "none", "pad": 1})
-    ax.set_xticks(xs, weeks, rotation=0, fontsize=8)
+    # a tick per week, a label on every step-th (the first held-out week among them)
+    step = -(-len(weeks) // MAX_WEEK_LABELS) if weeks else 1
+    anchor = (data.first_holdout_week or 0) % step
+    ax.set_xticks(xs, minor=True)
+    ax.set_xticks(xs[anchor::step], [weeks[i] for i in xs[anchor::step]], fontsize=8)
+    ax.set_xlim(-0.5, len(weeks) - 0.5)
+    ax.set_xlabel("ISO week" + (f" (labelled every {step} weeks)" if step > 1 else ""),
+                  fontsize=8.5)
     ax.set_ylabel("alerts per analyst per day", fontsize=9)
-    ax.plot([], [], color=INK, linestyle="--", linewidth=1.0, label="budget (team colour)")
     ax.legend(fontsize=7.5, loc="upper left", bbox_to_anchor=(1.0, 1.0), framealpha=0.9)
     ax.set_title("Alert load per team and week (chosen settings)", fontsize=10, loc="left")
-    return _png(fig)
+    return fig
 
 
 def delay_png(delays: Sequence[float], early_hours: int, late_hours: int) -> bytes:
@@ -204,12 +258,27 @@ def delay_png(delays: Sequence[float], early_hours: int, late_hours: int) -> byt
 
 def series_png(panel: SeriesPanel) -> bytes:
     """Value, expected value and fences of one series, incident and alert spans shaded."""
+    return _png(series_figure(panel))
+
+
+def series_figure(panel: SeriesPanel) -> plt.Figure:
+    """The figure of `series_png`; fences and expected value are drawn no lower than the
+    panel's `floor` (0 for a metric that cannot be negative)."""
     fig, ax = plt.subplots(figsize=(7.0, 2.9))
     _style(ax)
     t = np.array([_hour(x) for x in panel.times])
-    ax.fill_between(t, panel.lower, panel.upper, color=FEASIBLE, alpha=0.15, linewidth=0,
-                    label=f"fences (k = {panel.k:.3g})", step="mid")
-    ax.plot(t, panel.expected, color=FEASIBLE, linewidth=1.0, linestyle="--", label="expected")
+    lower, upper, expected = (np.asarray(v, dtype=float) for v in
+                              (panel.lower, panel.upper, panel.expected))
+    fences = f"fences (k = {panel.k:.3g})"
+    floor = getattr(panel, "floor", None)
+    if floor is not None:
+        # np.maximum keeps NaN (no value) as NaN
+        lower, upper, expected = (np.maximum(v, floor) for v in (lower, upper, expected))
+        fences += f", drawn from {floor:g}"
+    ax.fill_between(t, lower, upper, color=FEASIBLE, alpha=0.15, linewidth=0,
+                    label=fences, step="mid")
+    ax.plot(t, expected, color=FEASIBLE, linewidth=1.0, linestyle="--",
+            label=f"expected ({panel.expected_value})")
     ax.plot(t, panel.value, color=INK, linewidth=1.1, label="value")
     first = True
     for s, e in panel.incident_spans:
@@ -226,7 +295,7 @@ def series_png(panel: SeriesPanel) -> bytes:
     ax.legend(fontsize=7, loc="upper left", bbox_to_anchor=(1.0, 1.0), framealpha=0.9)
     fig.autofmt_xdate(rotation=0, ha="center")
     ax.xaxis.set_major_formatter(matplotlib.dates.DateFormatter("%b %d"))
-    return _png(fig)
+    return fig
 
 
 def comparison_png(

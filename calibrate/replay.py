@@ -10,6 +10,7 @@ only by `alerts_frame` / `scores_frame` at the edge.
 from __future__ import annotations
 
 from collections import OrderedDict
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -24,6 +25,9 @@ from calibrate.history import History
 from calibrate.settings import DetectorConfig, DetectorSettings
 
 SERIES_PER_TASK = 8
+# rows of one block of the per-hour scores export (one Parquet row group): about
+# 30 MB as a frame, however long the history
+SCORE_BLOCK_ROWS = 250_000
 
 
 @dataclass
@@ -82,41 +86,54 @@ class ReplayResult:
     routes: dict[str, np.ndarray] = field(default_factory=dict)
 
     def alerts_frame(self) -> pd.DataFrame:
-        """Alerts in the alerts contract of docs/detector.md (one row per episode)."""
-        return alerts_frame(self.episodes, self.history)
+        """Alerts in the alerts contract of docs/detector.md (one row per episode), with the
+        `expected_value` mode that raised each."""
+        return alerts_frame(self.episodes, self.history, self.config)
 
     def scores_frame(self) -> pd.DataFrame:
-        """Per-hour scores (docs/detector.md contract) for every replayed hour."""
-        h = self.history
-        parts = []
-        for (level, metric), ms in self.scores.items():
-            ls = h.levels[level]
-            s_idx, t_idx = np.nonzero(~np.isnan(ms.expected))
-            flagged = ms.flagged()
-            part = {"level": level}
-            for col in h.key_columns:
-                part[col] = (
-                    ls.keys[col].to_numpy(dtype=object)[s_idx] if col in ls.key_columns else ""
-                )
-            part.update(
-                metric=metric,
-                hour=h.hours[t_idx],
-                value=ms.value[s_idx, t_idx],
-                expected=ms.expected[s_idx, t_idx],
-                remainder=ms.remainder[s_idx, t_idx],
-                q1=ms.q1[s_idx, t_idx],
-                q3=ms.q3[s_idx, t_idx],
-                lower=ms.q1[s_idx, t_idx]
-                - ms.settings.fence_multiplier * (ms.q3[s_idx, t_idx] - ms.q1[s_idx, t_idx]),
-                upper=ms.q3[s_idx, t_idx]
-                + ms.settings.fence_multiplier * (ms.q3[s_idx, t_idx] - ms.q1[s_idx, t_idx]),
-                score=ms.score[s_idx, t_idx],
-                flagged=flagged[s_idx, t_idx],
-            )
-            parts.append(pd.DataFrame(part))
+        """Per-hour scores (docs/detector.md contract) for every replayed hour, as one
+        frame (`score_blocks` gives the same rows block by block, in the same order)."""
+        parts = list(self.score_blocks(None))
         if not parts:
             return pd.DataFrame()
         return pd.concat(parts, ignore_index=True)
+
+    def score_blocks(self, rows_per_block: int | None = SCORE_BLOCK_ROWS
+                     ) -> Iterator[pd.DataFrame]:
+        """The per-hour scores as frames of at most about `rows_per_block` rows (a
+        block of series of one level and metric; None: one frame per level and
+        metric), so an export can be written without the whole table in memory."""
+        h = self.history
+        for (level, metric), ms in self.scores.items():
+            ls = h.levels[level]
+            n_s = ms.expected.shape[0]
+            per = max(1, n_s if rows_per_block is None else rows_per_block // max(h.n_hours, 1))
+            flagged = ms.flagged()
+            keys = {col: ls.keys[col].to_numpy(dtype=object) if col in ls.key_columns else None
+                    for col in h.key_columns}
+            k = ms.settings.fence_multiplier
+            for lo in range(0, max(n_s, 1), per):
+                rows = slice(lo, min(lo + per, n_s))
+                s_idx, t_idx = np.nonzero(~np.isnan(ms.expected[rows]))
+                s_idx += lo
+                q1, q3 = ms.q1[s_idx, t_idx], ms.q3[s_idx, t_idx]
+                part = {"level": level}
+                for col, vals in keys.items():
+                    part[col] = vals[s_idx] if vals is not None else ""
+                part.update(
+                    metric=metric,
+                    hour=h.hours[t_idx],
+                    value=ms.value[s_idx, t_idx],
+                    expected=ms.expected[s_idx, t_idx],
+                    remainder=ms.remainder[s_idx, t_idx],
+                    q1=q1,
+                    q3=q3,
+                    lower=q1 - k * (q3 - q1),
+                    upper=q3 + k * (q3 - q1),
+                    score=ms.score[s_idx, t_idx],
+                    flagged=flagged[s_idx, t_idx],
+                )
+                yield pd.DataFrame(part)
 
 
 class Replayer:
@@ -432,8 +449,11 @@ def sweep_runs(
     return RunTable(runs=runs, lo=ints[3], hi=ints[4], order=order, raised=raised)
 
 
-def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
-    """Episodes as the Alerts CSV contract of docs/detector.md, sorted by start."""
+def alerts_frame(episodes: Episodes, history: History,
+                 config: DetectorConfig | None = None) -> pd.DataFrame:
+    """Episodes as the Alerts CSV contract of docs/detector.md, sorted by start; with the
+    `config` that raised them, a last column `expected_value` says for each alert
+    whether its expected values were in-fit (`fit`) or one hour ahead (`forecast`)."""
     hours = history.hours
     cols: dict[str, object] = {
         "alert_id": [f"A{i + 1:06d}" for i in range(len(episodes))],
@@ -461,6 +481,12 @@ def alerts_frame(episodes: Episodes, history: History) -> pd.DataFrame:
         team=episodes.team,
         detectors=episodes.detectors,
     )
+    if config is not None:
+        mode = np.full(len(episodes), "", dtype=object)
+        for lv, m in set(zip(episodes.level, episodes.metric, strict=True)):
+            sel = (episodes.level == lv) & (episodes.metric == m)
+            mode[sel] = config.for_series(lv, m).expected_value
+        cols["expected_value"] = mode
     return pd.DataFrame(cols)
 
 

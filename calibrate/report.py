@@ -23,18 +23,28 @@ import html
 import json
 import math
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
+from tqdm.auto import tqdm
 
 from calibrate import api
 from calibrate.errors import CalibrationError
 from calibrate.incidents import ANY_METRIC
 from calibrate.replay import MetricScores, ReplayResult, sweep_codes
+from calibrate.report_data import (
+    CurveData,
+    PeriodData,
+    ReportData,
+    SeriesPanel,
+    SettingRow,
+    TradeoffData,
+    VolumeData,
+)
 from calibrate.scoring import (
     ANY_LABEL,
     HELD_OUT_NOTE,
@@ -47,159 +57,11 @@ from calibrate.scoring import (
 )
 from calibrate.settings import DetectorConfig
 
-CAUTION = (
-    "A tuned configuration is only as good as the incident labels it was tuned on: "
-    "incidents nobody labelled count as false alerts, and labelled incidents that were "
-    "never real pull the fences too tight. Check the settings on held-out weeks (below) "
-    "and with the analysts who will receive the alerts before rollout."
-)
 MAX_MISSED_PANELS = 20
 FALSE_ALERT_PANELS = 3
 PANEL_BEFORE_HOURS = 72
 PANEL_AFTER_HOURS = 48
 CURVE_POINTS = 80
-
-
-# --------------------------------------------------------------------------- records
-
-
-@dataclass
-class PeriodData:
-    """Figures of the chosen (and current) settings over one period."""
-
-    name: str
-    start_hour: int
-    end_hour: int
-    start: str
-    end: str
-    figures: dict[str, Any]
-    goal_met: bool
-    verdict: str
-    current_figures: dict[str, Any] | None = None
-
-
-@dataclass
-class SettingRow:
-    """One detector setting, current value next to the chosen one."""
-
-    name: str
-    current: Any
-    chosen: Any
-
-    @property
-    def changed(self) -> bool:
-        return self.current != self.chosen
-
-
-@dataclass
-class TradeoffData:
-    """Points of the recall / alert-load trade-off plot (tuning weeks)."""
-
-    x: list[float]
-    y: list[float]
-    feasible: list[bool]
-    pareto: list[bool]
-    chosen_x: float | None
-    chosen_y: float | None
-    budget: float | None
-    target_recall: float
-    x_label: str
-    curve_x: list[float] = field(default_factory=list)
-    curve_y: list[float] = field(default_factory=list)
-    # best trade-offs over every trial and every multiplier of its grid (a search's
-    # `pareto` frame); empty: the step line joins the undominated trial points
-    front_x: list[float] = field(default_factory=list)
-    front_y: list[float] = field(default_factory=list)
-
-
-@dataclass
-class CurveData:
-    """Recall and alert load of the chosen settings over a multiplier grid."""
-
-    ks: list[float]
-    recall: list[float]
-    recall_low: list[float]
-    recall_high: list[float]
-    alerts: list[int]
-    teams: list[str]
-    team_rate: list[list[float]]
-    budgets: list[float | None]
-    target_recall: float
-    chosen_k: float | None
-    per_group: bool = False  # groups have their own multipliers: the curve moves one k for all
-    # minimum-impact curves: per x, each metric's minimum impact (its own units)
-    impacts: list[dict[str, float]] = field(default_factory=list)
-
-
-@dataclass
-class VolumeData:
-    """Alerts per analyst per day per team and ISO week (chosen settings)."""
-
-    weeks: list[str]
-    teams: list[str]
-    rate: list[list[float]]
-    alerts: list[list[int]]
-    budgets: list[float | None]
-    first_holdout_week: int | None
-    table: list[dict[str, Any]]
-
-
-@dataclass
-class SeriesPanel:
-    """One series around a missed incident or a run of false alerts."""
-
-    kind: str  # "missed incident" or "false alerts"
-    title: str
-    level: str
-    label: str
-    metric: str
-    times: list[str]
-    value: list[float]
-    expected: list[float]
-    lower: list[float]
-    upper: list[float]
-    k: float
-    incident_spans: list[tuple[str, str]]
-    alert_spans: list[tuple[str, str]]
-    note: str = ""
-
-
-@dataclass
-class ReportData:
-    """Everything the report shows, as plain data (rendered afterwards)."""
-
-    title: str
-    generated: str
-    workspace: str
-    source: str
-    goal: dict[str, Any]
-    feasible: bool | None
-    reason: str
-    holdout_warning: str
-    periods: list[PeriodData]
-    settings: list[SettingRow]
-    tradeoff: TradeoffData
-    curve: CurveData
-    volume: VolumeData
-    delays: list[float]
-    early_hours: int
-    late_hours: int
-    panels: list[SeriesPanel]
-    panels_left_out: int
-    incidents: list[dict[str, Any]]
-    caution: str = CAUTION
-    provenance: dict[str, Any] = field(default_factory=dict)
-    # recall and load over minimum impacts at the chosen k (None: groups differ in it)
-    impact: CurveData | None = None
-    # with groups: per group, the same as that group's minimum impact moves alone
-    impact_groups: list[tuple[str, CurveData]] = field(default_factory=list)
-    # out-of-sample verdict: verdict ("holds", "does not hold", "cannot tell"), reasons,
-    # interval methods, what the tuning labels can show, independence of the check
-    validation: dict[str, Any] = field(default_factory=dict)
-
-    @property
-    def changed(self) -> list[str]:
-        return [r.name for r in self.settings if r.changed]
 
 
 # --------------------------------------------------------------------------- build
@@ -263,13 +125,15 @@ def build_report_data(
     periods = []
     held_out = None
     for name, a, b in bounds:
-        figures = api.score_episodes(ses, chosen.episodes, a, b)
+        # every period counts from the first scored hour, as `score` and `volume` do
+        figures = api.score_episodes(ses, chosen.episodes, a, b, first_scored=first)
         if name == "held-out weeks":
             held_out = figures
         figs = figures.to_json_dict()
         cur = None
         if cur_replay is not None:
-            cur = api.score_episodes(ses, cur_replay.episodes, a, b).to_json_dict()
+            cur = api.score_episodes(ses, cur_replay.episodes, a, b,
+                                     first_scored=first).to_json_dict()
         met, verdict = goal_verdict(figs, goal.max_miss_rate, ses.analysts)
         periods.append(
             PeriodData(name, a, b, _iso(hist.hours, a), _iso(hist.hours, b), figs, met,
@@ -598,7 +462,7 @@ def volume_data(
 ) -> VolumeData:
     """Alerts per team and week over the scored period, from `api.alert_volume`."""
     n = ses.history.n_hours
-    vol = api.alert_volume(ses, chosen.episodes, first, n)
+    vol = api.alert_volume(ses, chosen.episodes, first, n, first_scored=first)
     weeks = list(dict.fromkeys(vol["week"].tolist()))
     teams = list(dict.fromkeys(vol["team"].tolist()))
     rate, alerts = [], []
@@ -637,6 +501,12 @@ def incident_rows(
             if r.get("caught") and r.get("delay_hours") is not None:
                 delays.append(float(r["delay_hours"]))
     return rows, delays
+
+
+EXPECTED_CAPTION = {
+    "fit": "Expected value: in-fit (the STL fit ending at each hour).",
+    "forecast": "Expected value: forecast (one hour ahead, from the fit ending before).",
+}
 
 
 def series_panels(
@@ -753,12 +623,32 @@ def _panel(
         note += " Alerts in view by detector: " + ", ".join(
             f"{d} {n}" for d, n in fired.items()) + "."
     label = " / ".join(str(v) for v in hist.levels[lv].keys.iloc[s].tolist())
+    floor = None if can_be_negative(ses.ws, metric, ms.value[s]) else 0.0
+    with np.errstate(invalid="ignore"):
+        below = bool(floor is not None and (np.nanmin(np.r_[lower, expected, 0.0]) < 0))
+    if below:
+        note += (f" Fences and expected values below 0 are drawn at 0: {metric} cannot be "
+                 "negative.")
     return SeriesPanel(
         kind=kind, title=title, level=lv, label=label, metric=metric, times=times,
         value=_floats(ms.value[s, sl]), expected=_floats(expected), lower=_floats(lower),
         upper=_floats(upper), k=float(k), incident_spans=inc_spans, alert_spans=al_spans,
-        note=note,
+        note=" ".join(x for x in (note.rstrip(".") + "." if note else "",
+                                 EXPECTED_CAPTION[ms.settings.expected_value]) if x),
+        expected_value=ms.settings.expected_value, floor=floor,
     )
+
+
+def can_be_negative(ws: Any, metric: str, values: np.ndarray) -> bool:
+    """False for a measure or a formula that `formulas.never_negative` clears, when
+    none of the series' `values` is negative either (a measure may hold refunds)."""
+    from calibrate.formulas import never_negative
+
+    formula = ws.metrics.get(metric)
+    if formula is not None and not never_negative(formula):
+        return True
+    with np.errstate(invalid="ignore"):
+        return bool(np.any(values < 0))
 
 
 # --------------------------------------------------------------------------- summary
@@ -1168,7 +1058,10 @@ def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: 
         + f" and the {sum(1 for p in data.panels if p.kind == 'false alerts')} series with "
         "the most false alerts. Black: value; dashed: expected value; blue band: the "
         "fences (Q1 - k*IQR to Q3 + k*IQR of the remainder, drawn around the expected "
-        "value); green: labelled incident window; red marks at the bottom: alerts raised.</p>"
+        "value); green: labelled incident window; red marks at the bottom: alerts raised. "
+        "For a metric that cannot be negative (a measure, or a formula without subtraction, "
+        "over a series with no negative value) fences and expected values below 0 are drawn "
+        "at 0; the figures and summary.json keep the values as computed.</p>"
     )
     for i, panel in enumerate(data.panels):
         parts.append(img(_panel_file(i, panel), panel.title, panel.note))
@@ -1312,6 +1205,21 @@ def _review_csv(result: ReplayResult) -> bytes:
     return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
 
 
+def steps_bar(progress: bool, total: int = 4) -> tqdm:
+    """A progress bar over a report's steps (the replays, figures, plots and files) on
+    a terminal: nothing without `progress`, nor when stderr goes to a file or a pipe
+    (where it would only precede an error line)."""
+    return tqdm(total=total, desc="report", unit="step", disable=None if progress else True,
+                leave=False)
+
+
+def step(bar: tqdm, what: str, work: Callable[[], Any]) -> Any:
+    bar.set_postfix_str(what)
+    out = work()
+    bar.update(1)
+    return out
+
+
 def write_config_report(
     ses: api.Session,
     config: DetectorConfig,
@@ -1324,48 +1232,55 @@ def write_config_report(
     progress: bool = False,
     **replay_kwargs: Any,
 ) -> ReportData:
-    """Replay `config` (and the current settings) and write its report to `out_dir`."""
+    """Replay `config` (and the current settings) and write its report to `out_dir`;
+    `progress` shows a bar over the steps."""
     current = current or ses.ws.detector
-    rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
+    bar = steps_bar(progress)
+    rp = api.make_replayer(ses, progress=False, **replay_kwargs)
     try:
-        chosen = rp.replay(config)
-        cur = rp.replay(current)
+        chosen = step(bar, "replay", lambda: rp.replay(config))
+        cur = step(bar, "replay of today's", lambda: rp.replay(current))
     finally:
         rp.close()
     first = max(api.first_scored_hour(config, ses.ws), api.first_scored_hour(current, ses.ws))
-    data = build_report_data(ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
-                             title="Calibration report", source=source)
-    write_report_data(data, out_dir, force=force,
-                      extra={"alerts-for-review.csv": _review_csv(chosen)})
+    data = step(bar, "figures", lambda: build_report_data(
+        ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
+        title="Calibration report", source=source))
+    step(bar, "plots and files", lambda: write_report_data(
+        data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
+    bar.close()
     return data
 
 
 def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: bool = True,
-                 progress: bool = False, derived_from_held_out: bool = False,
+                 progress: bool = False, steps: tqdm | None = None,
+                 derived_from_held_out: bool = False,
                  **replay_kwargs: Any) -> ReportData:
     """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`,
-    judged against the goal the run was tuned to (`result.goal`, when set)."""
+    judged against the goal the run was tuned to (`result.goal`, when set).
+    `progress` shows a bar over the steps (or they advance `steps`, a caller's bar)."""
     goal = getattr(result, "goal", None)
     if goal is not None and goal != ses.ws.goal:
         ses = replace(ses, ws=replace(ses.ws, goal=goal))
-    rp = api.make_replayer(ses, progress=progress, **replay_kwargs)
+    bar = steps if steps is not None else steps_bar(progress)
+    rp = api.make_replayer(ses, progress=False, **replay_kwargs)
     try:
-        chosen = rp.replay(result.config)
-        cur = rp.replay(result.current)
+        chosen = step(bar, "replay", lambda: rp.replay(result.config))
+        cur = step(bar, "replay of today's", lambda: rp.replay(result.current))
     finally:
         rp.close()
     prov = dict(getattr(result, "provenance", {}) or {})
     prov.setdefault("study_name", getattr(result, "study_name", None))
     prov.setdefault("storage", getattr(result, "storage", None))
     prov = {k: v for k, v in prov.items() if v is not None}
-    data = build_report_data(
+    data = step(bar, "figures", lambda: build_report_data(
         ses, chosen, current=cur, first_hour=result.first_hour, split_hour=result.split_hour,
         trials=result.trials, front=getattr(result, "pareto", None),
         feasible=result.feasible, reason=result.reason or "",
         holdout_warning=result.holdout_warning or "", provenance=prov,
         title="Calibration report", source=f"study {getattr(result, 'study_name', '')}",
         derived_from_held_out=derived_from_held_out,
-    )
+    ))
     if getattr(result, "folds", None):
         from calibrate import rolling, search
 
@@ -1374,47 +1289,11 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
             folds=search.fold_rows(result),
             stability={n: [str(x) for x in v]
                        for n, v in rolling.stability(result.folds).items()})
-    write_report_data(data, out_dir, force=force,
-                      extra={"alerts-for-review.csv": _review_csv(chosen)})
+    step(bar, "plots and files", lambda: write_report_data(
+        data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
+    if steps is None:
+        bar.close()
     return data
-
-
-def cli_report(args: Any) -> int:
-    """`calibrate report WORKSPACE (--config C | --study [NAME]) --out DIR`."""
-    from calibrate.outputs import check_outputs, load_config, load_provenance
-
-    config_path, study = getattr(args, "config", None), getattr(args, "study", None)
-    if (config_path is None) == (study is None):
-        raise CalibrationError("report: give either --config FILE or --study [NAME]")
-    out = Path(args.out)
-    force = bool(getattr(args, "force", False))
-    check_outputs((), force, folders=[out])
-    ses = api.open_session(args.workspace)
-    if ses.incidents is None:
-        raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
-    if study is not None:
-        from calibrate.executors import make_executor
-        from calibrate.search import study_result
-
-        executor = make_executor(args.engine, args.workers, args.scheduler)
-        try:
-            result = study_result(ses, storage=getattr(args, "storage", None),
-                                  study_name=study or None, executor=executor)
-            write_report(ses, result, out, force=force, executor=executor)
-        finally:
-            executor.close()
-        print(f"{result.reason}")
-        print(f"report written to {out / 'index.html'}")
-        return 0
-    config = load_config(config_path)
-    split = load_provenance(config_path).get("split_hour")
-    write_config_report(
-        ses, config, out, split_hour=int(split) if isinstance(split, int) else None,
-        force=force, source=f"config {config_path}", engine=args.engine, workers=args.workers,
-        scheduler=args.scheduler,
-    )
-    print(f"report written to {out / 'index.html'}")
-    return 0
 
 
 # --------------------------------------------------------------------------- helpers
@@ -1443,8 +1322,14 @@ def _num(x: Any) -> str:
 def _show(v: Any) -> str:
     if isinstance(v, float):
         return "none" if math.isinf(v) else f"{v:.4g}"
-    if isinstance(v, list):
-        return ", ".join(str(x) for x in v) or "(all)"
+    if isinstance(v, list | tuple):
+        return ", ".join(_show(x) for x in v) or "(all)"
+    if isinstance(v, Mapping):  # e.g. the provenance's goal and figures: words, not a dict
+        return "; ".join(f"{str(k).replace('_', ' ')}: "
+                         + (f"({_show(x)})" if isinstance(x, Mapping) else _show(x))
+                         for k, x in v.items()) or "(none)"
+    if v is None:
+        return "none"
     return str(v)
 
 

@@ -30,7 +30,7 @@ import pandas as pd
 
 from calibrate import api
 from calibrate.episodes import Episodes
-from calibrate.errors import CalibrationError, InputError
+from calibrate.errors import InputError
 from calibrate.executors import make_executor
 from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.replay import ReplayResult, alerts_frame
@@ -39,7 +39,6 @@ from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_team
 from calibrate.settings import DetectorConfig
 
 CHECKED_COLUMNS = ("level", "metric", "start")
-
 
 
 @dataclass
@@ -268,8 +267,8 @@ def compare(
     first = max(api.first_scored_hour(old.config, ses.ws), api.first_scored_hour(new.config,
                                                                                   ses.ws))
     n = ses.history.n_hours
-    fo = api.score_episodes(ses, old.episodes, first, n)
-    fn = api.score_episodes(ses, new.episodes, first, n)
+    fo = api.score_episodes(ses, old.episodes, first, n, first_scored=first)
+    fn = api.score_episodes(ses, new.episodes, first, n, first_scored=first)
     po, pn = fo.per_incident.set_index("incident_id"), fn.per_incident.set_index("incident_id")
     gained = [i for i in pn.index if bool(pn.loc[i, "caught"]) and not bool(po.loc[i, "caught"])]
     lost = [i for i in pn.index if bool(po.loc[i, "caught"]) and not bool(pn.loc[i, "caught"])]
@@ -634,36 +633,6 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
                      derived_from_held_out=bool(res.verdicts.held_out_incidents))
         written.append(report / "calibration")
     return written
-
-
-def cli_retune(args: Any) -> int:
-    """`calibrate retune WORKSPACE --verdicts F --out C [--previous P] [--report D]`."""
-    from calibrate.outputs import check_outputs, load_config
-
-    out = Path(args.out)
-    paths = retune_paths(out, Path(args.report) if args.report else None)
-    check_outputs(paths[:3], args.force, folders=paths[3:])
-    verdicts = Path(args.verdicts)
-    if out.resolve() == verdicts.resolve():
-        raise CalibrationError(f"{out}: is the verdicts file; choose another --out")
-    ses = api.open_session(args.workspace)
-    previous = load_config(args.previous) if args.previous else None
-    res = retune(ses, verdicts, previous, args.trials, engine=args.engine,
-                 workers=args.workers, scheduler=args.scheduler, progress=True,
-                 added_incidents=getattr(args, "added_incidents", None))
-    for line in res.verdicts.lines():
-        print(line)
-    written = write_retune_outputs(res, out, Path(args.report) if args.report else None,
-                                   force=args.force)
-    c = res.comparison
-    print(f"previous: {c.old['caught']}/{c.old['incidents']} caught, {c.old['alerts']} alerts; "
-          f"new: {c.new['caught']}/{c.new['incidents']} caught, {c.new['alerts']} alerts")
-    print(f"known false alarms still raised: {len(c.still_raised)} of {c.known_false_total}")
-    for w in c.why:
-        print(f"    {w}")
-    for p in written:
-        print(f"written: {p}")
-    return 0
 
 
 def _iso(hours: pd.DatetimeIndex, t: int) -> str:

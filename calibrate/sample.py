@@ -172,6 +172,7 @@ robust = false
 weekly_period = false
 decomposition_window_hours = 336
 refit_every_hours = 1
+expected_value = "fit"
 fence_window_hours = 168
 fence_multiplier = 1.5
 quartile_method = "linear"
@@ -182,9 +183,12 @@ combine = "any"
 
 # Settings the tuner searches; the fence multiplier is solved within its range, and the
 # minimum impact per watched metric, in that metric's own units: by default from 0 to the
-# metric's typical hourly level on the tuning weeks.
+# metric's typical hourly level on the tuning weeks. expected_value chooses between the
+# fit that holds the hour ("fit") and a one-hour-ahead forecast from the fit ending just
+# before it ("forecast"; README, "The detector, exactly").
 # The last quarter of the history is held out to check the tuned settings.
 [search]
+expected_value = ["fit", "forecast"]
 decomposition_window_hours = [336, 504]
 seasonal_span = [7, 11, 15]
 fence_window_hours = [72, 120, 168, 240]

@@ -44,8 +44,9 @@ counts an incident as caught when any group's alerts catch it.
 
 Holdout: the last ``holdout_fraction`` of the history, rounded to whole weeks, is
 held out; objective and constraints use only ``[first_hour, split_hour)``, where
-``first_hour`` is the longest candidate decomposition window minus one, so every
-trial is scored on the same hours. Replays run over the whole history; with no
+``first_hour`` is the latest first scored hour over the space (the longest candidate
+decomposition window minus one, or L + W with ``expected_value = "forecast"``), so
+every trial is scored on the same hours. Replays run over the whole history; with no
 look-ahead, hours before the split never see later data.
 """
 
@@ -1068,7 +1069,9 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     if windows_l is None:
         windows_l = [max(int(p.spec.high) for p in space
                          if p.setting == "decomposition_window_hours")]
-    first_hour = max(windows_l) - 1
+    fence_w = candidate_values(space, "fence_window_hours",
+                               [c.base.fence_window_hours for c in starts]) or ()
+    first_hour = _first_hour(space, starts, windows_l, fence_w)
     n = ses.history.n_hours
     if ws.search.holdout_start is not None:
         # the first hour of the given day: whatever comes later, the tuning never reads it
@@ -1078,10 +1081,8 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
         split = holdout_split(n, first_hour, ws.search.holdout_fraction)
     if split - first_hour < 24:
         raise CalibrationError(
-            f"{ws.file}: the history ({n} hours) is too short to tune: the longest "
-            f"decomposition window needs {first_hour + 1} hours before the first scored hour")
-    fence_w = candidate_values(space, "fence_window_hours",
-                               [c.base.fence_window_hours for c in starts]) or ()
+            f"{ws.file}: the history ({n} hours) is too short to tune: the detector "
+            f"settings searched need {first_hour + 1} hours before the first scored hour")
     lo, hi = ws.search.multiplier_low, ws.search.multiplier_high
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
@@ -1096,6 +1097,22 @@ def _impact_plan(ses: Session, starts: Sequence[DetectorConfig],
     return {g: impact_grids(impact_ranges(ses, g or None, end_hour),
                             [current_impacts(ses, c, g or None) for c in starts])
             for g in solved_groups(ses)}
+
+
+def _first_hour(space: list[Param], starts: Sequence[DetectorConfig],
+                windows_l: Sequence[int], fence_w: Sequence[int]) -> int:
+    """The latest first scored hour over the space, so every trial is scored on the same
+    hours: L - 1 for the longest window L, or with `forecast` expected values in the
+    space, the largest L + W of a window and a fence window below it."""
+    settings = [s for c in starts for s in (c.base, *(g.settings for g in c.groups))]
+    first = max(windows_l) - 1
+    modes = candidate_values(space, "expected_value", [s.expected_value for s in settings])
+    if "forecast" not in (modes or ()):
+        return first
+    ws_f = list(fence_w) + [s.fence_window_hours for s in settings]
+    ws_f += [int(p.spec.high) for p in space if p.setting == "fence_window_hours"
+             and p.spec.kind != "choice"]
+    return max([first, *(L + W for L in windows_l for W in ws_f if W < L)])
 
 
 def study_result(
@@ -1679,87 +1696,6 @@ def pareto_lines(result: TuneResult) -> list[str]:
         lines.append(f"  recall {_pct(d['recall'])} ({d['caught']} of {d['incidents']}), "
                      f"load {d['load']:.3g}: trial {d['number']}, {k}" + shown)
     return lines
-
-
-def cli_tune(args: Any) -> int:
-    """`calibrate tune WORKSPACE --out tuned.toml [--report DIR] [--trials N] ...`.
-
-    Exit 0 with the config written; 2 when no setting meets the goal (nothing
-    written, the best trade-offs printed).
-    """
-    from calibrate.outputs import check_outputs
-
-    out = Path(args.out)
-    force = bool(getattr(args, "force", False))
-    check_outputs([out], force, folders=[getattr(args, "report", None)])
-    ses = api.open_session(args.workspace)
-    goal = ses.ws.goal
-    mm = getattr(args, "max_miss_rate", None)
-    mb = getattr(args, "max_alerts_per_analyst_day", None)
-    if mm is not None:
-        if not 0.0 <= mm <= 1.0:
-            raise InputError("--max-miss-rate", f"must be between 0 and 1, but got {mm!r}")
-        goal = replace(goal, max_miss_rate=float(mm))
-    if mb is not None:
-        if not mb > 0:
-            raise InputError("--max-alerts-per-analyst-day", f"must be positive, but got {mb!r}")
-        goal = replace(goal, max_alerts_per_analyst_day=float(mb))
-    from calibrate.executors import make_executor
-
-    # one executor for the search and the report: the workers start once
-    executor = make_executor(getattr(args, "engine", "local"), getattr(args, "workers", None),
-                             getattr(args, "scheduler", None))
-    try:
-        return _tune_and_write(ses, args, goal, out, force, executor)
-    finally:
-        executor.close()
-
-
-def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
-                    executor: Executor) -> int:
-    from calibrate.outputs import write_config
-    from calibrate.report import write_report
-
-    tune_by = ses.ws.search.tune_by
-    if tune_by != "group" and ses.ws.detector.groups:
-        names = ", ".join(g.name for g in ses.ws.detector.groups)
-        what = ("one set of settings for every series" if tune_by == "all"
-                else f"one set of settings per {tune_by}")
-        print(f"note: tune_by = \"{tune_by}\" tunes {what}; the tuned config leaves out "
-              f"the workspace's groups ({names}). Use tune_by = \"group\" to tune them.")
-    print(f"before the search: {labels_line(tuning_incidents(ses), goal)}")
-    result = tune(ses, trials=args.trials, storage=args.storage,
-                  study_name=getattr(args, "study", None), goal=goal, executor=executor,
-                  progress=True)
-    print(f"study {result.study_name} ({len(result.trials)} trials) in {result.storage}")
-    for line in side_by_side(result):
-        print(line)
-    for line in metric_lines(result):
-        print(line)
-    for line in fold_lines(result):
-        print(line)
-    if result.thin_margin:
-        print(f"knife edge: {result.thin_margin} caught incident(s) are caught only by alerts "
-              "whose peak fence score is within 10% of the multiplier; [goal] spare_incidents "
-              "= N keeps the target with N more misses")
-    if result.holdout_warning:
-        print(f"warning: {result.holdout_warning}")
-    if not result.feasible:
-        print(f"no setting meets the goal: {result.reason}")
-        for line in pareto_lines(result):
-            print(line)
-        print(f"nothing written to {out}")
-        print(verdict_line(result))
-        return 2
-    print(result.reason)
-    print(changed_settings_line(result))
-    write_config(out, result.config, result.provenance, force=force)
-    print(f"tuned config written to {out}")
-    if getattr(args, "report", None):
-        write_report(ses, result, Path(args.report), force=force, executor=executor)
-        print(f"report written to {args.report}")
-    print(verdict_line(result))
-    return 0
 
 
 def fold_rows(result: TuneResult) -> list[dict[str, Any]]:

@@ -31,6 +31,7 @@ QUARTILE_METHODS = (
     "midpoint",
     "nearest",
 )
+EXPECTED_VALUES = ("fit", "forecast")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -53,6 +54,11 @@ class DetectorSettings:
         Trailing window L the STL is fitted on.
     refit_every_hours : int
         Refit every h hours; in between, trend is held and seasonal repeated.
+    expected_value : str
+        `fit`: the expected value at hour t comes from the fit whose window ends at t
+        (its in-sample trend + seasonal); `forecast`: from the last fit ending before t,
+        one or more hours ahead (trend held, seasonal one period back), and the fence
+        window holds the same kind of remainders (README, "The detector, exactly").
     fence_window_hours : int
         Number W of past remainders the fences are built from (W < L).
     fence_multiplier : float
@@ -83,6 +89,7 @@ class DetectorSettings:
     weekly_period: bool = False
     decomposition_window_hours: int = 336
     refit_every_hours: int = 1
+    expected_value: str = "fit"
     fence_window_hours: int = 168
     fence_multiplier: float = 3.0
     quartile_method: str = "linear"
@@ -152,6 +159,8 @@ class DetectorSettings:
             )
         if self.refit_every_hours < 1:
             raise bad("refit_every_hours", "must be at least 1")
+        if self.expected_value not in EXPECTED_VALUES:
+            raise bad("expected_value", "must be 'fit' or 'forecast'")
         if not 4 <= self.fence_window_hours < self.decomposition_window_hours:
             raise bad(
                 "fence_window_hours", "must be at least 4 and below decomposition_window_hours"
@@ -202,7 +211,16 @@ class DetectorSettings:
             self.weekly_period,
             self.decomposition_window_hours,
             self.refit_every_hours,
+            self.expected_value,
         )
+
+    @property
+    def first_scored_hour(self) -> int:
+        """First hour these settings can score: L - 1 with `fit` (the first fit's own
+        remainders fill the fence window), L + W with `forecast` (the first forecast is
+        for hour L, and the fence window then needs W forecast remainders)."""
+        L = self.decomposition_window_hours
+        return L + self.fence_window_hours if self.expected_value == "forecast" else L - 1
 
     def to_table(self) -> dict[str, Any]:
         """Plain dict for writing to TOML (per-metric minimum impacts as a table)."""

@@ -15,6 +15,7 @@ from tests.synthetic import make_workspace
 ALERT_COLUMNS = [
     "alert_id", "level", "market", "advertiser", "campaign", "metric", "start", "end",
     "raised_hour", "peak_hour", "peak_score", "value", "expected", "impact", "team", "detectors",
+    "expected_value",
 ]
 SCORE_COLUMNS = [
     "level", "market", "advertiser", "campaign", "metric", "hour", "value", "expected",
@@ -106,6 +107,16 @@ def test_tighter_multiplier_never_adds_flags(ws):
         assert any(a <= t.start[i] and t.end[i] <= b for a, b in spans)
 
 
+@pytest.mark.parametrize(
+    "args, needle",
+    [
+        (["replay", "nope.toml", "--out", "a.csv"], "no such workspace file"),
+        (["score", "WS", "--alerts", "missing.csv"], "no such alerts file"),
+        (["replay", "WS", "--out", "a.csv", "--metrics", "bogus"], "unknown metric 'bogus'"),
+        (["replay", "WS", "--out", "a.csv", "--config", "none.toml"], "no such config file"),
+        (["volume", "WS", "--from", "2026-13-45"], "--from"),
+    ],
+)
 def test_errors_are_one_line(ws, capsys, args, needle):
     args = [str(ws) if a == "WS" else a for a in args]
     assert main(args) == 1
@@ -150,3 +161,140 @@ def test_score_lists_incidents_before_the_first_scored_hour_apart(ws, tmp_path, 
     printed = capsys.readouterr().out
     assert "before the first scored hour: 1 incident(s) (EARLY)" in printed
     assert "metric impressions: caught" in printed and "detector fence:" in printed
+
+
+# ---------------------------------------------------------------- help, version, quiet, exit
+
+
+def _subparsers():
+    import argparse
+
+    from calibrate.cli import build_parser
+
+    ap = build_parser()
+    sub = next(a for a in ap._actions if isinstance(a, argparse._SubParsersAction))
+    return ap, sub.choices
+
+
+def test_every_option_states_its_default_and_every_help_ends_with_examples():
+    import shlex
+
+    ap, commands = _subparsers()
+    assert set(commands) == {"check", "replay", "score", "volume", "tune", "report", "retune",
+                             "review", "demo"}
+    for name, p in [("", ap), *commands.items()]:
+        for action in p._actions:
+            if not action.option_strings or action.option_strings[0] in ("-h", "--version"):
+                continue
+            text = action.help or ""
+            if action.required:
+                assert "(required)" in text, (name, action.option_strings)
+            else:
+                assert "default" in text, (name, action.option_strings, text)
+        if not name:
+            continue
+        tail = p.format_help().rstrip().split("\n\n")[-1].splitlines()
+        assert tail[0] in ("example:", "examples:"), (name, tail)
+        for line in tail[1:]:
+            argv = shlex.split(line)
+            assert argv[:2] == ["calibrate", name], line
+            args = ap.parse_args(argv[1:])  # the example is a valid command line
+            assert args.command == name
+
+
+def test_version_is_the_installed_distributions(capsys):
+    import importlib.metadata
+
+    with pytest.raises(SystemExit) as stop:
+        main(["--version"])
+    assert stop.value.code == 0
+    assert capsys.readouterr().out == f"calibrate {importlib.metadata.version('calibrate')}\n"
+
+
+def test_quiet_silences_the_progress_bars_of_replay_and_report(ws, tmp_path, capsys,
+                                                               monkeypatch):
+    import sys
+
+    from calibrate.outputs import write_config
+
+    cfg = tmp_path / "c.toml"
+    write_config(cfg, api.open_session(ws, incidents=False).ws.detector, {})
+    replay = ["replay", str(ws), "--out", str(tmp_path / "a.csv"), "--engine", "serial",
+              "--force"]
+    report = ["report", str(ws), "--config", str(cfg), "--out", str(tmp_path / "rep"),
+              "--engine", "serial", "--force"]
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)  # report's bar: terminals only
+    runs = {}
+    for name, argv in (("replay", replay), ("replay -q after", [*replay, "-q"]),
+                       ("report", report), ("--quiet report", ["--quiet", *report])):
+        assert main(argv) == 0
+        runs[name] = capsys.readouterr()
+    monkeypatch.undo()
+    assert main(report) == 0
+    runs["report, stderr not a terminal"] = capsys.readouterr()
+    assert "alerts written" in runs["replay -q after"].out
+    assert "report written" in runs["--quiet report"].out
+    assert "replay:" in runs["replay"].err
+    assert "0/4 [" in runs["report"].err and "step/s, replay]" in runs["report"].err
+    for name in ("replay -q after", "--quiet report", "report, stderr not a terminal"):
+        assert runs[name].err == "", name
+
+
+def test_usage_errors_and_an_unmet_goal_have_their_own_exit_codes(ws, capsys):
+    from calibrate import errors
+
+    assert len({errors.BAD_INPUT, errors.USAGE, errors.GOAL_NOT_MET, 130, 143}) == 5
+    with pytest.raises(SystemExit) as stop:
+        main(["replay", str(ws)])  # --out missing: argparse's usage error
+    assert stop.value.code == errors.USAGE == 2
+    assert main(["report", str(ws), "--config", "a.toml", "--study", "--out", "r"]) == 2
+    assert "either --config" in capsys.readouterr().err
+    assert main(["check", str(ws.parent / "missing.toml")]) == errors.BAD_INPUT == 1
+
+
+def test_alerts_per_analyst_day_is_the_same_in_score_volume_and_report(ws, tmp_path, capsys):
+    """One definition: alerts starting at or after the first scored hour (hour 167: the
+    168-hour decomposition window minus one) over analysts x the days from that hour to
+    the end. Reference: counted from the alerts file by hand."""
+    import json
+
+    from calibrate.outputs import write_config
+
+    alerts = tmp_path / "alerts.csv"
+    assert main(["-q", "replay", str(ws), "--out", str(alerts), "--engine", "serial"]) == 0
+    frame = pd.read_csv(alerts, keep_default_na=False)
+    hours = pd.read_csv(ws.parent / "history.csv", usecols=["hour"])["hour"]
+    first_hour, n = pd.Timestamp(hours.min()), hours.nunique()
+    scored_from = first_hour + pd.Timedelta(hours=167)
+    days = (n - 167) / 24
+    ref = {t: int(((frame["team"] == t) & (pd.to_datetime(frame["start"]) >= scored_from))
+                  .sum()) / (1 * days) for t in ("blue", "green")}
+    assert min(ref.values()) > 0
+
+    figs = tmp_path / "figures.json"
+    # --from at the history's start: the warm-up days still do not count
+    assert main(["score", str(ws), "--alerts", str(alerts), "--json", str(figs),
+                 "--from", str(first_hour.date())]) == 0
+    score_out = capsys.readouterr().out
+    per_team = json.loads(figs.read_text())["per_team"]
+    vol_csv = tmp_path / "volume.csv"
+    assert main(["volume", str(ws), "--alerts", str(alerts), "--csv", str(vol_csv)]) == 0
+    vol_lines = capsys.readouterr().out.splitlines()
+    vol = pd.read_csv(vol_csv)
+    cfg = tmp_path / "today.toml"
+    write_config(cfg, api.open_session(ws, incidents=False).ws.detector, {})
+    assert main(["-q", "report", str(ws), "--config", str(cfg), "--out", str(tmp_path / "r"),
+                 "--engine", "serial"]) == 0
+    summary = json.loads((tmp_path / "r" / "summary.json").read_text())
+    rep_vol = pd.DataFrame(summary["volume"])
+    for team, rate in ref.items():
+        assert per_team[team]["alerts_per_analyst_day"] == pytest.approx(rate, rel=1e-12)
+        assert summary["replayed"]["per_team"][team]["alerts_per_analyst_day"] == \
+            pytest.approx(rate, rel=1e-12)
+        for table in (vol, rep_vol):
+            mine = table[table["team"] == team]
+            assert mine["days"].sum() == pytest.approx(days)
+            assert mine["alerts"].sum() / mine["days"].sum() == pytest.approx(rate, rel=1e-12)
+        line = next(ln for ln in vol_lines if ln.split()[:2] == [team, "all"])
+        assert line.split()[3] == f"{rate:.2f}"
+    assert f"counted from {scored_from:%Y-%m-%dT%H:%MZ}" in score_out

@@ -94,8 +94,22 @@ def test_window_longer_than_the_history_is_said_by_check_and_stops_replays(ws, t
         assert "decomposition_window_hours': 1000 hours is longer than the history" in err
     assert not alerts.exists()
     alerts.write_text("alert_id,level,market,advertiser,campaign,metric,start,end\n")
-    err = one_line_error(capsys, ["score", str(ws), "--alerts", str(alerts)])
-    assert "decomposition_window_hours" in err
+    for argv in (["score", str(ws), "--alerts", str(alerts)],
+                 ["volume", str(ws), "--alerts", str(alerts)]):  # counting a file too
+        err = one_line_error(capsys, argv)
+        assert "decomposition_window_hours" in err
+
+
+def test_a_period_inside_the_warm_up_stops_score_and_volume(ws, tmp_path, capsys):
+    # the first scored hour is 167 (168-hour window): 2026-01-11T23:00Z
+    alerts = tmp_path / "alerts.csv"
+    alerts.write_text("alert_id,level,market,advertiser,campaign,metric,start,end\n")
+    for cmd in (["score", "--alerts", str(alerts)], ["volume", "--alerts", str(alerts)],
+                ["volume", "--engine", "serial"]):
+        err = one_line_error(capsys, [cmd[0], str(ws), *cmd[1:], "--to", "2026-01-10"])
+        assert err.endswith("--from/--to: the period ends before the first scored hour "
+                            "2026-01-11T23:00Z (the decomposition window's warm-up): nothing "
+                            "can be scored; give a later --to"), err
 
 
 def test_group_window_longer_than_the_history_names_the_group(ws, tmp_path, capsys):

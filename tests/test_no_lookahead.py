@@ -9,6 +9,8 @@ as a user's (`open_session` from the files, `replay_session` with the workspace'
 `[detector]`, whose `min_impact` is above 0). What a production detector has seen at
 hour t must not change when later hours arrive (README, "The workspace").
 
+Campaign-level clicks and impressions take one-hour-ahead expected values
+(`expected_value = "forecast"`, first scored hour L + W = 96), the rest in-fit ones.
 Clicks are fitted robustly (the compiled STL kernel fits each window on its own), the
 other metrics by the linear smoother (BLAS products in blocks of one shape, so each
 window's fit depends on that window alone): every per-hour result and every finished
@@ -64,6 +66,18 @@ fence_window_hours = 24
 fence_multiplier = 1.5
 flatline_hours = 3
 min_impact = 40.0
+
+[detector.group.forecast_robust]
+levels = ["campaign"]
+metrics = ["clicks"]
+expected_value = "forecast"
+robust = true
+min_impact = 8.0
+
+[detector.group.forecast]
+levels = ["campaign"]
+metrics = ["impressions"]
+expected_value = "forecast"
 
 [detector.group.ratio]
 metrics = ["ctr"]
@@ -133,6 +147,7 @@ def runs(tmp_path_factory) -> dict[int | None, ReplayResult]:
     # the data exercise what the alert test is for: some episode runs across a cut
     eps = out[None].episodes
     assert any(((eps.start <= c) & (eps.end > c + 1)).any() for c in CUTS)
+    assert (out[None].alerts_frame()["expected_value"] == "forecast").any()
     return out
 
 

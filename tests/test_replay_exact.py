@@ -69,6 +69,56 @@ def reference_loop(y, s: DetectorSettings, W: int, k: float):
     return out_exp, out_score, out_flag
 
 
+def forecast_reference_loop(y, s: DetectorSettings, windows: tuple[int, ...], k: float):
+    """Plain per-hour loop for ``expected_value = "forecast"`` (README, "The detector,
+    exactly"): the expected value at hour t comes from the last fit ending before t,
+    and the fence window holds the W forecast remainders of the hours before t.
+    Scores and flags are given per fence window W of `windows`."""
+    n, L, h, P = len(y), s.decomposition_window_hours, s.refit_every_hours, s.period_hours
+    trend_arg = None if s.trend_span == 0 else s.trend_span
+    R = 7 * P if s.weekly_period else P  # the summed seasonal of a weekly fit repeats weekly
+    valid = ~np.isnan(y)
+    fits = {}
+    out_exp, rem = {}, {}
+    out_score = {W: {} for W in windows}
+    out_flag = {W: {} for W in windows}
+    for t in range(L, n):
+        t0 = max(range(L - 1, t, h))  # the last refit hour before t
+        if t0 not in fits:
+            win = y[t0 - L + 1 : t0 + 1].copy()
+            ok = ~np.isnan(win)
+            x = np.arange(L)
+            win[~ok] = np.interp(x[~ok], x[ok], win[ok])
+            if s.weekly_period:
+                fit = MSTL(win, periods=(P, 7 * P), stl_kwargs={"robust": s.robust}).fit()
+            else:
+                fit = STL(
+                    win, period=P, seasonal=s.seasonal_span, trend=trend_arg, robust=s.robust
+                ).fit()
+            seas = fit.seasonal if fit.seasonal.ndim == 1 else fit.seasonal.sum(axis=1)
+            fits[t0] = (fit.trend, seas)
+        trend, seas = fits[t0]
+        o = t - t0
+        e = trend[L - 1] + seas[L - 1 + o - R * math.ceil(o / R)]
+        out_exp[t] = e
+        rem[t] = y[t] - e if valid[t] else np.nan
+    for W in windows:
+        for t in range(L, n):
+            stream = [rem[i] for i in range(t - W, t) if i >= L and valid[i]]
+            if t < L + W or not valid[t] or len(stream) < MIN_FENCE_VALUES:
+                out_score[W][t], out_flag[W][t] = np.nan, False
+                continue
+            q1, q3 = np.percentile(stream, [25, 75], method=s.quartile_method)
+            iqr = q3 - q1
+            r = rem[t]
+            if iqr == 0:
+                sc = math.inf if (r > q3 or r < q1) else 0.0
+            else:
+                sc = max((r - q3) / iqr, (q1 - r) / iqr)
+            out_score[W][t], out_flag[W][t] = sc, sc > k
+    return out_exp, out_score, out_flag
+
+
 def _series(n, seed, zeros=False, gaps=False):
     rng = np.random.default_rng(seed)
     t = np.arange(n)
@@ -180,3 +230,48 @@ def test_fence_scores_match_numpy_formula(sides):
     assert got.shape == r.shape
     np.testing.assert_array_equal(got, want)
     assert np.array_equal(fence_scores(r[0], q1[0], q3[0], sides), want[0], equal_nan=True)
+
+
+def _check_forecast(y, s: DetectorSettings, windows: tuple[int, ...]):
+    """The stream of `y` in forecast mode equals the plain loop's for every fence window
+    (1e-9, same flags), with nothing before the first forecast hour L and no score
+    before L + W."""
+    k = s.fence_multiplier
+    ref_exp, ref_score, ref_flag = forecast_reference_loop(y, s, windows, k)
+    st = remainder_stream(y, s, windows)
+    L = s.decomposition_window_hours
+    hours = sorted(ref_exp)
+    assert hours[0] == L and np.isnan(st.expected[:L]).all()
+    np.testing.assert_allclose(st.expected[hours], [ref_exp[t] for t in hours], rtol=0, atol=1e-9)
+    for W in windows:
+        score = fence_scores(st.remainder, st.q1[W], st.q3[W], "both")
+        rs = np.array([ref_score[W][t] for t in hours])
+        ours = score[hours]
+        assert np.isnan(ours[:W]).all() and np.isfinite(rs[W:]).any()
+        assert np.array_equal(np.isnan(rs), np.isnan(ours))
+        assert np.array_equal(np.isinf(rs), np.isinf(ours))
+        finite = np.isfinite(rs)
+        np.testing.assert_allclose(ours[finite], rs[finite], rtol=0, atol=1e-9)
+        flags = np.nan_to_num(ours, nan=-1.0) > k
+        assert flags.tolist() == [ref_flag[W][t] for t in hours]
+
+
+@pytest.mark.parametrize("case", CASES)
+@pytest.mark.parametrize("kind", ["smooth", "zeros", "gaps"])
+def test_forecast_stream_matches_reference_loop(case, kind):
+    s = DetectorSettings(
+        decomposition_window_hours=96, fence_window_hours=40, period_hours=24,
+        seasonal_span=7, fence_multiplier=1.5, expected_value="forecast", **case,
+    )
+    y = _series(96 + 40 + 50, seed=3, zeros=kind == "zeros", gaps=kind == "gaps")
+    _check_forecast(y, s, (24, 40))
+
+
+@pytest.mark.parametrize("h", [1, 6])
+def test_weekly_forecast_stream_matches_mstl_reference(h):
+    # the summed daily + weekly seasonal is taken one week back
+    s = DetectorSettings(
+        decomposition_window_hours=360, fence_window_hours=8, weekly_period=True,
+        refit_every_hours=h, fence_multiplier=1.5, expected_value="forecast",
+    )
+    _check_forecast(_series(360 + 8 + 8, seed=5), s, (8,))

@@ -243,10 +243,18 @@ def test_report_from_a_tune_result(ses, chosen_config, tmp_path: Path) -> None:
         config=chosen_config, current=ses.ws.detector, feasible=True, reason="k=2.5: met",
         split_hour=SPLIT, first_hour=167, holdout_warning="", trials=trials,
         pareto=pd.DataFrame({"load": [0.4, 1.2, 1.5], "recall": [0.4, 0.6, 0.8]}),
-        study_name="s1", storage="mem", provenance={"seed": 0},
+        study_name="s1", storage="mem",
+        provenance={"seed": 0, "goal": {"max_miss_rate": 0.25, "max_alerts_per_analyst_day": 15.0},
+                    "tuning": {"alerts": 12, "alerts_per_analyst_day": {"blue": 1.5}}},
     )
     out = tmp_path / "tuned-report"
     data = write_report(ses, result, out, executor=SerialExecutor())
+    # the provenance table (the report's last) reads as words, not Python dicts
+    page = (out / "index.html").read_text(encoding="utf-8")
+    last = page[page.index("Where these settings come from"):]
+    assert "<td>max miss rate: 0.25; max alerts per analyst day: 15</td>" in last
+    assert "<td>alerts: 12; alerts per analyst day: (blue: 1.5)</td>" in last
+    assert "{" not in last and "&#x27;" not in last
     t = data.tradeoff
     assert t.x == [4.0, 1.5, 0.4] and t.y == pytest.approx([1.0, 0.8, 0.4])
     assert t.feasible == [False, True, False] and t.pareto == [True, True, True]
@@ -271,7 +279,7 @@ def test_pareto_front_and_goal_verdict() -> None:
 
 
 def test_cli_report_refuses_an_existing_folder(ses, tmp_path: Path) -> None:
-    from calibrate.report import cli_report
+    from calibrate.commands import cli_report
 
     (tmp_path / "old").mkdir()
     args = SimpleNamespace(workspace=str(ses.ws.file), config=str(ses.ws.file),
@@ -335,10 +343,11 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
     study = optuna.load_study(study_name=res.study_name,
                               storage=search.open_storage(ses, store)[0])
     assert len(study.trials) == 3  # nothing was run
-    # one-line errors: both sources, no study file, an unknown study name
+    # one-line errors: both sources (a usage error, exit 2), no study file, an unknown
+    # study name
     capsys.readouterr()
     assert main(["report", str(ws), "--study", "--config", "x.toml", "--out",
-                 str(tmp_path / "r2")]) == 1
+                 str(tmp_path / "r2")]) == 2
     assert main(["report", str(ws), "--study", "--storage", str(tmp_path / "none.journal"),
                  "--out", str(tmp_path / "r3"), "--engine", "serial"]) == 1
     assert main(["report", str(ws), "--study", "nope", "--storage", store, "--out",

@@ -712,10 +712,10 @@ def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
     assert "already exists; pass --force" in capsys.readouterr().err
     assert out.read_bytes() == before
     assert main([*argv, "--force"]) == 0
-    # impossible goal: exit 2, nothing written
+    # impossible goal: exit 3 (2 is a usage error), nothing written
     other = tmp_path / "never.toml"
     argv2 = [a if a != str(out) else str(other) for a in argv]
-    assert main([*argv2, "--max-miss-rate", "0", "--max-alerts-per-analyst-day", "0.01"]) == 2
+    assert main([*argv2, "--max-miss-rate", "0", "--max-alerts-per-analyst-day", "0.01"]) == 3
     assert "best trade-offs" in capsys.readouterr().out
     assert not other.exists()
 

@@ -13,8 +13,7 @@ rate on the held-out weeks (seeded: the same in every run unless something is wr
 - `tune_by = "group"` with one named group, `[detector.group.money]` (spend, revenue,
   margin), and `base` for the rest.
 
-The copies drop a `[search] min_impact` range shared by several metrics (see
-`_sample.py`). Defaults finish in a few minutes on 2 cores; the README's figures use
+Defaults finish in a few minutes on 2 cores; the README's figures use
 
     python tests/benchmarks/bench_groups.py --trials 40 100 [--runs 3] [--engine local]
 """

@@ -4,8 +4,12 @@ Compares, per series-hour, the replay (`Replayer.scores`: compiled kernel / line
 smoother) with the plain loop (statsmodels STL on the trailing window every hour + numpy
 percentiles, as in `tests/test_replay_exact.py`), decomposition window 672, fence window
 168, hourly refit, on invented series (default 100 series x 90 days non-robust, 5 series
-robust). The reference loop is timed on a random sample of hours of a few series
-(`--ref-series` x `--ref-hours`) and reported per series-hour.
+robust), each with in-fit expected values (`expected_value = "fit"`) and with
+one-hour-ahead ones (`"forecast"`). The `fit` reference loop is timed on a random sample
+of hours of a few series (`--ref-series` x `--ref-hours`; each hour one fit, whose own
+remainders fill the fence window); the `forecast` loop needs the forecast remainders of
+the W hours before each scored hour, so it runs over W + `--ref-hours` consecutive hours
+(one fit per hour) and is reported per hour it processed.
 
 Cores: by default (`--workers 1`) the replay runs in this process with numba and BLAS
 limited to one thread, as the reference loop runs: one core each side. With
@@ -24,8 +28,8 @@ peak RSS of this process, of the largest worker and of both together (sampled ev
 This part has no reference: time is throughput, memory is checked against 2 GB.
 
     python tests/benchmarks/bench_replay.py [--runs 3] [--series 100] [--robust-series 5]
-        [--days 90] [--ref-series 2] [--ref-hours 60] [--workers 1]
-        [--memory-series 1000] [--skip-memory] [--skip-robust]
+        [--days 90] [--ref-series 1] [--ref-hours 60] [--workers 1]
+        [--memory-series 1000] [--skip-memory] [--skip-robust] [--modes fit forecast]
 """
 
 from __future__ import annotations
@@ -89,6 +93,31 @@ def reference_hours(y, s: DetectorSettings, hours):
     return np.array(flags)
 
 
+def _score(r, q1, q3):
+    iqr = q3 - q1
+    if iqr == 0:
+        return np.inf if (r > q3 or r < q1) else 0.0
+    return max((r - q3) / iqr, (q1 - r) / iqr)
+
+
+def reference_forecast(y, s: DetectorSettings, first: int, n_hours: int):
+    """The plain forecast loop (hourly refit) over hours first - W .. first + n_hours - 1:
+    STL on the window ending the hour before, expected = trend at its end + seasonal
+    one period back; flags of the last `n_hours` hours, each from the W forecast
+    remainders before it. Returns the flags and the number of hours processed."""
+    L, W, k, P = (s.decomposition_window_hours, s.fence_window_hours, s.fence_multiplier,
+                  s.period_hours)
+    rem = {}
+    flags = []
+    for t in range(first - W, first + n_hours):
+        fit = STL(y[t - L : t], period=P, seasonal=s.seasonal_span, robust=s.robust).fit()
+        rem[t] = y[t] - (fit.trend[L - 1] + fit.seasonal[L - P])
+        if t >= first:
+            q1, q3 = np.percentile([rem[i] for i in range(t - W, t)], [25, 75])
+            flags.append(_score(rem[t], q1, q3) > k)
+    return np.array(flags), W + n_hours
+
+
 def make_executor(workers: int) -> Executor:
     return SerialExecutor() if workers == 1 else LocalExecutor(workers)
 
@@ -98,8 +127,11 @@ def one_run(hist: History, cfg: DetectorConfig, workers: int, ref_series: int,
     """One run: cold and warm replay, then the reference on a sample of hours."""
     s = cfg.base
     n = hist.n_hours
+    L, W = s.decomposition_window_hours, s.fence_window_hours
     n_series = hist.levels["series"].n_series
-    series_hours = n_series * (n - (s.decomposition_window_hours - 1))
+    # replayed hours (each one fit in the plain loop): from L - 1 in-fit, from L forecast
+    first = L - 1 if s.expected_value == "fit" else L
+    series_hours = n_series * (n - first)
     ex = make_executor(workers)
     try:
         rp = Replayer(hist, executor=ex, progress=False)
@@ -116,12 +148,19 @@ def one_run(hist: History, cfg: DetectorConfig, workers: int, ref_series: int,
     rng = np.random.default_rng(seed)
     ref_time, ref_count, agree = 0.0, 0, True
     for i in range(ref_series):
-        hrs = np.sort(rng.choice(np.arange(s.decomposition_window_hours - 1, n), ref_hours,
-                                 replace=False))
-        t0 = time.perf_counter()
-        ref_flags = reference_hours(y_all[i], s, hrs)
-        ref_time += time.perf_counter() - t0
-        ref_count += len(hrs)
+        if s.expected_value == "fit":
+            hrs = np.sort(rng.choice(np.arange(L - 1, n), ref_hours, replace=False))
+            t0 = time.perf_counter()
+            ref_flags = reference_hours(y_all[i], s, hrs)
+            ref_time += time.perf_counter() - t0
+            ref_count += len(hrs)
+        else:
+            start = int(rng.integers(L + W, n - ref_hours))
+            hrs = np.arange(start, start + ref_hours)
+            t0 = time.perf_counter()
+            ref_flags, processed = reference_forecast(y_all[i], s, start, ref_hours)
+            ref_time += time.perf_counter() - t0
+            ref_count += processed
         score = fence_scores(scores.remainder[i], scores.q1[i], scores.q3[i], "both")
         agree &= bool(np.array_equal(np.nan_to_num(score[hrs], nan=-1) > s.fence_multiplier,
                                      ref_flags))
@@ -130,23 +169,26 @@ def one_run(hist: History, cfg: DetectorConfig, workers: int, ref_series: int,
             "ref": ref_time / ref_count, "agree": float(agree)}
 
 
-def speed(args: argparse.Namespace, robust: bool) -> None:
+def speed(args: argparse.Namespace, robust: bool, mode: str) -> None:
     n_series = args.robust_series if robust else args.series
     hist = synthetic_history(n_series, args.days, 1)
     s = DetectorSettings(decomposition_window_hours=672, fence_window_hours=168,
-                         fence_multiplier=3.0, robust=robust)
+                         fence_multiplier=3.0, robust=robust, expected_value=mode)
     cfg = DetectorConfig(base=s)
     # compile and build the smoother matrix first, on a tiny history
-    Replayer(synthetic_history(2, 30, 1), executor=SerialExecutor(), progress=False).scores(cfg)
+    Replayer(synthetic_history(2, 40, 1), executor=SerialExecutor(), progress=False).scores(cfg)
     seeds = iter(range(1, 1000))
     r = repeat_many(lambda: one_run(hist, cfg, args.workers, args.ref_series, args.ref_hours,
                                     next(seeds)), args.runs)
     label = "robust" if robust else "non-robust"
     cores = "one core each side" if args.workers == 1 else (
         f"replay on {args.workers} workers, counted per core (wall x {args.workers})")
-    print(f"replay {label}: {n_series} series x {args.days} days, window 672, fence window "
-          f"168, hourly refit; {cores}; reference on {args.ref_series} series x "
-          f"{args.ref_hours} random hours per run")
+    print(f"replay {label}, expected_value = {mode}: {n_series} series x {args.days} days, "
+          f"window 672, fence window 168, hourly refit; {cores}; reference on "
+          f"{args.ref_series} series x "
+          + (f"{args.ref_hours} random hours" if mode == "fit" else
+             f"{args.ref_hours} consecutive scored hours (+ the fence window before them)")
+          + " per run")
     print(f"  replay warm, per series-hour: {spread(r['warm']).fmt('.2f', 'us', 1e6)}")
     print(f"  replay cold (new replayer{', worker start-up' if args.workers > 1 else ''}), "
           f"per series-hour: {spread(r['cold']).fmt('.2f', 'us', 1e6)}")
@@ -195,13 +237,15 @@ def main() -> None:
     ap.add_argument("--series", type=int, default=100)
     ap.add_argument("--robust-series", type=int, default=5)
     ap.add_argument("--days", type=int, default=90)
-    ap.add_argument("--ref-series", type=int, default=2)
+    ap.add_argument("--ref-series", type=int, default=1)
     ap.add_argument("--ref-hours", type=int, default=60)
     ap.add_argument("--workers", type=int, default=1,
                     help="1: the replay in this process on one core (default)")
     ap.add_argument("--memory-series", type=int, default=1000)
     ap.add_argument("--skip-memory", action="store_true")
     ap.add_argument("--skip-robust", action="store_true")
+    ap.add_argument("--modes", nargs="+", default=["fit", "forecast"],
+                    choices=("fit", "forecast"), help="expected values to time")
     args = ap.parse_args()
     print(f"machine: {platform.platform()}, {os.cpu_count()} cores, python "
           f"{platform.python_version()}")
@@ -211,7 +255,8 @@ def main() -> None:
     with threadpool_limits(1):
         numba.set_num_threads(1)
         for robust in (False,) if args.skip_robust else (False, True):
-            speed(args, robust)
+            for mode in args.modes:
+                speed(args, robust, mode)
     numba.set_num_threads(threads)
     if not args.skip_memory:
         memory(args)

@@ -1,6 +1,6 @@
 """Benchmark: `search.tune` versus a plain search, same process, same cores, same space.
 
-What is compared: on the sample workspace (copied; see `_sample.py`), `search.tune`
+What is compared: on a copy of the sample workspace, `search.tune`
 (decompositions cached by setting, the fence multiplier solved over every distinct score
 breakpoint and each watched metric's minimum impact solved over its grid, see the
 README's "How tuning works") against a plain Optuna search of the same structural
