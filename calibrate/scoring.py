@@ -1050,21 +1050,29 @@ def impact_curves(runs: Any, ks: np.ndarray, incidents: Incidents, early: int, l
 
 
 @numba.njit(cache=True)
+def _grouped(pa, pi, n):
+    """Pairs (run pa[q], item pi[q]) grouped by run: run e's items are
+    ``items[head[e]:head[e + 1]]``, in pair order."""
+    head = np.zeros(n + 1, dtype=np.int64)
+    for q in range(pa.shape[0]):
+        head[pa[q] + 1] += 1
+    head = np.cumsum(head)
+    fill = head.copy()
+    items = np.empty(pa.shape[0], dtype=np.int64)
+    for q in range(pa.shape[0]):
+        items[fill[pa[q]]] = pi[q]
+        fill[pa[q]] += 1
+    return head, items
+
+
+@numba.njit(cache=True)
 def _online_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, n_k, n_t, n_inc):
     """Counts of raised runs (all, true) per ascending multiplier level, minimum-impact
     level and team, and per (minimum-impact level, multiplier level, incident) whether
     some run raised inside the incident's window exists there. `pa`/`pi` are pairs
     that overlap in time (a superset of the catches)."""
     n_m, n = raised.shape
-    head = np.zeros(n + 1, dtype=np.int64)  # pairs grouped by run
-    for q in range(pa.shape[0]):
-        head[pa[q] + 1] += 1
-    head = np.cumsum(head)
-    fill = head.copy()
-    inc = np.empty(pa.shape[0], dtype=np.int64)
-    for q in range(pa.shape[0]):
-        inc[fill[pa[q]]] = pi[q]
-        fill[pa[q]] += 1
+    head, inc = _grouped(pa, pi, n)  # the pairs of run e: inc[head[e]:head[e + 1]]
     diff = np.zeros((2, n_k + 1, n_m, n_t), dtype=np.int64)
     caught = np.zeros((n_m, n_k, n_inc), dtype=np.bool_)
     for e in range(n):
@@ -1187,24 +1195,8 @@ def _exact_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, fa, fi, f_lo, f_
     incidents caught at every multiplier index (difference arrays; an incident's
     catching runs merged into a union of index ranges), then the best feasible pair."""
     n_m, n = raised.shape
-    head = np.zeros(n + 1, dtype=np.int64)  # incident pairs grouped by run
-    for q in range(pa.shape[0]):
-        head[pa[q] + 1] += 1
-    head = np.cumsum(head)
-    fill = head.copy()
-    inc = np.empty(pa.shape[0], dtype=np.int64)
-    for q in range(pa.shape[0]):
-        inc[fill[pa[q]]] = pi[q]
-        fill[pa[q]] += 1
-    fhead = np.zeros(n + 1, dtype=np.int64)  # known-false pairs grouped by run
-    for q in range(fa.shape[0]):
-        fhead[fa[q] + 1] += 1
-    fhead = np.cumsum(fhead)
-    ffill = fhead.copy()
-    fwin = np.empty(fa.shape[0], dtype=np.int64)
-    for q in range(fa.shape[0]):
-        fwin[ffill[fa[q]]] = fi[q]
-        ffill[fa[q]] += 1
+    head, inc = _grouped(pa, pi, n)  # incident pairs of run e: inc[head[e]:head[e + 1]]
+    fhead, fwin = _grouped(fa, fi, n)  # known-false pairs, the same way
     out = np.array([-1, -1, 0, 0, 0], dtype=np.int64)
     out_teams = np.zeros(n_t, dtype=np.int64)
     best_cost = np.inf
