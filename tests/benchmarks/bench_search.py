@@ -210,8 +210,9 @@ def cached_trial_seconds(ses, res) -> float:
     return (time.perf_counter() - t0) / len(configs)
 
 
+# the settings a remainder stream depends on (`DetectorSettings.decomposition_key`)
 DECOMPOSITION = {"period_hours", "seasonal_span", "trend_span", "robust", "weekly_period",
-                 "decomposition_window_hours", "refit_every_hours"}
+                 "decomposition_window_hours", "refit_every_hours", "expected_value"}
 
 
 def one_run(args: argparse.Namespace, tmp: Path, run: int) -> dict:
