@@ -1,21 +1,35 @@
 """Replay speed and memory against the plain reference loop, in one process.
 
-Prints every ratio it measures:
-- per series-hour: the replay (compiled kernel / linear smoother, fanned out over
-  all cores) versus the plain loop (statsmodels STL on the trailing window every
-  hour + numpy percentiles), non-robust and robust, each with in-fit expected values
-  (`expected_value = "fit"`) and with one-hour-ahead ones (`"forecast"`), decomposition
-  window 672, hourly refit, 100 series x 90 days. Both sides are timed `--runs` times
-  (default 3) and the median is used. The `fit` reference loop is timed on a sample of
-  hours of a few series (each hour one fit, whose own remainders fill the fence
-  window); the `forecast` loop needs the forecast remainders of the W hours before
-  each scored hour, so it runs over W + `--ref-hours` consecutive hours (one fit per
-  hour) and is reported per hour it processed;
-- flags: the replay's flags equal the reference loop's on every timed hour;
-- memory: peak RSS of a replay of 1,000 series x 90 days x 4 metrics (target < 2 GB).
+Compares, per series-hour, the replay (`Replayer.scores`: compiled kernel / linear
+smoother) with the plain loop (statsmodels STL on the trailing window every hour + numpy
+percentiles, as in `tests/test_replay_exact.py`), decomposition window 672, fence window
+168, hourly refit, on invented series (default 100 series x 90 days non-robust, 5 series
+robust), each with in-fit expected values (`expected_value = "fit"`) and with
+one-hour-ahead ones (`"forecast"`). The `fit` reference loop is timed on a random sample
+of hours of a few series (`--ref-series` x `--ref-hours`; each hour one fit, whose own
+remainders fill the fence window); the `forecast` loop needs the forecast remainders of
+the W hours before each scored hour, so it runs over W + `--ref-hours` consecutive hours
+(one fit per hour) and is reported per hour it processed.
 
-Usage: python tests/benchmarks/bench_replay.py [--series 100] [--days 90] [--ref-hours 60]
-       [--runs 3] [--memory-series 1000] [--skip-memory] [--skip-robust]
+Cores: by default (`--workers 1`) the replay runs in this process with numba and BLAS
+limited to one thread, as the reference loop runs: one core each side. With
+`--workers N > 1` the replay fans out over N processes and its time is counted per
+core (wall time x N), so the ratio is per core on both sides.
+
+Each run starts a new replayer (and, with workers, new worker processes): "cold" is its
+first replay (with worker start-up), "warm" a second one with the stream cache emptied
+(what each refit in a search costs); then the reference is timed on its sample. Every
+figure is the median and range over `--runs` runs (at least 3); the ratio is computed per
+run. The replay's flags must equal the reference loop's on every timed hour.
+
+Memory (unless `--skip-memory`): a replay of `--memory-series` series x 90 days x 4
+metrics (window 336) on the local engine with every core, run `--runs` times; time and
+peak RSS of this process, of the largest worker and of both together (sampled every 50 ms).
+This part has no reference: time is throughput, memory is checked against 2 GB.
+
+    python tests/benchmarks/bench_replay.py [--runs 3] [--series 100] [--robust-series 5]
+        [--days 90] [--ref-series 1] [--ref-hours 60] [--workers 1]
+        [--memory-series 1000] [--skip-memory] [--skip-robust] [--modes fit forecast]
 """
 
 from __future__ import annotations
@@ -23,18 +37,20 @@ from __future__ import annotations
 import argparse
 import os
 import platform
-import resource
 import sys
 import time
 
 import numpy as np
 import pandas as pd
 from statsmodels.tsa.seasonal import STL
+from threadpoolctl import threadpool_limits
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
+from _repeat import PeakRSS, add_runs_flag, ratios, repeat_many, spread  # noqa: E402
+
 from calibrate.decompose import fence_scores  # noqa: E402
-from calibrate.executors import LocalExecutor  # noqa: E402
+from calibrate.executors import Executor, LocalExecutor, SerialExecutor  # noqa: E402
 from calibrate.history import History, LevelSeries  # noqa: E402
 from calibrate.replay import Replayer  # noqa: E402
 from calibrate.settings import DetectorConfig, DetectorSettings  # noqa: E402
@@ -89,8 +105,8 @@ def reference_forecast(y, s: DetectorSettings, first: int, n_hours: int):
     STL on the window ending the hour before, expected = trend at its end + seasonal
     one period back; flags of the last `n_hours` hours, each from the W forecast
     remainders before it. Returns the flags and the number of hours processed."""
-    L, W, k, P = s.decomposition_window_hours, s.fence_window_hours, s.fence_multiplier, \
-        s.period_hours
+    L, W, k, P = (s.decomposition_window_hours, s.fence_window_hours, s.fence_multiplier,
+                  s.period_hours)
     rem = {}
     flags = []
     for t in range(first - W, first + n_hours):
@@ -102,106 +118,148 @@ def reference_forecast(y, s: DetectorSettings, first: int, n_hours: int):
     return np.array(flags), W + n_hours
 
 
-def peak_rss_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+def make_executor(workers: int) -> Executor:
+    return SerialExecutor() if workers == 1 else LocalExecutor(workers)
 
 
-def _mode_line(args, s: DetectorSettings, hist: History, y_all, workers: int) -> None:
-    """Time one configuration against its plain loop and print the line."""
-    cfg = DetectorConfig(base=s)
+def one_run(hist: History, cfg: DetectorConfig, workers: int, ref_series: int,
+            ref_hours: int, seed: int) -> dict[str, float]:
+    """One run: cold and warm replay, then the reference on a sample of hours."""
+    s = cfg.base
     n = hist.n_hours
     L, W = s.decomposition_window_hours, s.fence_window_hours
-    # warm up compilation and the smoother matrix on a tiny history
-    Replayer(synthetic_history(2, 40, 1), progress=False).scores(cfg)
-    ex = LocalExecutor(workers)
-    rp = Replayer(hist, executor=ex, progress=False)
-    t0 = time.perf_counter()
-    scores = rp.scores(cfg)[("series", "m0")]
-    cold = time.perf_counter() - t0
-    warm = []
-    for _ in range(args.runs):
+    n_series = hist.levels["series"].n_series
+    # replayed hours (each one fit in the plain loop): from L - 1 in-fit, from L forecast
+    first = L - 1 if s.expected_value == "fit" else L
+    series_hours = n_series * (n - first)
+    ex = make_executor(workers)
+    try:
+        rp = Replayer(hist, executor=ex, progress=False)
+        t0 = time.perf_counter()
+        rp.scores(cfg)
+        cold = time.perf_counter() - t0
         rp.cache.clear()  # same workers, now warm: the cost of each refit in a search
         t0 = time.perf_counter()
         scores = rp.scores(cfg)[("series", "m0")]
-        warm.append(time.perf_counter() - t0)
-    ex.close()
-    ours = float(np.median(warm))
-    # replayed hours (each one fit in the plain loop): from L - 1 in-fit, from L forecast
-    first = L - 1 if s.expected_value == "fit" else L
-    series_hours = args.series * (n - first)
-    per_ours = ours / series_hours
-    rng = np.random.default_rng(1)
-    per_ref_runs, ref_count, agree = [], 0, True
-    for _ in range(args.runs):
-        ref_time, count = 0.0, 0
-        for i in range(args.ref_series):
-            score = fence_scores(scores.remainder[i], scores.q1[i], scores.q3[i], "both")
-            if s.expected_value == "fit":
-                hrs = np.sort(rng.choice(np.arange(L - 1, n), args.ref_hours, replace=False))
+        warm = time.perf_counter() - t0
+    finally:
+        ex.close()
+    y_all = hist.levels["series"].values["m0"]
+    rng = np.random.default_rng(seed)
+    ref_time, ref_count, agree = 0.0, 0, True
+    for i in range(ref_series):
+        if s.expected_value == "fit":
+            hrs = np.sort(rng.choice(np.arange(L - 1, n), ref_hours, replace=False))
+            t0 = time.perf_counter()
+            ref_flags = reference_hours(y_all[i], s, hrs)
+            ref_time += time.perf_counter() - t0
+            ref_count += len(hrs)
+        else:
+            start = int(rng.integers(L + W, n - ref_hours))
+            hrs = np.arange(start, start + ref_hours)
+            t0 = time.perf_counter()
+            ref_flags, processed = reference_forecast(y_all[i], s, start, ref_hours)
+            ref_time += time.perf_counter() - t0
+            ref_count += processed
+        score = fence_scores(scores.remainder[i], scores.q1[i], scores.q3[i], "both")
+        agree &= bool(np.array_equal(np.nan_to_num(score[hrs], nan=-1) > s.fence_multiplier,
+                                     ref_flags))
+    # per series-hour and per core: the replay's wall time x its cores
+    return {"warm": warm * workers / series_hours, "cold": cold * workers / series_hours,
+            "ref": ref_time / ref_count, "agree": float(agree)}
+
+
+def speed(args: argparse.Namespace, robust: bool, mode: str) -> None:
+    n_series = args.robust_series if robust else args.series
+    hist = synthetic_history(n_series, args.days, 1)
+    s = DetectorSettings(decomposition_window_hours=672, fence_window_hours=168,
+                         fence_multiplier=3.0, robust=robust, expected_value=mode)
+    cfg = DetectorConfig(base=s)
+    # compile and build the smoother matrix first, on a tiny history
+    Replayer(synthetic_history(2, 40, 1), executor=SerialExecutor(), progress=False).scores(cfg)
+    seeds = iter(range(1, 1000))
+    r = repeat_many(lambda: one_run(hist, cfg, args.workers, args.ref_series, args.ref_hours,
+                                    next(seeds)), args.runs)
+    label = "robust" if robust else "non-robust"
+    cores = "one core each side" if args.workers == 1 else (
+        f"replay on {args.workers} workers, counted per core (wall x {args.workers})")
+    print(f"replay {label}, expected_value = {mode}: {n_series} series x {args.days} days, "
+          f"window 672, fence window 168, hourly refit; {cores}; reference on "
+          f"{args.ref_series} series x "
+          + (f"{args.ref_hours} random hours" if mode == "fit" else
+             f"{args.ref_hours} consecutive scored hours (+ the fence window before them)")
+          + " per run")
+    print(f"  replay warm, per series-hour: {spread(r['warm']).fmt('.2f', 'us', 1e6)}")
+    print(f"  replay cold (new replayer{', worker start-up' if args.workers > 1 else ''}), "
+          f"per series-hour: {spread(r['cold']).fmt('.2f', 'us', 1e6)}")
+    print(f"  reference loop, per series-hour: {spread(r['ref']).fmt('.2f', 'ms', 1e3)}")
+    print(f"  reference / replay warm: {spread(ratios(r['ref'], r['warm'])).fmt(',.0f', 'x')}")
+    print(f"  reference / replay cold: {spread(ratios(r['ref'], r['cold'])).fmt(',.0f', 'x')}")
+    print(f"  flags identical to the reference on every timed hour: "
+          f"{all(a == 1.0 for a in r['agree'])} (in {len(r['agree'])} runs)")
+
+
+def memory(args: argparse.Namespace) -> None:
+    workers = os.cpu_count() or 1
+    big = synthetic_history(args.memory_series, args.days, 4, seed=2)
+    cfg = DetectorConfig(base=DetectorSettings(decomposition_window_hours=336,
+                                               fence_window_hours=168))
+
+    def run() -> dict[str, float]:
+        with PeakRSS() as mem:
+            ex = LocalExecutor(workers)
+            try:
                 t0 = time.perf_counter()
-                ref_flags = reference_hours(y_all[i], s, hrs)
-                ref_time += time.perf_counter() - t0
-                count += len(hrs)
-            else:
-                start = int(rng.integers(L + W, n - args.ref_hours))
-                hrs = np.arange(start, start + args.ref_hours)
-                t0 = time.perf_counter()
-                ref_flags, processed = reference_forecast(y_all[i], s, start, args.ref_hours)
-                ref_time += time.perf_counter() - t0
-                count += processed
-            agree &= bool(np.array_equal(np.nan_to_num(score[hrs], nan=-1) > 3.0, ref_flags))
-        per_ref_runs.append(ref_time / count)
-        ref_count = count
-    per_ref = float(np.median(per_ref_runs))
-    label = "robust" if s.robust else "non-robust"
-    print(f"replay {label}, expected_value = {s.expected_value}: {args.series} series x "
-          f"{args.days} days, window 672, hourly refit, {workers} workers: {ours:.2f} s warm "
-          f"(median of {args.runs}: {', '.join(f'{x:.2f}' for x in warm)}; {cold:.2f} s with "
-          f"worker start-up) = {per_ours * 1e6:.1f} us per series-hour; reference loop "
-          f"{per_ref * 1e3:.2f} ms per series-hour (median of {args.runs} runs of {ref_count} "
-          f"hours); ratio {per_ref / per_ours:.0f}x (target "
-          f"{'200' if not s.robust else '40'}x), with start-up "
-          f"{per_ref * series_hours / cold:.0f}x; flags identical: {agree}", flush=True)
+                result = Replayer(big, executor=ex, progress=False).replay(cfg)
+                took = time.perf_counter() - t0
+            finally:
+                ex.close()
+        return {"s": took, "alerts": len(result.episodes), "self": mem.self_peak,
+                "child": mem.child_peak, "total": mem.total_peak}
+
+    r = repeat_many(run, args.runs)
+    mb = 1 / 2**20
+    hours = args.memory_series * 4 * (big.n_hours - 335)
+    print(f"memory: replay of {args.memory_series} series x {args.days} days x 4 metrics, "
+          f"window 336, local engine, {workers} workers ({int(r['alerts'][0])} alerts; no "
+          "reference)")
+    print(f"  time: {spread(r['s']).fmt('.1f', 's')}; throughput "
+          f"{spread([hours / t / workers for t in r['s']]).fmt(',.0f', 'series-hours/s/core')}")
+    print(f"  peak RSS of this process: {spread(r['self']).fmt(',.0f', 'MB', mb)}")
+    print(f"  peak RSS of the largest worker: {spread(r['child']).fmt(',.0f', 'MB', mb)}")
+    print(f"  peak RSS of this process + workers: {spread(r['total']).fmt(',.0f', 'MB', mb)}"
+          " (target < 2,048 MB)")
 
 
 def main() -> None:
-    ap = argparse.ArgumentParser()
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    add_runs_flag(ap)
     ap.add_argument("--series", type=int, default=100)
+    ap.add_argument("--robust-series", type=int, default=5)
     ap.add_argument("--days", type=int, default=90)
-    ap.add_argument("--ref-series", type=int, default=2)
+    ap.add_argument("--ref-series", type=int, default=1)
     ap.add_argument("--ref-hours", type=int, default=60)
+    ap.add_argument("--workers", type=int, default=1,
+                    help="1: the replay in this process on one core (default)")
     ap.add_argument("--memory-series", type=int, default=1000)
     ap.add_argument("--skip-memory", action="store_true")
     ap.add_argument("--skip-robust", action="store_true")
-    ap.add_argument("--runs", type=int, default=3, help="timed runs per side (median)")
+    ap.add_argument("--modes", nargs="+", default=["fit", "forecast"],
+                    choices=("fit", "forecast"), help="expected values to time")
     args = ap.parse_args()
     print(f"machine: {platform.platform()}, {os.cpu_count()} cores, python "
           f"{platform.python_version()}")
-    hist = synthetic_history(args.series, args.days, 1)
-    y_all = hist.levels["series"].values["m0"]
-    workers = os.cpu_count() or 1
-    for robust in (False,) if args.skip_robust else (False, True):
-        for mode in ("fit", "forecast"):
-            s = DetectorSettings(decomposition_window_hours=672, fence_window_hours=168,
-                                 fence_multiplier=3.0, robust=robust, expected_value=mode)
-            _mode_line(args, s, hist, y_all, workers)
-    if not args.skip_memory:
-        before = peak_rss_mb()
-        big = synthetic_history(args.memory_series, args.days, 4, seed=2)
-        s = DetectorSettings(decomposition_window_hours=336, fence_window_hours=168)
-        ex = LocalExecutor(workers)
-        rp = Replayer(big, executor=ex, progress=False)
-        t0 = time.perf_counter()
-        result = rp.replay(DetectorConfig(base=s))
-        took = time.perf_counter() - t0
-        ex.close()
-        import psutil
+    import numba
 
-        children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
-        print(f"memory: replay of {args.memory_series} series x {args.days} days x 4 metrics "
-              f"({took:.1f} s, {len(result.episodes)} alerts): peak RSS of this process "
-              f"{peak_rss_mb():.0f} MB (before: {before:.0f} MB), largest worker {children:.0f} MB"
-              f" (target < 2048 MB); now {psutil.Process().memory_info().rss / 2**20:.0f} MB")
+    threads = numba.get_num_threads()
+    with threadpool_limits(1):
+        numba.set_num_threads(1)
+        for robust in (False,) if args.skip_robust else (False, True):
+            for mode in args.modes:
+                speed(args, robust, mode)
+    numba.set_num_threads(threads)
+    if not args.skip_memory:
+        memory(args)
 
 
 if __name__ == "__main__":

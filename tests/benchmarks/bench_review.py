@@ -1,20 +1,27 @@
 """Review page speed with 10,000 alerts: queue interactive < 2 s, one alert's detail < 200 ms.
 
-Builds an invented workspace (183 series x 2 metrics x 5 weeks) whose detector, set
-loose on purpose, raises at least 10,000 alerts, serves the review page on 127.0.0.1
-and measures, three times each, printing the median:
+No reference: every figure is a latency against its target. Builds an invented
+workspace (183 series x 2 metrics x 5 weeks) whose detector, set loose on purpose,
+raises at least 10,000 alerts, serves the review page on 127.0.0.1 from this process
+and measures, `--runs` times (at least 3), printing the median and range:
 
 - queue interactive: from navigation to the queue rendered (every alert row in the
-  page) and to the first alert's plots drawn, in headless Chromium;
+  page) and to the first alert's plots drawn, in headless Chromium (a fresh page each run);
 - one alert's detail: the time to serve ``GET /api/alerts/{id}`` (plot data of the
-  series and its related metrics), median and worst of 40 alerts spread over the queue;
+  series and its related metrics), median and worst of 40 alerts spread over the queue
+  (each run's median and worst, then their median and range over the runs);
 - a click on an alert far down the queue until its detail and plots are drawn.
 
-Run: ``python tests/benchmarks/bench_review.py`` (needs /usr/bin/chromium and playwright).
+The server and the browser share the machine's cores with nothing else this script runs.
+
+    python tests/benchmarks/bench_review.py [--runs 3]
+
+(needs /usr/bin/chromium and playwright).
 """
 
 from __future__ import annotations
 
+import argparse
 import statistics
 import sys
 import tempfile
@@ -27,6 +34,9 @@ import pandas as pd
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _repeat import add_runs_flag, spread  # noqa: E402
 
 from calibrate import api  # noqa: E402
 from calibrate.executors import SerialExecutor  # noqa: E402
@@ -110,21 +120,24 @@ def detail_times(base: str, token: str, ids: list[str]) -> list[float]:
 def main() -> None:
     from playwright.sync_api import sync_playwright
 
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    add_runs_flag(ap)
+    args = ap.parse_args()
+
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
         ws = make(root)
-        t0 = time.perf_counter()
         data = open_review(ws, verdicts=root / "reviewed.csv", executor=SerialExecutor(),
                            progress=False)
         n = data.progress()["total"]
-        print(f"{n} alerts; replay and queue built in {time.perf_counter() - t0:.1f} s")
+        print(f"{n} alerts in the queue")
         ids = data.queue()["alert_id"]
         sample = [ids[i] for i in np.linspace(0, n - 1, 40).astype(int)]
         with running(data) as url, sync_playwright() as p:
             base, token = url.split("/?token=")
             browser = p.chromium.launch(executable_path="/usr/bin/chromium")
             queue, ready, click, med, worst = [], [], [], [], []
-            for _ in range(3):
+            for _ in range(args.runs):
                 page = browser.new_page(viewport={"width": 1400, "height": 900})
                 t = time.perf_counter()
                 page.goto(url)
@@ -148,15 +161,14 @@ def main() -> None:
                 med.append(statistics.median(times))
                 worst.append(max(times))
             browser.close()
-    m = statistics.median
-    print(f"queue rendered and painted ({n} rows): median {m(queue):.2f} s of "
-          f"{[round(x, 2) for x in queue]} (target < 2 s); first alert's plots drawn: "
-          f"{m(ready):.2f} s")
-    print("click far down the queue until its detail and plots are drawn: median "
-          f"{1000 * m(click):.0f} ms")
-    print(f"one alert's detail served: median {1000 * m(med):.0f} ms, worst of 40 "
-          f"{1000 * m(worst):.0f} ms (medians of 3 runs; target < 200 ms)")
-
+    print(f"queue rendered and painted ({n} rows): {spread(queue).fmt('.2f', 's')} "
+          "(target < 2 s)")
+    print(f"first alert's plots drawn: {spread(ready).fmt('.2f', 's')}")
+    print(f"click far down the queue until its detail and plots are drawn: "
+          f"{spread(click).fmt(',.0f', 'ms', 1e3)}")
+    print(f"one alert's detail served, each run's median of 40 alerts: "
+          f"{spread(med).fmt(',.0f', 'ms', 1e3)}; each run's worst of 40: "
+          f"{spread(worst).fmt(',.0f', 'ms', 1e3)} (target < 200 ms)")
 
 if __name__ == "__main__":
     main()

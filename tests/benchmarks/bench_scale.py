@@ -1,24 +1,26 @@
 """Replay throughput and peak memory of the local and Dask engines on one machine.
 
-An invented in-memory history (one level, 4 metrics, daily cycle, noise, a few
-spikes; default 1,000 series x 90 days) is replayed with decomposition window 672
-(non-robust, hourly refit) and fence window 168, first with the local engine
-(`LocalExecutor`, forkserver processes) and then with the Dask engine (a
-`LocalCluster` of single-threaded worker processes, loopback only, no dashboard).
+No reference: every figure is throughput (series-hours per second per core) or memory,
+never "x faster". An invented in-memory history (one level, 4 metrics, daily cycle,
+noise, a few spikes; default 300 series x 90 days, `--series 1000` for the README's
+size) is replayed with decomposition window 672 (non-robust, hourly refit) and fence
+window 168, with the local engine (`LocalExecutor`, forkserver processes) and the Dask
+engine (a `LocalCluster` of single-threaded worker processes, loopback only, no
+dashboard), each on `--workers` cores (default 2).
 
-Each engine is timed twice on the same `Replayer`: "cold" (first run: worker start,
-shipping the history, each worker building the 672-hour smoother matrix) and "warm"
-(the cache cleared, the same workers and shipped history: what every further
-search trial that refits costs). Throughput is series-hours per second per core,
-where a series-hour is one replayed hour (t >= window - 1) of one series and metric.
-Peak memory is the largest sum of RSS of this process and all its children
-(sampled every 50 ms with psutil; shared pages are counted once per process).
-Series-hours per CPU-second (user + system time of this process and its children)
-is printed too: it is less sensitive to other load on a shared machine.
-The two engines' per-hour scores are compared for equality.
+Each run starts the engine anew and replays twice on one `Replayer`: "cold" (worker
+start, shipping the history, each worker building the 672-hour smoother matrix) and
+"warm" (the cache cleared, the same workers and shipped history: what every further
+search trial that refits costs). A series-hour is one replayed hour (t >= window - 1)
+of one series and metric. Series-hours per CPU-second (user + system time of this
+process and its children) is printed too: it is less sensitive to other load on a
+shared machine. Peak memory is the largest sum of RSS of this process and all its
+children during the run (sampled every 50 ms; shared pages counted once per process).
+Every figure is the median and range over `--runs` runs (at least 3). The two engines'
+per-hour scores are compared for equality.
 
-Usage: python tests/benchmarks/bench_scale.py [--series 1000] [--days 90]
-       [--workers 2] [--engines local,dask]
+    python tests/benchmarks/bench_scale.py [--runs 3] [--series 300] [--days 90]
+        [--workers 2] [--engines local,dask]
 """
 
 from __future__ import annotations
@@ -27,7 +29,6 @@ import argparse
 import os
 import platform
 import sys
-import threading
 import time
 
 import numpy as np
@@ -35,6 +36,8 @@ import pandas as pd
 import psutil
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
+
+from _repeat import PeakRSS, add_runs_flag, repeat_many, spread  # noqa: E402
 
 from calibrate.executors import DaskExecutor, Executor, LocalExecutor  # noqa: E402
 from calibrate.history import History, LevelSeries  # noqa: E402
@@ -63,41 +66,6 @@ def synthetic_history(n_series: int, days: int, seed: int = 0) -> History:
     return History(hours=hours, levels={"series": level}, key_columns=("series",))
 
 
-class PeakRSS:
-    """Samples the summed RSS of this process and its children in a thread."""
-
-    def __init__(self, every: float = 0.05):
-        self.every = every
-        self.peak = 0
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._loop, daemon=True)
-
-    @staticmethod
-    def now() -> int:
-        me = psutil.Process()
-        total = me.memory_info().rss
-        for child in me.children(recursive=True):
-            try:
-                total += child.memory_info().rss
-            except psutil.Error:
-                pass
-        return total
-
-    def _loop(self) -> None:
-        while not self._stop.is_set():
-            self.peak = max(self.peak, self.now())
-            time.sleep(self.every)
-
-    def __enter__(self) -> PeakRSS:
-        self._thread.start()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self._stop.set()
-        self._thread.join()
-        self.peak = max(self.peak, self.now())
-
-
 def cpu_seconds() -> float:
     """User + system CPU seconds of this process and its live children."""
     me = psutil.Process()
@@ -110,38 +78,52 @@ def cpu_seconds() -> float:
     return total
 
 
-def run_engine(name: str, make: callable, hist: History, cfg: DetectorConfig, cores: int):
-    """Cold and warm replay with one engine; returns its scores and prints its figures."""
+def run_engine(name: str, make: callable, hist: History, cfg: DetectorConfig, cores: int,
+               runs: int):
+    """`runs` runs of one engine (each: start, cold and warm replay, close); prints its
+    figures and returns the last run's scores."""
     L = cfg.base.decomposition_window_hours
     n_series = hist.levels["series"].n_series
     series_hours = n_series * METRICS * (hist.n_hours - (L - 1))
-    with PeakRSS() as mem:
-        t0 = time.perf_counter()
-        ex: Executor = make()
-        start = time.perf_counter() - t0
-        try:
-            rp = Replayer(hist, executor=ex, progress=False)
-            timings = []
-            for _ in ("cold", "warm"):
-                rp.cache.clear()
-                c0, t0 = cpu_seconds(), time.perf_counter()
-                scores = rp.scores(cfg)
-                timings.append((time.perf_counter() - t0, cpu_seconds() - c0))
-        finally:
-            ex.close()
-    for label, (took, cpu) in zip(("cold", "warm"), timings, strict=True):
-        rate = series_hours / took / cores
-        print(f"{name:>5} {label}: {took:7.1f} s  {rate:9,.0f} series-hours/s/core"
-              f"  ({series_hours:,} series-hours on {cores} cores);"
-              f" {series_hours / cpu:9,.0f} series-hours per CPU-second")
-    print(f"{name:>5}: engine start {start:.1f} s, peak RSS (this process + children)"
-          f" {mem.peak / 2**20:,.0f} MB")
-    return scores
+    out = {}
+
+    def run() -> dict[str, float]:
+        figures = {}
+        with PeakRSS() as mem:
+            t0 = time.perf_counter()
+            ex: Executor = make()
+            figures["start"] = time.perf_counter() - t0
+            try:
+                rp = Replayer(hist, executor=ex, progress=False)
+                for label in ("cold", "warm"):
+                    rp.cache.clear()
+                    c0, t0 = cpu_seconds(), time.perf_counter()
+                    out["scores"] = rp.scores(cfg)
+                    figures[label] = time.perf_counter() - t0
+                    figures[f"{label} cpu"] = cpu_seconds() - c0
+            finally:
+                ex.close()
+        figures["peak"] = mem.total_peak
+        return figures
+
+    r = repeat_many(run, runs)
+    print(f"{name} ({series_hours:,} series-hours per replay, {cores} cores):")
+    for label in ("cold", "warm"):
+        rate = [series_hours / t / cores for t in r[label]]
+        cpu = [series_hours / c for c in r[f"{label} cpu"]]
+        print(f"  {label}: {spread(r[label]).fmt('.2f', 's')}")
+        print(f"    throughput {spread(rate).fmt(',.0f', 'series-hours/s/core')}")
+        print(f"    {spread(cpu).fmt(',.0f', 'series-hours per CPU-second')}")
+    print(f"  engine start: {spread(r['start']).fmt('.1f', 's')}")
+    print(f"  peak RSS (this process + children): "
+          f"{spread(r['peak']).fmt(',.0f', 'MB', 1 / 2**20)}")
+    return out["scores"]
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--series", type=int, default=1000)
+    add_runs_flag(ap)
+    ap.add_argument("--series", type=int, default=300)
     ap.add_argument("--days", type=int, default=90)
     ap.add_argument("--workers", type=int, default=2)
     ap.add_argument("--engines", default="local,dask")
@@ -162,7 +144,7 @@ def main() -> None:
     }
     results = {}
     for name in args.engines.split(","):
-        results[name] = run_engine(name, engines[name], hist, cfg, w)
+        results[name] = run_engine(name, engines[name], hist, cfg, w, args.runs)
     if len(results) == 2:
         a, b = results.values()
         same = all(
@@ -170,7 +152,7 @@ def main() -> None:
             for k in a
             for f in ("expected", "remainder", "q1", "q3", "score")
         )
-        print(f"per-hour scores identical across engines: {same}")
+        print(f"per-hour scores identical across engines (last run of each): {same}")
 
 
 if __name__ == "__main__":

@@ -6,20 +6,23 @@ during a 28-day warm-up) without replaying, then writes the Parquet export twice
 this process: streamed block by block (`write_table_blocks(result.score_blocks())`,
 what the CLI does) and, as the reference, the whole table built in memory first
 (`write_table(result.scores_frame())`, what the CLI did before). For each it prints
-the peak resident memory above the level before it started, with the median and
-range over the repeats, and checks that both files hold the same rows.
+the peak resident memory above the level before it started and its time, as the median
+and range over `--runs` runs (at least 3; the two alternate within each run, same
+process, same core), the per-run ratio whole / streamed of the peaks, and checks that
+both files hold the same rows. No speed claim: the reference is for memory.
 
 The peak is the kernel's high-water mark (VmHWM, reset through /proc/self/clear_refs
 before each run) where Linux allows it, else the largest of 5 ms samples.
 
-    python tests/benchmarks/bench_scores_export.py [--series 500] [--repeat 3]
+    python tests/benchmarks/bench_scores_export.py [--series 500] [--runs 3]
+
+(the README's row: `--series 1000`).
 """
 
 from __future__ import annotations
 
 import argparse
 import gc
-import statistics
 import sys
 import tempfile
 import threading
@@ -34,6 +37,9 @@ import pyarrow.parquet as pq
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _repeat import add_runs_flag, ratios, spread  # noqa: E402
 
 from calibrate.outputs import write_table, write_table_blocks  # noqa: E402
 from calibrate.replay import MetricScores, ReplayResult  # noqa: E402
@@ -136,7 +142,7 @@ def same_rows(a: Path, b: Path) -> bool:
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--series", type=int, default=500, help="base series (default: 500)")
-    ap.add_argument("--repeat", type=int, default=3, help="runs of each (default: 3)")
+    add_runs_flag(ap)
     args = ap.parse_args()
     result = synthetic_result(args.series)
     n_rows = sum(int((~np.isnan(ms.expected)).sum()) for ms in result.scores.values())
@@ -149,7 +155,7 @@ def main() -> int:
     runs: dict[str, list[tuple[float, float]]] = {"streamed": [], "whole frame": []}
     with tempfile.TemporaryDirectory() as tmp:
         streamed, whole = Path(tmp) / "streamed.parquet", Path(tmp) / "whole.parquet"
-        for _ in range(args.repeat):
+        for _ in range(args.runs):
             runs["streamed"].append(peak_above_start(
                 lambda: write_table_blocks(streamed, result.score_blocks(), force=True)))
             runs["whole frame"].append(peak_above_start(
@@ -157,10 +163,12 @@ def main() -> int:
         equal = same_rows(streamed, whole)
         sizes = streamed.stat().st_size / 2**20, whole.stat().st_size / 2**20
     for name, got in runs.items():
-        mb, secs = [m for m, _ in got], [s for _, s in got]
-        print(f"{name:>12}: peak RSS above start median {statistics.median(mb):7.0f} MB "
-              f"(range {min(mb):.0f}-{max(mb):.0f}), time median {statistics.median(secs):.1f} s "
-              f"(range {min(secs):.1f}-{max(secs):.1f}), {args.repeat} runs")
+        mb, secs = [m for m, _ in got], [t for _, t in got]
+        print(f"{name:>12}: peak RSS above start {spread(mb).fmt(',.0f', 'MB')}; time "
+              f"{spread(secs).fmt('.1f', 's')}")
+    peaks = {name: [m for m, _ in got] for name, got in runs.items()}
+    print(f"peak whole frame / streamed, per run: "
+          f"{spread(ratios(peaks['whole frame'], peaks['streamed'])).fmt('.1f', 'x')}")
     print(f"files: {sizes[0]:.0f} MB streamed, {sizes[1]:.0f} MB whole; same rows: {equal}")
     return 0 if equal else 1
 

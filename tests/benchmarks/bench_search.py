@@ -1,26 +1,44 @@
-"""Benchmark: `search.tune` versus a plain search, same process, same search space.
+"""Benchmark: `search.tune` versus a plain search, same process, same cores, same space.
 
-The plain reference replays every trial from scratch (its `Replayer`'s stream cache
-is emptied before every trial, so every trial refits every series; the worker
-processes and the history they hold are started and shipped once, as the tune's are)
-and searches the fence multiplier as one more Optuna parameter (log-uniform over
-the workspace's multiplier range), scoring each trial with `api.score_episodes` on
-the same tuning hours and with the same objective and constraints. Printed: the
-time ratio and both searches' best feasible result (miss rate and alerts per
-analyst per day). Target: >= 50x faster and no worse.
+What is compared: on a copy of the sample workspace, `search.tune`
+(decompositions cached by setting, the fence multiplier solved over every distinct score
+breakpoint and each watched metric's minimum impact solved over its grid, see the
+README's "How tuning works") against a plain Optuna search of the same structural
+space that:
 
-When the plain search is too slow to run all N trials, it runs `--plain-trials`
-of them and its time is extrapolated per trial (said so in the output); its result
-is then that of the trials it ran.
+- replays every trial from scratch: its `Replayer`'s stream cache is emptied before
+  every trial, so every trial refits every series (the worker processes and the history
+  they hold are started and shipped once, as the tune's are);
+- searches the fence multiplier as one more Optuna parameter (log-uniform over the
+  workspace's multiplier range);
+- searches the minimum impact as Optuna parameters: by default one float per watched
+  metric, uniform over the range the tune solves it in (`search.impact_ranges`, from the
+  tuning weeks); with `--plain-impact share` one shared share of every metric's range
+  (level l of `search.impact_grids` is that share);
+- scores each trial with `api.score_episodes` on the same tuning hours, with the same
+  objective (alerts per analyst per day), constraints and Optuna sampler.
 
-`--match-trials M` (off by default) adds a second, different comparison: after its
-N trials the plain search goes on, up to M trials in all, until its best feasible
-result is as good as the tune's, and the script prints how long that took against
-the tune's whole run (and when the tune found its best trial). That is time to the same result,
-not the equal-budget ratio the target is set on; both are printed and labelled.
+Cores: both searches run on the same engine (`--engine local`: one worker process per
+core; `serial`: this process) in the same process, one after the other, in every run.
 
-    python tests/benchmarks/bench_search.py [--trials 100] [--plain-trials 100]
-        [--match-trials 0] [--engine local]
+Printed, each as median and range over `--runs` runs (at least 3): both searches' wall
+times for `--trials` trials and the ratio plain / tune computed per run; the time of one
+tune trial on cached remainder streams; both searches' best feasible results (miss rate
+and alerts per analyst per day) per run; and the bound of about trials / distinct
+decomposition settings on the equal-budget ratio (each distinct setting is one refit
+for the tune, and a refit costs about one plain trial or more).
+
+When the plain search is too slow, `--plain-trials P` runs P of its trials and
+extrapolates its time per trial to `--trials` (said so in the output); its result is
+then that of the trials it ran. `--match-trials M` (off by default) adds a different
+comparison: after its trials the plain search goes on, up to M trials in all, until its
+best feasible result is as good as the tune's, and the time that took is set against the
+tune's whole run (time to the same result, not the equal-budget ratio).
+
+Defaults (15 trials each) finish in a few minutes on 2 cores; the README row uses
+
+    python tests/benchmarks/bench_search.py --trials 100 --plain-trials 100
+        [--runs 3] [--match-trials 0] [--plain-impact per-metric] [--engine local]
 """
 
 from __future__ import annotations
@@ -39,105 +57,14 @@ import optuna
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _repeat import add_runs_flag, ratios, spread  # noqa: E402
+from _sample import sample_copy  # noqa: E402
 
 from calibrate import api, search  # noqa: E402
 from calibrate.errors import InputError  # noqa: E402
 from calibrate.executors import make_executor  # noqa: E402
-
-
-def workspace(tmp: Path) -> Path:
-    sample = ROOT / "sample_data" / "workspace.toml"
-    if sample.is_file():
-        return sample
-    from tests.synthetic import make_workspace
-
-    print("sample_data/workspace.toml missing: using the synthetic workspace")
-    return make_workspace(tmp / "ws", search="fence_window_hours = [48, 72, 120]\n"
-                          "seasonal_span = [7, 11, 15]\nflatline_hours = [0, 6]")
-
-
-def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: int,
-                 match: float | None = None, match_trials: int = 0):
-    """The reference: replay from scratch, multiplier searched, figures from a replay.
-
-    Returns the best feasible trial of the first `trials`, every trial's duration, and
-    (when `match` is given) the trial count and seconds after which a feasible trial
-    first scored <= `match`, going on up to `match_trials` trials (None if never).
-    """
-    space = search.build_space(ses)
-    goal = ses.ws.goal
-    s = ses.ws.search
-    total_analysts = sum(ses.analysts.values()) or 1
-    days = (split - first) / 24.0
-    current = ses.ws.detector
-
-    impact = search.solved_min_impact(ses)  # the tune solves it; the plain search samples it
-
-    def objective(trial: optuna.Trial) -> float:
-        params = {p.name: p.suggest(trial) for p in space}
-        k = trial.suggest_float("fence_multiplier", s.multiplier_low, s.multiplier_high,
-                                log=True)
-        m = None if impact is None else trial.suggest_float(
-            "min_impact", min(impact.low, current.base.min_impact),
-            max(impact.high, current.base.min_impact), log=impact.log)
-        try:
-            config = search._config_from(params, space, ses, current)
-        except InputError as exc:
-            trial.set_constraint("miss_rate", search.INVALID)
-            trial.set_constraint("budget", search.INVALID)
-            raise optuna.TrialPruned(str(exc)) from None
-        config = config.with_base(fence_multiplier=k)
-        if m is not None:
-            config = config.with_base(min_impact=m)
-        # from scratch: no cached streams. One Replayer for all trials, because a new one
-        # holds new shared arrays, and the local engine restarts its workers for those:
-        # that start-up (about 2 s here) is not part of a plain trial's cost
-        rp.cache.clear()
-        eps = rp.replay(config).episodes
-        f = api.score_episodes(ses, eps, first, split)
-        pt = f.per_team[f.per_team["analysts"] > 0]
-        ratio = max([r / goal.budget(t) for t, r in pt["alerts_per_analyst_day"].items()],
-                    default=0.0)
-        trial.set_user_attr("miss_rate", f.miss_rate)
-        trial.set_user_attr("alerts", f.alerts)
-        trial.set_constraint("miss_rate", f.miss_rate - goal.max_miss_rate)
-        trial.set_constraint("budget", ratio - 1.0)
-        return f.alerts / (total_analysts * days)
-
-    study = optuna.create_study(sampler=optuna.samplers.TPESampler(seed=seed))
-    today = {**search.params_of(current, space, ses),
-             "fence_multiplier": min(max(current.base.fence_multiplier, s.multiplier_low),
-                                     s.multiplier_high)}
-    if impact is not None:
-        today["min_impact"] = current.base.min_impact
-    study.enqueue_trial(today)
-    def feasible(t: optuna.trial.FrozenTrial) -> bool:
-        return (t.state == optuna.trial.TrialState.COMPLETE
-                and all(c <= 0 for c in t.constraints.values()))
-
-    matched: list[tuple[int, float]] = []
-
-    def watch(study: optuna.Study, t: optuna.trial.FrozenTrial) -> None:
-        if match is not None and not matched and feasible(t) and t.value <= match + 1e-12:
-            matched.append((t.number + 1, time.perf_counter() - t0))
-            if len(study.trials) > trials:
-                study.stop()
-
-    t0 = time.perf_counter()
-    rp = api.make_replayer(ses, executor=make_executor(engine), progress=False)
-    try:
-        study.optimize(objective, n_trials=trials, callbacks=[watch])
-        first_trials, first_wall = list(study.trials), time.perf_counter() - t0
-        if match is not None and not matched and match_trials > trials:
-            study.optimize(objective, n_trials=match_trials - trials, callbacks=[watch])
-    finally:
-        rp.close()
-    ok = [t for t in first_trials if feasible(t)]
-    return PlainRun(best=min(ok, key=lambda t: t.value) if ok else None,
-                    seconds=[t.duration.total_seconds() for t in first_trials],
-                    wall=first_wall, matched=matched[0] if matched else None,
-                    ran=len(study.trials), total_wall=time.perf_counter() - t0,
-        best_all=min((t.value for t in study.trials if feasible(t)), default=float("inf")))
 
 
 @dataclass
@@ -151,27 +78,131 @@ class PlainRun:
     best_all: float  # best feasible value over every trial run (inf: none)
 
 
+def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: int,
+                 impact_mode: str, match: float | None = None,
+                 match_trials: int = 0) -> PlainRun:
+    """The reference: replay from scratch, multiplier and minimum impacts searched,
+    figures from a replay.
+
+    Returns the best feasible trial of the first `trials`, every trial's duration, and
+    (when `match` is given) the trial count and seconds after which a feasible trial
+    first scored <= `match`, going on up to `match_trials` trials (None if never).
+    """
+    if ses.ws.search.tune_by != "all":
+        raise SystemExit("bench_search compares searches without groups (tune_by = \"all\")")
+    space = search.build_space(ses)
+    goal = ses.ws.goal
+    s = ses.ws.search
+    total_analysts = sum(ses.analysts.values()) or 1
+    days = (split - first) / 24.0
+    current = ses.ws.detector
+    # the tune solves each watched metric's minimum impact in these ranges; the plain
+    # search samples it there (ranges widened to today's values, as the tune's grid is)
+    solved = search.solved_min_impact(ses)
+    ranges = search.impact_ranges(ses, None, split) if solved else {}
+    today_m = search.current_impacts(ses, current, None) if solved else {}
+    ranges = {m: (min(lo, today_m[m]), max(hi, today_m[m])) for m, (lo, hi) in ranges.items()}
+
+    def impacts(trial: optuna.Trial) -> dict[str, float]:
+        if not ranges:
+            return {}
+        if impact_mode == "share":
+            t = trial.suggest_float("min_impact_share", 0.0, 1.0)
+            return {m: lo + t * (hi - lo) for m, (lo, hi) in ranges.items()}
+        return {m: trial.suggest_float(f"min_impact[{m}]", lo, hi)
+                for m, (lo, hi) in ranges.items()}
+
+    def objective(trial: optuna.Trial) -> float:
+        params = {p.name: p.suggest(trial) for p in space}
+        k = trial.suggest_float("fence_multiplier", s.multiplier_low, s.multiplier_high,
+                                log=True)
+        per_metric = impacts(trial)
+        try:
+            config = search._config_from(params, space, ses, current)
+        except InputError as exc:
+            search._record_constraints(trial, [search.INVALID, search.INVALID])
+            raise optuna.TrialPruned(str(exc)) from None
+        config = config.with_base(fence_multiplier=k)
+        if per_metric:
+            config = config.with_base(min_impact=0.0, min_impact_per_metric=tuple(
+                (m, float(v)) for m, v in per_metric.items()))
+        # from scratch: no cached streams. One Replayer for all trials, because a new one
+        # holds new shared arrays, and the local engine restarts its workers for those:
+        # that start-up is not part of a plain trial's cost
+        rp.cache.clear()
+        eps = rp.replay(config).episodes
+        f = api.score_episodes(ses, eps, first, split)
+        pt = f.per_team[f.per_team["analysts"] > 0]
+        ratio = max([r / goal.budget(t) for t, r in pt["alerts_per_analyst_day"].items()],
+                    default=0.0)
+        trial.set_user_attr("miss_rate", f.miss_rate)
+        trial.set_user_attr("alerts", f.alerts)
+        search._record_constraints(trial, [f.miss_rate - goal.max_miss_rate, ratio - 1.0])
+        return f.alerts / (total_analysts * days)
+
+    study = optuna.create_study(sampler=search._sampler(seed))
+    today = {**search.params_of(current, space, ses),
+             "fence_multiplier": min(max(current.base.fence_multiplier, s.multiplier_low),
+                                     s.multiplier_high)}
+    if ranges and impact_mode == "share":
+        # today's impacts as a share, when one share gives all of them (else share 0)
+        shares = {(today_m[m] - lo) / (hi - lo) if hi > lo else 0.0
+                  for m, (lo, hi) in ranges.items()}
+        today["min_impact_share"] = shares.pop() if len(shares) == 1 else 0.0
+    else:
+        today.update({f"min_impact[{m}]": today_m[m] for m in ranges})
+    study.enqueue_trial(today)
+
+    matched: list[tuple[int, float]] = []
+
+    def watch(study: optuna.Study, t: optuna.trial.FrozenTrial) -> None:
+        if (match is not None and not matched and search._is_feasible(t)
+                and t.value <= match + 1e-12):
+            matched.append((t.number + 1, time.perf_counter() - t0))
+            if len(study.trials) > trials:
+                study.stop()
+
+    t0 = time.perf_counter()
+    rp = api.make_replayer(ses, executor=make_executor(engine), progress=False)
+    try:
+        study.optimize(objective, n_trials=trials, callbacks=[watch])
+        first_trials, first_wall = list(study.trials), time.perf_counter() - t0
+        if match is not None and not matched and match_trials > trials:
+            study.optimize(objective, n_trials=match_trials - trials, callbacks=[watch])
+    finally:
+        rp.close()
+    ok = [t for t in first_trials if search._is_feasible(t)]
+    return PlainRun(best=min(ok, key=lambda t: t.value) if ok else None,
+                    seconds=[t.duration.total_seconds() for t in first_trials],
+                    wall=first_wall, matched=matched[0] if matched else None,
+                    ran=len(study.trials), total_wall=time.perf_counter() - t0,
+                    best_all=min((t.value for t in study.trials if search._is_feasible(t)),
+                                 default=float("inf")))
+
+
 CACHED_REPEATS = 20
 
 
 def cached_trial_seconds(ses, res) -> float:
-    """Mean time of `Evaluator.evaluate` once the decomposition is cached (what a
-    trial that changes no decomposition setting costs)."""
+    """Mean time of `Evaluator.evaluate` once the decomposition is cached (what a tune
+    trial that changes no decomposition setting costs), in this process."""
     space = search.build_space(ses)
+    current = ses.ws.detector
     windows = search.candidate_values(space, "fence_window_hours",
-                                      [ses.ws.detector.base.fence_window_hours]) or ()
+                                      [current.base.fence_window_hours]) or ()
     ks = np.geomspace(ses.ws.search.multiplier_low, ses.ws.search.multiplier_high,
                       search.GRID_POINTS)
+    grids = None
+    if search.solved_min_impact(ses):
+        grids = search.impact_grids(search.impact_ranges(ses, None, res.split_hour),
+                                    [search.current_impacts(ses, current, None)])
     rp = api.make_replayer(ses, engine="serial", fence_windows=tuple(windows), progress=False)
-    impact = search.solved_min_impact(ses)
-    ms = None if impact is None else search.impact_grid(impact, ses.ws.detector.base.min_impact)
     ev = search.Evaluator(ses, rp, ks, res.first_hour, res.split_hour, ses.ws.goal,
-                          min_impacts=ms)
+                          min_impacts=grids)
     base = res.config
     ev.evaluate(base)  # the one refit
-    configs = [base.with_base(fence_window_hours=w, min_impact=float(m))
-               for w in (windows or [base.base.fence_window_hours])
-               for m in np.linspace(0.0, 200.0, 5)]
+    configs = [base.with_base(fence_window_hours=w, flatline_hours=f)
+               for w in (windows or [base.base.fence_window_hours]) for f in (0, 6)]
     configs = (configs * CACHED_REPEATS)[:CACHED_REPEATS]
     t0 = time.perf_counter()
     for c in configs:
@@ -179,101 +210,145 @@ def cached_trial_seconds(ses, res) -> float:
     return (time.perf_counter() - t0) / len(configs)
 
 
+# the settings a remainder stream depends on (`DetectorSettings.decomposition_key`)
+DECOMPOSITION = {"period_hours", "seasonal_span", "trend_span", "robust", "weekly_period",
+                 "decomposition_window_hours", "refit_every_hours", "expected_value"}
+
+
+def one_run(args: argparse.Namespace, tmp: Path, run: int) -> dict:
+    """One run: the tune, one trial on cached streams, then the plain search."""
+    ses = api.open_session(args.ws)
+    journal = str(tmp / f"run{run}.journal")
+    started = datetime.now()
+    t0 = time.perf_counter()
+    res = search.tune(ses, trials=args.trials, storage=journal, engine=args.engine,
+                      progress=False)
+    fast = time.perf_counter() - t0
+    done = res.trials[res.trials["state"] == "COMPLETE"]
+    best = res.trials[res.trials["feasible"]]
+    out: dict = {"tune": fast, "feasible": len(best), "done": len(done), "res": res}
+    if len(best):
+        b = best.loc[best["value"].idxmin()]
+        out["tune_best"] = b
+        storage, _ = search.open_storage(ses, journal)
+        frozen = optuna.load_study(study_name=res.study_name, storage=storage).trials
+        number = int(b["number"])
+        out["tune_to_best"] = (number + 1,
+                               (frozen[number].datetime_complete - started).total_seconds())
+    cols = [p.name for p in search.build_space(ses) if p.setting in DECOMPOSITION]
+    out["distinct"] = len(done[cols].drop_duplicates()) if cols else 1
+    out["cached"] = cached_trial_seconds(ses, res)
+    n_plain = min(args.plain_trials, args.trials)
+    match = float(best["value"].min()) if len(best) and args.match_trials else None
+    t0 = time.perf_counter()
+    p = plain_search(ses, n_plain, args.engine, res.first_hour, res.split_hour,
+                     ses.ws.search.seed, args.plain_impact, match=match,
+                     match_trials=args.match_trials)
+    # equal budgets: timed around the whole call, as the tune is (worker start-up and
+    # close included), unless the match phase ran on past the N trials
+    plain = time.perf_counter() - t0 if p.ran == n_plain else p.wall
+    # the first trial also starts the workers (and compiles in them), as the tune's first
+    # trial does: it is counted once, and only the others are extrapolated
+    per = float(np.mean(p.seconds[1:])) if len(p.seconds) > 1 else plain
+    out["plain"] = plain if n_plain == args.trials else plain + per * (args.trials - n_plain)
+    out["plain_run"] = p
+    return out
+
+
+def results_line(name: str, values: list[str]) -> str:
+    same = len(set(values)) == 1
+    return f"  {name}: {values[0] if same else ', '.join(values)}" + (
+        f" (the same in all {len(values)} runs)" if same else " (per run)")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--trials", type=int, default=100)
-    ap.add_argument("--plain-trials", type=int, default=100,
+    add_runs_flag(ap)
+    ap.add_argument("--trials", type=int, default=15)
+    ap.add_argument("--plain-trials", type=int, default=15,
                     help="trials the plain search runs (time extrapolated to --trials)")
     ap.add_argument("--match-trials", type=int, default=0,
                     help="let the plain search go on up to this many trials until it matches "
                          "the tune's result (time to the same result; 0: off)")
+    ap.add_argument("--plain-impact", default="per-metric", choices=("per-metric", "share"),
+                    help="the plain search's minimum impact: one float per watched metric, "
+                         "or one share of every metric's range")
     ap.add_argument("--engine", default="local", choices=("local", "serial"))
     args = ap.parse_args()
     optuna.logging.set_verbosity(optuna.logging.WARNING)
-    with tempfile.TemporaryDirectory() as tmp:
-        ses = api.open_session(workspace(Path(tmp)))
+    with tempfile.TemporaryDirectory() as tmp_name:
+        tmp = Path(tmp_name)
+        args.ws = sample_copy(tmp / "run0")
+        ses = api.open_session(args.ws)
         n_series = sum(ls.n_series for ls in ses.history.levels.values())
-        print(f"workspace {ses.ws.file}: {n_series} series x {len(ses.ws.metric_names)} "
-              f"metrics x {ses.history.n_hours} hours, {len(ses.incidents)} incidents")
-        journal = str(Path(tmp) / "bench.journal")
-        started = datetime.now()
-        t0 = time.perf_counter()
-        res = search.tune(ses, trials=args.trials, storage=journal, engine=args.engine,
-                          progress=False)
-        fast = time.perf_counter() - t0
-        done = res.trials[res.trials["state"] == "COMPLETE"]
-        best = res.trials[res.trials["feasible"]]
-        tune_to_best = None
-        if len(best):
-            number = int(best.loc[best["value"].idxmin(), "number"])
-            storage, _ = search.open_storage(ses, journal)
-            frozen = optuna.load_study(study_name=res.study_name, storage=storage).trials
-            tune_to_best = (number + 1,
-                            (frozen[number].datetime_complete - started).total_seconds())
-        print(f"tune: {args.trials} trials in {fast:.1f} s ({fast / args.trials:.2f} s/trial), "
-              f"{len(best)} of {len(done)} completed trials feasible")
-        print(f"one trial on cached remainder streams: {cached_trial_seconds(ses, res):.3f} s "
-              f"(mean of {CACHED_REPEATS}, fence window and minimum impact varied)")
-        n_plain = min(args.plain_trials, args.trials)
-        t0 = time.perf_counter()
-        match = float(best["value"].min()) if len(best) and args.match_trials else None
-        run = plain_search(ses, n_plain, args.engine, res.first_hour, res.split_hour,
-                           ses.ws.search.seed, match=match, match_trials=args.match_trials)
-        # equal budgets: timed around the whole call, as the tune is (worker start-up and
-        # close included), unless the match phase ran on past the N trials
-        plain = time.perf_counter() - t0 if run.ran == n_plain else run.wall
-        ref, seconds = run.best, run.seconds
-        # the first trial also starts the workers (and compiles in them), as the tune's
-        # first trial does: it is counted once, and only the others are extrapolated
-        per = float(np.mean(seconds[1:])) if len(seconds) > 1 else plain
-        plain_full = plain if n_plain == args.trials else (
-            plain + per * (args.trials - n_plain))
-        note = "" if n_plain == args.trials else (
-            f" (ran {n_plain} trials: first {seconds[0]:.1f} s with worker start-up, then "
-            f"{per:.2f} s/trial, extrapolated to {args.trials})")
-        print(f"plain search: {plain_full:.1f} s for {args.trials} trials{note}")
-        print(f"time ratio (plain / tune): {plain_full / fast:.1f}x (target >= 50x)")
-        decomp = {"period_hours", "seasonal_span", "trend_span", "robust", "weekly_period",
-                  "decomposition_window_hours", "refit_every_hours"}
-        cols = [p.name for p in search.build_space(ses) if p.setting in decomp]
-        distinct = len(done[cols].drop_duplicates()) if cols else 1
-        print(f"tune fitted {distinct} distinct decomposition settings in {len(done)} trials; "
-              f"a refit costs at least one plain trial (more: it computes the quartiles of "
-              f"every candidate fence window) and the plain search refits on every trial, so "
-              f"the ratio cannot pass trials / distinct settings "
-              f"({args.trials / max(distinct, 1):.0f}x here) however cheap the other trials get")
-        if len(best):
-            b = best.loc[best["value"].idxmin()]
-            print(f"tune best feasible: miss rate {b['miss_rate']:.3f}, "
-                  f"{b['value']:.3f} alerts per analyst per day, {int(b['alerts'])} alerts, "
-                  f"k={b['k']:.3f}")
+        print(f"workspace: the sample, {n_series} series x {len(ses.ws.metric_names)} metrics "
+              f"x {ses.history.n_hours} hours, {len(ses.incidents)} incidents; engine "
+              f"{args.engine} for both searches; {args.trials} trials each"
+              + ("" if args.plain_trials >= args.trials else
+                 f" (the plain search runs {args.plain_trials}, extrapolated)")
+              + f"; plain minimum impact: {args.plain_impact}")
+        runs = [one_run(args, tmp, i) for i in range(args.runs)]
+    tune_s, plain_s = [r["tune"] for r in runs], [r["plain"] for r in runs]
+    print(f"tune, {args.trials} trials: {spread(tune_s).fmt('.1f', 's')}")
+    print(f"plain search, {args.trials} trials: {spread(plain_s).fmt('.1f', 's')}")
+    print(f"time ratio plain / tune (per run): {spread(ratios(plain_s, tune_s)).fmt('.1f', 'x')}")
+    print(f"one tune trial on cached remainder streams (mean of {CACHED_REPEATS}, fence window "
+          f"and flatline hours varied, serial engine): "
+          f"{spread([r['cached'] for r in runs]).fmt('.3f', 's')}")
+    distinct = [r["distinct"] for r in runs]
+    print(f"the tune fitted {'/'.join(map(str, distinct))} (per run) distinct "
+          f"decomposition settings in {runs[0]['done']} completed trials; a refit costs about "
+          f"one plain trial or more, so the equal-budget ratio is held to about trials / "
+          f"distinct settings ({args.trials / max(max(distinct), 1):.1f}x here; timing noise "
+          f"can put one run above it)")
+    print("best feasible results on the tuning weeks:")
+    tune_vals = [f"miss rate {r['tune_best']['miss_rate']:.3f}, "
+                 f"{r['tune_best']['value']:.3f} alerts per analyst per day, "
+                 f"k={r['tune_best']['k']:.3f}" if "tune_best" in r else
+                 f"none feasible ({r['res'].reason})" for r in runs]
+    print(results_line("tune", tune_vals))
+    plain_vals = [f"miss rate {p.best.user_attrs['miss_rate']:.3f}, {p.best.value:.3f} alerts "
+                  f"per analyst per day, k={p.best.params['fence_multiplier']:.3f}"
+                  if (p := r["plain_run"]).best is not None else "none feasible"
+                  for r in runs]
+    print(results_line(f"plain ({min(args.plain_trials, args.trials)} trials)", plain_vals))
+    verdicts = []
+    for r in runs:
+        p = r["plain_run"]
+        if "tune_best" in r and p.best is not None:
+            verdicts.append("no worse" if r["tune_best"]["value"] <= p.best.value + 1e-12
+                            else "WORSE")
         else:
-            print(f"tune: no feasible trial of {len(done)}: {res.reason}")
-        if ref is not None:
-            print(f"plain best feasible ({n_plain} trials): miss rate "
-                  f"{ref.user_attrs['miss_rate']:.3f}, {ref.value:.3f} alerts per analyst per "
-                  f"day, {ref.user_attrs['alerts']} alerts, k={ref.params['fence_multiplier']:.3f}")
-            if len(best):
-                verdict = "no worse" if b["value"] <= ref.value + 1e-12 else "WORSE"
-                print(f"tune versus plain at the same miss-rate target: {verdict}")
-        else:
-            print(f"plain search: no feasible trial in {n_plain}")
-        if match is not None and tune_to_best is not None:
-            n_best, s_best = tune_to_best
-            print(f"time to the same result (not the target's equal-budget ratio): the tune "
-                  f"found its best ({match:.3f}) at trial {n_best}, {s_best:.1f} s into its "
-                  f"{fast:.1f} s run; ratios below are against the whole run")
-            if run.matched is not None:
-                n_m, s_m = run.matched
-                print(f"  the plain search first matched it at trial {n_m}, {s_m:.1f} s in: "
-                      f"{s_m / fast:.1f}x")
+            verdicts.append("not comparable (a side has no feasible trial)")
+    print(results_line("tune versus plain at the same miss-rate target", verdicts))
+    if args.match_trials:
+        print("time to the same result (not the equal-budget ratio), against the tune's "
+              "whole run:")
+        lows = []
+        for i, r in enumerate(runs, 1):
+            p = r["plain_run"]
+            if "tune_to_best" not in r:
+                print(f"  run {i}: the tune found no feasible trial")
+                continue
+            n_best, s_best = r["tune_to_best"]
+            head = (f"  run {i}: the tune found its best ({r['tune_best']['value']:.3f}) at "
+                    f"trial {n_best}, {s_best:.1f} s into its {r['tune']:.1f} s run; ")
+            if p.matched is not None:
+                lows.append(p.matched[1] / r["tune"])
+                print(head + f"the plain search matched it at trial {p.matched[0]}, "
+                      f"{p.matched[1]:.1f} s in: {lows[-1]:.1f}x")
             else:
-                print(f"  the plain search did not match it in {run.ran} trials "
-                      f"({run.total_wall:.0f} s; its best {run.best_all:.3f}): more than "
-                      f"{math.floor(run.total_wall / fast)}x")
-        print(f"held-out: miss rate {res.holdout.miss_rate:.3f} "
-              f"({res.holdout.caught} of {res.holdout.incidents}), "
-              f"warning: {res.holdout_warning or 'none'}" if res.holdout else "no holdout")
+                lows.append(p.total_wall / r["tune"])
+                print(head + f"the plain search did not match it in {p.ran} trials "
+                      f"({p.total_wall:.0f} s; its best {p.best_all:.3f}): more than "
+                      f"{math.floor(lows[-1])}x")
+        if lows:
+            print(f"  ratio (a lower bound in runs that did not match): "
+                  f"{spread(lows).fmt('.1f', 'x')}")
+    held = [f"miss rate {r['res'].holdout.miss_rate:.3f} ({r['res'].holdout.caught} of "
+            f"{r['res'].holdout.incidents}), warning: {r['res'].holdout_warning or 'none'}"
+            if r["res"].holdout else "no holdout" for r in runs]
+    print(results_line("tune's held-out weeks", held))
 
 
 if __name__ == "__main__":

@@ -1,24 +1,48 @@
-"""Benchmark: compiled STL kernel versus statsmodels' STL in the same process.
+"""Benchmark: compiled STL kernel versus statsmodels' STL, same process, one core each.
 
-Run ``python tests/benchmarks/bench_stl.py``. Prints per-fit times (best of several
-repeats, after compilation) and the ratio statsmodels / kernel; also checks the results
-agree so the speed is not bought with wrong answers.
+Compares, on invented hourly counts (period 24, seasonal span 7):
+
+- one fit: `stl_kernel.stl_fit` versus `statsmodels.tsa.seasonal.STL(...).fit()`, for
+  168, 336 and 672 points, non-robust and robust;
+- a batch of 200 consecutive windows: `stl_fit_windows` versus one statsmodels fit per
+  window;
+- MSTL with periods (24, 168) on 672 points: `stl_kernel.mstl_fit` versus statsmodels'
+  `MSTL`.
+
+Cores: every ratio is measured with numba and BLAS limited to one thread, so both sides
+run on one core. The batch is also timed with every numba thread, printed as throughput
+(fits per second per core), with no ratio. After compilation, each run times both sides
+back to back (each call repeated for at least `--min-time` seconds); every figure is the
+median and range over `--runs` runs (at least 3), and each ratio is computed per run.
+The kernel's results are checked against statsmodels' so the speed is not bought with
+wrong answers (largest absolute difference printed).
+
+    python tests/benchmarks/bench_stl.py [--runs 3] [--sizes 168 336 672] [--variants]
+
+`--variants` also times the previous kernels (prepared weights not reused; the plain
+port without the blocked loop).
 """
 
 from __future__ import annotations
 
+import argparse
 import os
 import platform
 import sys
 import time
 from collections.abc import Callable
 
+import numba
 import numpy as np
 from statsmodels.tsa.seasonal import MSTL, STL
+from threadpoolctl import threadpool_limits
 
 sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
+from _repeat import add_runs_flag, ratios, repeat, repeat_many, spread  # noqa: E402
+
 from calibrate.stl_kernel import (  # noqa: E402
+    _smoother,
     linear_smoother,
     mstl_fit,
     stl_fit,
@@ -26,24 +50,17 @@ from calibrate.stl_kernel import (  # noqa: E402
 )
 
 
-def _per_call(fn: Callable[[], object], min_time: float = 0.3, repeats: int = 5) -> float:
-    """Best mean seconds per call over `repeats` runs of at least `min_time` each."""
-    fn()
-    loops = 1
+def per_call(fn: Callable[[], object], min_time: float) -> float:
+    """Mean seconds per call over a loop of at least `min_time` seconds (one run)."""
+    loops, t = 1, 0.0
     while True:
         t0 = time.perf_counter()
         for _ in range(loops):
             fn()
-        if time.perf_counter() - t0 >= min_time / repeats:
-            break
-        loops *= 2
-    best = np.inf
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        for _ in range(loops):
-            fn()
-        best = min(best, (time.perf_counter() - t0) / loops)
-    return best
+        t = time.perf_counter() - t0
+        if t >= min_time:
+            return t / loops
+        loops = max(loops * 2, int(loops * min_time / max(t, 1e-9)) + 1)
 
 
 def _series(n: int, seed: int = 0) -> np.ndarray:
@@ -52,67 +69,99 @@ def _series(n: int, seed: int = 0) -> np.ndarray:
     return rng.poisson(200 + 80 * np.sin(2 * np.pi * t / 24)).astype(float)
 
 
+def compare(name: str, ref: Callable[[], object], ours: dict[str, Callable[[], object]],
+            runs: int, min_time: float, fits: int = 1) -> None:
+    """Time the reference (one fit per call) and each of `ours` (`fits` fits per call) in
+    every run; print per-fit medians and ranges and per-run ratios (reference / ours)."""
+    ref()
+    for fn in ours.values():
+        fn()  # compile / warm
+    t = repeat_many(lambda: {"ref": per_call(ref, min_time),
+                             **{k: per_call(fn, min_time) / fits for k, fn in ours.items()}},
+                    runs)
+    print(f"{name}")
+    print(f"    statsmodels per fit: {spread(t['ref']).fmt('.3f', 'ms', 1e3)}")
+    for k in ours:
+        print(f"    {k} per fit: {spread(t[k]).fmt('.3f', 'ms', 1e3)}; statsmodels / {k} "
+              f"{spread(ratios(t['ref'], t[k])).fmt('.1f', 'x')}")
+
+
 def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    add_runs_flag(ap)
+    ap.add_argument("--sizes", type=int, nargs="+", default=[168, 336, 672])
+    ap.add_argument("--min-time", type=float, default=0.2,
+                    help="seconds each side is looped for in one run (default 0.2)")
+    ap.add_argument("--variants", action="store_true",
+                    help="also time the previous kernels")
+    args = ap.parse_args()
+    all_threads = numba.get_num_threads()
     print(f"machine: {platform.platform()} | {platform.processor() or platform.machine()} "
-          f"| cpu_count={os.cpu_count()} | python {platform.python_version()}")
-    try:
-        import numba
-        print(f"numba {numba.__version__}, threads={numba.get_num_threads()}, "
-              f"threading layer at first parallel call")
-    except ImportError:  # pragma: no cover
-        pass
-    print("\nsingle fit, period 24, seasonal 7 (statsmodels vs kernel, 1 thread)")
-    print("kernel = default (prepared weights reused, same bits); blocked = previous "
-          "four-point kernel (reuse_weights=False)")
-    print(f"{'n':>5} {'robust':>6} {'statsmodels':>12} {'kernel':>10} {'ratio':>7} "
-          f"{'blocked':>10} {'ratio':>7} {'plain port':>11} {'ratio':>7}  max|diff|")
-    for n in (168, 336, 672):
-        y = _series(n)
+          f"| cpu_count={os.cpu_count()} | python {platform.python_version()} | numba "
+          f"{numba.__version__} ({all_threads} threads available)")
+    runs, mt = args.runs, args.min_time
+    with threadpool_limits(1):
+        numba.set_num_threads(1)
+        print("\none fit, period 24, seasonal 7; one core each side")
+        for n in args.sizes:
+            y = _series(n)
+            for robust in (False, True):
+                ours = {"kernel": lambda y=y, r=robust: stl_fit(y, 24, 7, robust=r)}
+                if args.variants:
+                    ours["previous kernel"] = lambda y=y, r=robust: stl_fit(
+                        y, 24, 7, robust=r, reuse_weights=False)
+                    ours["plain port"] = lambda y=y, r=robust: stl_fit(
+                        y, 24, 7, robust=r, blocked=False, reuse_weights=False)
+                compare(f"  {n} points, robust={robust}",
+                        lambda y=y, r=robust: STL(y, period=24, seasonal=7, robust=r).fit(),
+                        ours, runs, mt)
+                fit = STL(y, period=24, seasonal=7, robust=robust).fit()
+                tr, se, _ = stl_fit(y, 24, 7, robust=robust)
+                diff = max(np.abs(tr - fit.trend).max(), np.abs(se - fit.seasonal).max())
+                print(f"    max |kernel - statsmodels| (trend, seasonal): {diff:.1e}")
+
+        print("\nbatch of 200 consecutive windows (stl_fit_windows), one core each side")
+        y = _series(2000, seed=1)
+        batches = {}
+        for window in args.sizes:
+            ends = np.arange(window - 1, window - 1 + 200, dtype=np.int64)
+            seg = y[ends[0] - window + 1: ends[0] + 1]
+            for robust in (False, True):
+                def batch(w: int = window, e: np.ndarray = ends, r: bool = robust,
+                          y: np.ndarray = y) -> object:
+                    return stl_fit_windows(y, e, w, 24, 7, 0, 0, r)
+
+                batches[(window, robust)] = batch
+                compare(f"  window {window}, robust={robust}",
+                        lambda s=seg, r=robust: STL(s, period=24, seasonal=7, robust=r).fit(),
+                        {"batch": batch}, runs, mt, fits=len(ends))
+
+        print("\nMSTL periods (24, 168), 672 points, one core each side")
+        y = _series(672, seed=2)
         for robust in (False, True):
-            t_ref = _per_call(lambda y=y, r=robust: STL(y, period=24, seasonal=7,
-                                                         robust=r).fit())
-            t_k = _per_call(lambda y=y, r=robust: stl_fit(y, 24, 7, robust=r))
-            t_b = _per_call(lambda y=y, r=robust: stl_fit(y, 24, 7, robust=r,
-                                                           reuse_weights=False))
-            t_p = _per_call(lambda y=y, r=robust: stl_fit(y, 24, 7, robust=r,
-                                                           blocked=False,
-                                                           reuse_weights=False))
-            ref = STL(y, period=24, seasonal=7, robust=robust).fit()
-            tr, se, _ = stl_fit(y, 24, 7, robust=robust)
-            diff = max(np.abs(tr - ref.trend).max(), np.abs(se - ref.seasonal).max())
-            print(f"{n:>5} {robust!s:>6} {t_ref * 1e3:>10.3f}ms {t_k * 1e3:>8.3f}ms "
-                  f"{t_ref / t_k:>6.1f}x {t_b * 1e3:>8.3f}ms {t_ref / t_b:>6.1f}x "
-                  f"{t_p * 1e3:>9.3f}ms {t_ref / t_p:>6.1f}x  {diff:.1e}")
+            compare(f"  robust={robust}",
+                    lambda r=robust: MSTL(y, periods=(24, 168), stl_kwargs={"robust": r}).fit(),
+                    {"kernel": lambda r=robust: mstl_fit(y, (24, 168), robust=r)}, runs, mt)
 
-    print("\nbatched stl_fit_windows (all threads), 200 consecutive windows")
-    y = _series(2000, seed=1)
-    for window in (168, 336, 672):
-        ends = np.arange(window - 1, window - 1 + 200, dtype=np.int64)
-        for robust in (False, True):
-            t_b = _per_call(lambda w=window, e=ends, r=robust:
-                            stl_fit_windows(y, e, w, 24, 7, 0, 0, r), repeats=3)
-            seg = y[ends[0] - window + 1 : ends[0] + 1]
-            t_ref = _per_call(lambda s=seg, r=robust: STL(s, period=24, seasonal=7,
-                                                           robust=r).fit(), repeats=3)
-            per = t_b / len(ends)
-            print(f"  window {window:>3} robust={robust!s:>5}: {per * 1e6:8.1f} us/fit, "
-                  f"{t_ref / per:6.1f}x statsmodels")
+    numba.set_num_threads(all_threads)
+    print(f"\nbatch throughput with {all_threads} numba threads (no reference at that core "
+          "count: fits per second per core)")
+    for (window, robust), batch in batches.items():
+        batch()
+        rate = repeat(lambda b=batch: 200 / per_call(b, mt) / all_threads, runs)
+        print(f"  window {window}, robust={robust}: throughput "
+              f"{rate.fmt(',.0f', 'fits/s/core')}")
 
-    print("\nMSTL periods (24, 168), 672 points")
-    y = _series(672, seed=2)
-    for robust in (False, True):
-        t_ref = _per_call(lambda r=robust: MSTL(y, periods=(24, 168),
-                                                stl_kwargs={"robust": r}).fit(), repeats=3)
-        t_k = _per_call(lambda r=robust: mstl_fit(y, (24, 168), robust=r), repeats=3)
-        print(f"  robust={robust!s:>5}: statsmodels {t_ref * 1e3:.2f}ms, kernel "
-              f"{t_k * 1e3:.3f}ms, {t_ref / t_k:.1f}x")
+    print("\nlinear_smoother build (one-off per window, cached afterwards)")
+    for window in args.sizes:
+        def build(w: int = window) -> float:
+            _smoother.cache_clear()  # time the build, not the cache
+            t0 = time.perf_counter()
+            linear_smoother(w, 24, 7)
+            return time.perf_counter() - t0
 
-    print("\nlinear_smoother build (one-off, cached afterwards)")
-    for window in (168, 336, 672):
-        t0 = time.perf_counter()
-        linear_smoother(window, 24, 7)
-        print(f"  window {window}: {time.perf_counter() - t0:.3f}s")
-
+        build()  # compiles the kernels the build uses
+        print(f"  window {window}: {repeat(build, runs).fmt('.3f', 's')}")
 
 if __name__ == "__main__":
     main()
