@@ -1453,25 +1453,20 @@ def episodes_from_alerts_frame(
     level, series, _ = resolve_series(rows, history)
     metric = resolve_metrics(rows, ws, allow_any=False)
     start, end = resolve_span(rows, history.hours)
-    peak = start.copy()
-    if "peak_hour" in rows.columns:
-        given = resolve_hours(rows, "peak_hour", history.hours, is_end=False, optional=True)
-        peak = np.where(given >= 0, given, start)
-        outside = np.flatnonzero((peak < start) | (peak >= end))
+    def hour_inside(column: str) -> np.ndarray:
+        """An optional hour column within each alert's [start, end) (blank = start)."""
+        if column not in rows.columns:
+            return start.copy()
+        given = resolve_hours(rows, column, history.hours, is_end=False, optional=True)
+        at = np.where(given >= 0, given, start)
+        outside = np.flatnonzero((at < start) | (at >= end))
         if len(outside):
-            raise InputError(
-                rows.at(outside[0], "peak_hour"), "must lie within the alert's start .. end"
-            )
+            raise InputError(rows.at(outside[0], column),
+                             "must lie within the alert's start .. end")
+        return at
 
-    raised = start.copy()
-    if "raised_hour" in rows.columns:
-        given = resolve_hours(rows, "raised_hour", history.hours, is_end=False, optional=True)
-        raised = np.where(given >= 0, given, start)
-        outside = np.flatnonzero((raised < start) | (raised >= end))
-        if len(outside):
-            raise InputError(
-                rows.at(outside[0], "raised_hour"), "must lie within the alert's start .. end"
-            )
+    peak = hour_inside("peak_hour")
+    raised = hour_inside("raised_hour")
 
     def numbers(column: str) -> np.ndarray:
         if column not in rows.columns:

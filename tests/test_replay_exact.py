@@ -18,6 +18,17 @@ from calibrate.decompose import MIN_FENCE_VALUES, fence_scores, remainder_stream
 from calibrate.settings import DetectorSettings
 
 
+def _reference_fit(y, t0, L, P, s, trend_arg):
+    """statsmodels' STL (MSTL with a weekly period) on the window ending at t0, its
+    undefined hours linearly interpolated inside the window."""
+    win = y[t0 - L + 1 : t0 + 1].copy()
+    ok = ~np.isnan(win)
+    x = np.arange(L)
+    win[~ok] = np.interp(x[~ok], x[ok], win[ok])
+    if s.weekly_period:
+        return MSTL(win, periods=(P, 7 * P), stl_kwargs={"robust": s.robust}).fit()
+    return STL(win, period=P, seasonal=s.seasonal_span, trend=trend_arg, robust=s.robust).fit()
+
 def reference_loop(y, s: DetectorSettings, W: int, k: float):
     """Plain per-hour loop: statsmodels STL + numpy percentiles, no shortcuts."""
     n, L, h, P = len(y), s.decomposition_window_hours, s.refit_every_hours, s.period_hours
@@ -29,16 +40,7 @@ def reference_loop(y, s: DetectorSettings, W: int, k: float):
     for t in range(L - 1, n):
         if (t - (L - 1)) % h == 0:
             t0 = t
-            win = y[t0 - L + 1 : t0 + 1].copy()
-            ok = ~np.isnan(win)
-            x = np.arange(L)
-            win[~ok] = np.interp(x[~ok], x[ok], win[ok])
-            if s.weekly_period:
-                fit = MSTL(win, periods=(P, 7 * P), stl_kwargs={"robust": s.robust}).fit()
-            else:
-                fit = STL(
-                    win, period=P, seasonal=s.seasonal_span, trend=trend_arg, robust=s.robust
-                ).fit()
+            fit = _reference_fit(y, t0, L, P, s, trend_arg)
         trend, seas, resid = fit.trend, fit.seasonal, fit.resid
         if seas.ndim == 2:
             seas = seas.sum(axis=1)
@@ -85,16 +87,7 @@ def forecast_reference_loop(y, s: DetectorSettings, windows: tuple[int, ...], k:
     for t in range(L, n):
         t0 = max(range(L - 1, t, h))  # the last refit hour before t
         if t0 not in fits:
-            win = y[t0 - L + 1 : t0 + 1].copy()
-            ok = ~np.isnan(win)
-            x = np.arange(L)
-            win[~ok] = np.interp(x[~ok], x[ok], win[ok])
-            if s.weekly_period:
-                fit = MSTL(win, periods=(P, 7 * P), stl_kwargs={"robust": s.robust}).fit()
-            else:
-                fit = STL(
-                    win, period=P, seasonal=s.seasonal_span, trend=trend_arg, robust=s.robust
-                ).fit()
+            fit = _reference_fit(y, t0, L, P, s, trend_arg)
             seas = fit.seasonal if fit.seasonal.ndim == 1 else fit.seasonal.sum(axis=1)
             fits[t0] = (fit.trend, seas)
         trend, seas = fits[t0]
