@@ -18,15 +18,13 @@ from calibrate.errors import CalibrationError, InputError, UsageError
 from calibrate.executors import Executor
 from calibrate.report import step, steps_bar, write_config_report, write_report
 from calibrate.retune import retune, retune_paths, write_retune_outputs
-from calibrate.search import (
+from calibrate.search import labels_line, tune, tuning_incidents
+from calibrate.summaries import (
     changed_settings_line,
     fold_lines,
-    labels_line,
     metric_lines,
     pareto_lines,
     side_by_side,
-    tune,
-    tuning_incidents,
     verdict_line,
 )
 from calibrate.workspace import Goal

@@ -1282,11 +1282,11 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
         derived_from_held_out=derived_from_held_out,
     ))
     if getattr(result, "folds", None):
-        from calibrate import rolling, search
+        from calibrate import rolling, summaries
 
         data.validation.update(
             verdict=result.verdict, reasons=list(result.verdict_reasons),
-            folds=search.fold_rows(result),
+            folds=summaries.fold_rows(result),
             stability={n: [str(x) for x in v]
                        for n, v in rolling.stability(result.folds).items()})
     step(bar, "plots and files", lambda: write_report_data(

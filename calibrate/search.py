@@ -1,4 +1,8 @@
-"""Constrained search for detector settings (pipeline stage 7, `calibrate tune`).
+"""Constrained search for detector settings (pipeline stage 8, `calibrate tune`).
+
+The search space is `calibrate.search_space`, the scoring of one setting
+`calibrate.evaluate`; this module runs the study and assembles the result
+(`calibrate.summaries` prints it). The method, in short:
 
 Optuna drives the structural settings (windows, spans, flatline hours, ...); the
 fence multiplier is never searched. For each trial the `Replayer` computes fence
@@ -71,42 +75,51 @@ from calibrate import api, rolling, studies
 from calibrate.api import Session
 from calibrate.episodes import Episodes
 from calibrate.errors import CalibrationError, InputError
+from calibrate.evaluate import (  # `X as X`: re-exported as calibrate.search.X
+    KNOWN_FALSE_PENALTY as KNOWN_FALSE_PENALTY,
+    Evaluation as Evaluation,
+    Evaluator,
+    greedy_multipliers as greedy_multipliers,
+    json_safe,
+    labels_line,
+)
 from calibrate.executors import Executor
 from calibrate.incidents import Incidents
-from calibrate.replay import MetricScores, Replayer, sweep_codes, sweep_runs
 from calibrate.scoring import (
-    Curve,
-    ExactPoint,
     Figures,
-    best_tradeoffs,
-    catch_pairs,
-    curve_loads,
-    exact_solve,
-    impact_curves,
-    incidents_needed,
     load_axis,
     match,
-    multiplier_curve,
     pareto_front,
     period_filter,
-    solve_multiplier,
     validation_verdict,
-    wilson,
-    zero_miss_bound,
 )
-from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
-from calibrate.workspace import BASE_GROUP, Goal, SearchParam
+from calibrate.search_space import (  # `X as X`: re-exported as calibrate.search.X
+    Param,
+    build_space,
+    candidate_values,
+    current_impacts,
+    group_config,
+    group_names,
+    holdout_split,
+    impact_grids,
+    impact_label,
+    impact_ranges,
+    params_of,
+    relative_grid as relative_grid,
+    settings_of,
+    solved_groups,
+    solved_min_impact as solved_min_impact,
+    typical_level as typical_level,
+)
+from calibrate.settings import DetectorConfig, DetectorSettings
+from calibrate.workspace import BASE_GROUP, Goal
 
 GRID_POINTS = 80
-IMPACT_STEPS = (1.0, 1.5, 2.0, 3.0, 5.0, 7.0)  # solved minimum impacts, per decade
-KNOWN_FALSE_PENALTY = 1.0
-WEEK = 168
 STUDY_FILE = ".calibrate/study.journal"
 # states that use up the trial budget; a trial interrupted mid-way ends FAIL and is
 # run again (as a new trial) by the next `tune`, so an interruption loses nothing
 BUDGET_STATES = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNED)
 INVALID = 1e9  # constraint value of a pruned (invalid) combination
-MAX_PRECOMPUTED_WINDOWS = 64
 # remainder streams a tune keeps in memory; beyond, the least recently used
 # decomposition settings are dropped and refit if a later trial needs them again
 STREAM_CACHE_BYTES = 2 * 1024**3
@@ -115,711 +128,7 @@ STREAM_CACHE_BYTES = 2 * 1024**3
 # --------------------------------------------------------------------------- space
 
 
-@dataclass(frozen=True, kw_only=True)
-class Param:
-    """One Optuna parameter: a detector setting, optionally of one group."""
-
-    name: str  # Optuna name: "setting" or "group/setting"
-    setting: str
-    group: str | None
-    spec: SearchParam
-
-    def suggest(self, trial: optuna.Trial) -> Any:
-        s = self.spec
-        if s.kind == "choice":
-            return trial.suggest_categorical(self.name, list(s.values))
-        if s.kind == "int":
-            return trial.suggest_int(self.name, int(s.low), int(s.high), step=int(s.step))
-        return trial.suggest_float(self.name, float(s.low), float(s.high), log=s.log)
-
-
-def default_params(ses: Session, metrics: Sequence[str] | None = None) -> tuple[SearchParam, ...]:
-    """Search space used when `[search]` names no setting: fence window, seasonal span
-    (odd) and flatline hours (the minimum impact is solved per metric, see
-    `impact_ranges`)."""
-    return (
-        SearchParam(name="fence_window_hours", kind="choice", values=(72, 120, 168, 240)),
-        SearchParam(name="seasonal_span", kind="choice", values=(7, 11, 15)),
-        SearchParam(name="flatline_hours", kind="choice", values=(0, 6, 10)),
-    )
-
-
-def typical_level(ses: Session, metric: str, end_hour: int | None = None) -> float:
-    """Median |hourly value| of `metric` over every series of every level and the hours
-    before `end_hour` (the tuning weeks: held-out hours are never read); 1 when undefined."""
-    vals = [np.abs(ls.values[metric][:, :end_hour]).ravel()
-            for ls in ses.history.levels.values() if metric in ls.values]
-    if not vals:
-        return 1.0
-    with np.errstate(all="ignore"):
-        med = float(np.nanmedian(np.concatenate(vals))) if sum(len(v) for v in vals) else 0.0
-    return med if math.isfinite(med) and med > 0 else 1.0
-
-
-def _with_current(spec: SearchParam, value: Any) -> SearchParam:
-    """Make sure today's value lies in the space, so the warm start is exact."""
-    if spec.kind == "choice":
-        if any(type(v) is type(value) and v == value for v in spec.values):
-            return spec
-        return replace(spec, values=(*spec.values, value))
-    if spec.kind == "int":
-        low, high, step = int(spec.low), int(spec.high), max(int(spec.step), 1)
-        if spec.name in ("seasonal_span",) or (spec.name == "trend_span" and low > 0):
-            low, step = low | 1, step + step % 2  # odd spans by construction
-            high = high if high % 2 else high - 1
-        if (int(value) - low) % step == 0 and low <= value <= high:
-            return replace(spec, low=low, high=max(high, low), step=step)
-        return replace(spec, kind="choice", values=tuple(
-            sorted({*range(low, high + 1, step), int(value)})))
-    lo, hi = min(float(spec.low), float(value)), max(float(spec.high), float(value))
-    if spec.log and lo <= 0:
-        return replace(spec, low=lo, high=hi, log=False)
-    return replace(spec, low=lo, high=hi)
-
-
-def group_metrics(ses: Session, group: str | None) -> list[str]:
-    """Watched metrics of one search group (None: every watched metric)."""
-    tune_by = ses.ws.search.tune_by
-    if tune_by == "metric" and group:
-        return [group]
-    if tune_by == "group" and group and group != BASE_GROUP:
-        own = [m for g in ses.ws.detector.groups if g.name == group for m in g.metrics]
-        return [m for m in ses.ws.metric_names if m in own] or list(ses.ws.metric_names)
-    return list(ses.ws.metric_names)
-
-
-def _shared_impact_spec(ses: Session, group: str | None) -> SearchParam | None:
-    return next((p for p in _group_specs(ses, group) if p.name == "min_impact"), None)
-
-
-def solved_min_impact(ses: Session, group: str | None = None) -> bool:
-    """Whether the minimum impact of a group (None: no groups) is solved per metric with
-    the multiplier: always, unless `[search]` lists values for Optuna to sample."""
-    if (group is None) != (ses.ws.search.tune_by == "all"):
-        return False
-    spec = _shared_impact_spec(ses, group)
-    return spec is None or spec.kind == "float"
-
-
-def impact_ranges(ses: Session, group: str | None, end_hour: int) -> dict[str, tuple[float, float]]:
-    """Per watched metric of the group, the (low, high) range its minimum impact is solved
-    in, in the metric's own units: its `[search.groups.METRIC]` range, else the group's
-    own range when the group has one metric, else 0 to the metric's typical hourly level
-    on the hours before `end_hour` (the tuning weeks).
-
-    Raises
-    ------
-    InputError
-        When one range is given for several metrics: impacts of different metrics are in
-        different units, so one number would silence some metrics and never filter others.
-    """
-    s = ses.ws.search
-    metrics = group_metrics(ses, group)
-    shared = _shared_impact_spec(ses, group)
-    if shared is not None and len(metrics) > 1 and float(shared.high) > 0:
-        raise InputError(
-            f"{ses.ws.file.name} [search] key 'min_impact'",
-            "one range for several metrics mixes their units; leave it out to solve each "
-            "metric's minimum impact from 0 to its typical hourly level, or give each metric "
-            "its range in [search.groups.METRIC]")
-    out = {}
-    for m in metrics:
-        own = next((p for p in s.group_params.get(m, ()) if p.name == "min_impact"
-                    and p.kind == "float"), None)
-        spec = own or shared
-        if spec is not None:
-            out[m] = (max(float(spec.low), 0.0), max(float(spec.high), 0.0))
-        else:
-            out[m] = (0.0, typical_level(ses, m, end_hour))
-    return out
-
-
-def relative_grid() -> np.ndarray:
-    """Shares of each metric's range the minimum impact is solved on: 0 and round values
-    (`IMPACT_STEPS` per decade) from a thousandth to the whole range."""
-    nice = [m * 10.0**d for d in range(-3, 1) for m in IMPACT_STEPS]
-    return np.unique(np.r_[0.0, [v for v in nice if v <= 1.0], 1.0])
-
-
-def impact_grids(ranges: dict[str, tuple[float, float]],
-                 current: Sequence[dict[str, float]]) -> dict[str, np.ndarray]:
-    """Per metric, its minimum impacts to solve on: level l is the same share
-    (`relative_grid`) of every metric's range, at four significant digits; then one
-    level per distinct `current` assignment (today's values and any warm start's), so
-    those are exactly reachable."""
-    shares = relative_grid()
-    grids = {m: np.array([float(f"{lo + t * (hi - lo):.4g}") for t in shares])
-             for m, (lo, hi) in ranges.items()}
-    extra = []
-    for cur in current:
-        row = {m: float(cur.get(m, 0.0)) for m in ranges}
-        on_grid = any(all(grids[m][lv] == row[m] for m in ranges) for lv in range(len(shares)))
-        if not on_grid and row not in extra:
-            extra.append(row)
-    return {m: np.r_[g, [row[m] for row in extra]] for m, g in grids.items()}
-
-
-def current_impacts(ses: Session, config: DetectorConfig, group: str | None) -> dict[str, float]:
-    """Each metric's minimum impact under `config`, for one search group."""
-    tune_by = ses.ws.search.tune_by
-    level = group if tune_by == "level" and group else next(iter(ses.history.levels))
-    return {m: config.for_series(level, m).min_impact for m in group_metrics(ses, group)}
-
-
-def impact_label(values: dict[str, float] | None) -> str:
-    """'metric=value, ...' of per-metric minimum impacts ('' for None)."""
-    return ", ".join(f"{m}={v:g}" for m, v in (values or {}).items())
-
-
-def _group_specs(ses: Session, group: str | None) -> list[SearchParam]:
-    """Searched settings of one group: its `[search.groups.NAME]` ranges, then the shared
-    `[search]` ones it does not name (defaults when `[search]` names none)."""
-    s = ses.ws.search
-    own = s.group_params.get(group or "", ())
-    return [*own, *(p for p in s.params or default_params(ses)
-                    if p.name not in {o.name for o in own})]
-
-
-def solved_groups(ses: Session) -> list[str]:
-    """Every group (\"\" without groups) whose minimum impact is solved per metric."""
-    names = group_names(ses, ses.ws.search.tune_by) or [None]
-    return [g or "" for g in names if solved_min_impact(ses, g)]
-
-
-def group_names(ses: Session, tune_by: str) -> list[str]:
-    if tune_by == "level":
-        return list(ses.history.levels)
-    if tune_by == "metric":
-        return list(ses.ws.metric_names)
-    if tune_by == "group":
-        return [g.name for g in ses.ws.detector.groups] + [BASE_GROUP]
-    return []
-
-
-def group_config(base: DetectorSettings, tune_by: str, names: Sequence[str],
-                 settings: dict[str, DetectorSettings],
-                 named: Sequence[DetectorGroup] = ()) -> DetectorConfig:
-    """A config with one group per level (or metric); with tune_by "group", the
-    workspace's `named` groups (their levels and metrics) and the base for the rest."""
-    if tune_by == "all":
-        return DetectorConfig(base=settings[""])
-    if tune_by == "group":
-        return DetectorConfig(base=settings[BASE_GROUP], groups=tuple(
-            replace(g, settings=settings[g.name]) for g in named))
-    groups = tuple(
-        DetectorGroup(
-            name=g,
-            levels=(g,) if tune_by == "level" else (),
-            metrics=(g,) if tune_by == "metric" else (),
-            settings=settings[g],
-        )
-        for g in names
-    )
-    return DetectorConfig(base=base, groups=groups)
-
-
-def build_space(ses: Session) -> list[Param]:
-    """Optuna parameters for the workspace's `[search]` (defaults when empty)."""
-    s = ses.ws.search
-    names = group_names(ses, s.tune_by)
-    current = ses.ws.detector
-    solved = solved_groups(ses)
-    out: list[Param] = []
-    for g in names or [None]:
-        cur = _settings_of(current, s.tune_by, g, ses)
-        for spec in _group_specs(ses, g):
-            if spec.name == "fence_multiplier" or (spec.name == "min_impact"
-                                                    and (g or "") in solved):
-                continue
-            spec = _with_current(spec, getattr(cur, spec.name))
-            name = spec.name if g is None else f"{g}/{spec.name}"
-            out.append(Param(name=name, setting=spec.name, group=g, spec=spec))
-    return out
-
-
-def _settings_of(config: DetectorConfig, tune_by: str, group: str | None,
-                 ses: Session) -> DetectorSettings:
-    if group is None:
-        return config.base
-    if tune_by == "group":
-        own = [g.settings for g in config.groups if g.name == group]
-        return own[0] if own else config.base  # a config without it: its base
-    if tune_by == "level":
-        return config.for_series(group, ses.ws.metric_names[0])
-    return config.for_series(next(iter(ses.history.levels)), group)
-
-
-def candidate_values(space: list[Param], setting: str, current: Sequence[Any]) -> list[Any] | None:
-    """Every value `setting` can take in the space (None when a float/large range)."""
-    vals = set(current)
-    for p in space:
-        if p.setting != setting:
-            continue
-        s = p.spec
-        if s.kind == "choice":
-            vals |= set(s.values)
-        elif s.kind == "int" and (s.high - s.low) / max(s.step, 1) < MAX_PRECOMPUTED_WINDOWS:
-            vals |= set(range(int(s.low), int(s.high) + 1, int(s.step)))
-        else:
-            return None
-    return sorted(vals)
-
-
-def params_of(config: DetectorConfig, space: list[Param], ses: Session) -> dict[str, Any]:
-    """Optuna parameter values that reproduce `config` (for `enqueue_trial`)."""
-    tune_by = ses.ws.search.tune_by
-    return {
-        p.name: getattr(_settings_of(config, tune_by, p.group, ses), p.setting) for p in space
-    }
-
-
-def holdout_split(n_hours: int, first_hour: int, fraction: float) -> int:
-    """First held-out hour: the last `fraction` of the history in whole weeks.
-
-    At least one week is held out when the fraction asks for any, as long as a
-    week of tuning hours remains after `first_hour`.
-    """
-    if fraction <= 0:
-        return n_hours
-    weeks = max(int(round(n_hours * fraction / WEEK)), 1)
-    while weeks > 0 and n_hours - weeks * WEEK - first_hour < WEEK:
-        weeks -= 1
-    return n_hours - weeks * WEEK
-
-
 # --------------------------------------------------------------------------- evaluate
-
-
-@dataclass
-class Evaluation:
-    """Figures of one structural setting at its solved multiplier(s), tuning hours."""
-
-    feasible: bool
-    reason: str
-    k: float
-    group_k: dict[str, float]
-    incidents: int
-    caught: int
-    miss_rate: float
-    miss_rate_high: float
-    alerts: int
-    known_false_alerts: int
-    team_rate: dict[str, float]
-    max_budget_ratio: float
-    value: float
-    constraints: list[float]
-    # solved minimum impact per metric (None: the config's own)
-    min_impact: dict[str, float] | None = None
-    # the same per group: group -> metric -> minimum impact
-    group_min_impact: dict[str, dict[str, float]] = field(default_factory=dict)
-    # best trade-offs over the solved multiplier (and minimum impact) grid: [caught,
-    # load (`scoring.load_axis`), k, min_impact or None]; empty for grouped settings
-    # (`tune` computes the chosen grouped setting's with `Evaluator.group_front`)
-    front: list[list[float | None]] = field(default_factory=list)
-
-    def attrs(self) -> dict[str, Any]:
-        return {k: _json_safe(v) for k, v in dataclasses.asdict(self).items()}
-
-
-@dataclass
-class JointSolve:
-    """One joint solve of grouped settings (`Evaluator._joint`): incidents caught,
-    alerts, known-false alerts, alerts per team (in the order of the team list
-    `_group_parts` returns) and the groups' multipliers and solved minimum impacts;
-    `load` is set by `group_front`."""
-
-    caught: int
-    alerts: int
-    kf: int
-    team_alerts: np.ndarray
-    group_k: dict[str, float]
-    group_min_impact: dict[str, dict[str, float]]
-    load: float = math.nan
-
-
-@dataclass
-class Evaluator:
-    """Scores settings on the tuning hours; holds the replayer and its cache."""
-
-    ses: Session
-    replayer: Replayer
-    ks: np.ndarray
-    first_hour: int
-    split_hour: int
-    goal: Goal
-    known_false: Incidents | None = None
-    # metric -> grid (one length for all; level l of every metric is one candidate): the
-    # minimum impacts are solved on it with the multiplier (configs without groups);
-    # None keeps each config's own minimum impact
-    min_impacts: dict[str, np.ndarray] | None = None
-    # the same per group (tune_by level, metric or group), by group name
-    group_min_impacts: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
-    incidents: Incidents = field(init=False)
-    false_windows: Incidents | None = field(init=False)
-    # the goal settings are judged by: the miss-rate target tightened by
-    # `goal.spare_incidents` (the target must hold with that many more misses)
-    judge: Goal = field(init=False)
-
-    def __post_init__(self) -> None:
-        if self.ses.incidents is None:
-            raise InputError(str(self.ses.ws.file), "no [incidents] path: nothing to tune against")
-        self.incidents = period_filter(self.ses.incidents, self.first_hour, self.split_hour)
-        n = len(self.incidents)
-        self.judge = self.goal if not n or not self.goal.spare_incidents else replace(
-            self.goal, max_miss_rate=self.goal.max_misses(n) / n)
-        self.false_windows = None
-        if self.known_false is not None and len(self.known_false):
-            self.false_windows = self.known_false
-
-    @property
-    def n_days(self) -> float:
-        return (self.split_hour - self.first_hour) / 24.0
-
-    def curve(self, scores: dict[tuple[str, str], MetricScores]) -> tuple[Curve, np.ndarray, Any]:
-        """Curve on the tuning hours, known-false alerts per k, and the episodes."""
-        eps = sweep_codes(scores, self.ks, self.replayer.routes,
-                          start_hours=(self.first_hour, self.split_hour))
-        ws = self.ses.ws
-        c = multiplier_curve(eps, self.ks, self.incidents, ws.incidents.early_hours,
-                             ws.incidents.late_hours, self.ses.analysts, self.n_days)
-        kf = np.zeros(len(self.ks), dtype=np.int64)
-        if self.false_windows is not None:
-            # alerts meeting a known-false window are that curve's "true alerts"
-            kf = multiplier_curve(eps, self.ks, self.false_windows, 0, 0, self.ses.analysts,
-                                  self.n_days).true_alerts
-        return c, kf, eps
-
-    def evaluate(self, config: DetectorConfig) -> Evaluation:
-        """Solve the multiplier(s) of `config` and return its figures."""
-        if self.min_impacts is not None and not config.groups:
-            return self._evaluate_with_impact(config)
-        scores = self.replayer.scores(config)
-        if not config.groups:
-            c, kf, _ = self.curve(scores)
-            pt = self._exact(scores, None)
-            if pt is not None:
-                ev = self._exact_figures(pt, None)
-            else:  # infeasible: the grid point closest to the goal
-                _, reason = solve_multiplier(c, self.judge.max_miss_rate, self.judge)
-                j = _fallback_index(c, self.judge)
-                ev = self._figures(
-                    feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
-                    caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kf[j]),
-                    team_alerts=c.team_alerts[j], teams=c.teams,
-                )
-            ev.front = self._front([c], None)
-            return ev
-        return self._evaluate_groups(config, scores)
-
-    def breakpoints(self, scores: dict[tuple[str, str], MetricScores]) -> np.ndarray:
-        """Every multiplier at which the flags change, within the grid's range: each
-        distinct fence score of the hours before the split in (min grid, max grid],
-        plus the grid itself (today's multiplier among it)."""
-        low, high = float(self.ks.min()), float(self.ks.max())
-        parts = [self.ks]
-        for ms in scores.values():
-            v = ms.score[:, :self.split_hour].ravel()
-            parts.append(v[(v > low) & (v <= high)])
-        return np.unique(np.concatenate(parts))
-
-    def _exact(self, scores: dict[tuple[str, str], MetricScores],
-               grids: dict[str, np.ndarray] | None):
-        """`scoring.exact_solve` over every breakpoint multiplier (and minimum-impact
-        level of `grids`; None: each series' own minimum impact)."""
-        ws = self.ses.ws
-        ks = self.breakpoints(scores)
-        runs = sweep_runs(scores, ks, self.replayer.routes,
-                          start_hours=(self.first_hour, self.split_hour), min_impacts=grids)
-        return exact_solve(runs, ks, self.incidents, ws.incidents.early_hours,
-                           ws.incidents.late_hours, self.ses.analysts, self.n_days, self.judge,
-                           self.false_windows, KNOWN_FALSE_PENALTY)
-
-    def _exact_figures(self, pt: ExactPoint, grids: dict[str, np.ndarray] | None) -> Evaluation:
-        ev = self._figures(
-            feasible=True, reason="", k=pt.k, group_k={}, caught=pt.caught, alerts=pt.alerts,
-            kf=pt.known_false, team_alerts=pt.team_alerts, teams=pt.teams,
-            min_impact=None if grids is None else _level(grids, pt.level))
-        ev.reason = f"k={pt.k:g}: " + _reason(ev, self.judge)
-        return ev
-
-    def _evaluate_with_impact(self, config: DetectorConfig) -> Evaluation:
-        """Solve multiplier and minimum impacts together (`_exact`): the fewest
-        (penalised) alerts meeting the goal over every breakpoint multiplier and every
-        minimum-impact level; ties go to the larger multiplier, then the lower level. An
-        infeasible setting reports the grid pair closest to the goal: the lowest
-        miss-rate excess, then the lowest worst budget ratio (the exact search's
-        feasible pairs include every grid pair's, so none of those is feasible either)."""
-        grids = self.min_impacts
-        scores = self.replayer.scores(config)
-        curves, kfs, _ = self._impact_curves(scores, grids)
-        pt = self._exact(scores, grids)
-        if pt is not None:
-            ev = self._exact_figures(pt, grids)
-        else:
-            picks = []
-            for lv, c in enumerate(curves):
-                j = _fallback_index(c, self.judge)
-                miss = 0.0 if np.isnan(c.miss_rate[j]) else float(c.miss_rate[j])
-                picks.append((max(miss - self.judge.max_miss_rate, 0.0),
-                              self._budget_ratio(c, j), -float(c.ks[j]), float(lv), lv, j))
-            *_, lv, j = min(picks)
-            c = curves[lv]
-            _, reason = solve_multiplier(c, self.judge.max_miss_rate, self.judge)
-            ev = self._figures(
-                feasible=False, reason=reason, k=float(c.ks[j]), group_k={},
-                caught=int(c.caught[j]), alerts=int(c.alerts[j]), kf=int(kfs[lv][j]),
-                team_alerts=c.team_alerts[j], teams=c.teams, min_impact=_level(grids, lv))
-        ev.front = self._front(curves, grids)
-        return ev
-
-    def _front(self, curves: Sequence[Curve],
-               grids: dict[str, np.ndarray] | None) -> list[list[Any]]:
-        """`scoring.best_tradeoffs` over every (multiplier, minimum impact) pair of
-        `curves` (curve l at minimum impact level l of `grids`; None: the config's own)."""
-        pts = best_tradeoffs(
-            np.concatenate([c.caught for c in curves]),
-            np.concatenate([curve_loads(c, self.ses.analysts, self.judge) for c in curves]),
-            np.concatenate([c.ks for c in curves]),
-            np.concatenate([np.full(len(c.ks), float(lv)) for lv, c in enumerate(curves)]))
-        return [[c, x, k, None if grids is None else _level(grids, int(lv))]
-                for c, x, k, lv in pts]
-
-    def _evaluate_groups(self, config: DetectorConfig,
-                         scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
-        parts, teams = self._group_parts(config, scores)
-        j = self._joint(parts, teams, self.judge.max_miss_rate)
-        ev = self._figures(feasible=True, reason="",
-                           k=float(np.median(list(j.group_k.values()))), group_k=j.group_k,
-                           caught=j.caught, alerts=j.alerts, kf=j.kf, team_alerts=j.team_alerts,
-                           teams=tuple(teams))
-        ev.group_min_impact = j.group_min_impact
-        ev.feasible = all(v <= 0 for v in ev.constraints)
-        ev.reason = _reason(ev, self.judge)
-        return ev
-
-    def group_front(self, config: DetectorConfig) -> list[JointSolve]:
-        """Best trade-offs of a grouped `config`: the joint solve (`greedy_multipliers`)
-        at every miss-rate level k/n, kept where no other level catches as many for
-        less load (`scoring.best_tradeoffs`); most incidents caught first."""
-        parts, teams = self._group_parts(config, self.replayer.scores(config))
-        n_inc = len(self.incidents)
-        budgets = {t: self.judge.budget(t) for t in self.ses.analysts}
-        solves = [self._joint(parts, teams, (n_inc - c) / n_inc if n_inc else 0.0)
-                  for c in range(n_inc + 1)]
-        for js in solves:
-            rates, _ = _max_ratio(dict(zip(teams, js.team_alerts, strict=True)),
-                                  self.ses.analysts, self.judge, self.n_days)
-            js.load = load_axis(rates, budgets, self.ses.analysts)[0]
-        n = len(solves)
-        pts = best_tradeoffs(np.array([js.caught for js in solves]),
-                             np.array([js.load for js in solves]),
-                             -np.arange(n, dtype=np.float64), np.zeros(n))
-        # best_tradeoffs' k slot carries -index here, so ties keep the lowest index c
-        # (the most lenient miss-rate level); either solve is valid
-        return [solves[int(-k)] for _, _, k, _ in pts]
-
-    def _group_parts(self, config: DetectorConfig,
-                     scores: dict[tuple[str, str], MetricScores]) -> tuple[list, list[str]]:
-        """Every group's candidates (`_candidates`) and the teams they route to."""
-        teams = list(self.ses.analysts)
-        parts = []
-        # each (level, metric) belongs to the first group matching it (as in replay),
-        # the rest to the base settings, solved as one more group
-        owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
-                 for key in scores}
-        for i, g in [*enumerate(config.groups), (None, None)]:
-            sub = {key: ms for key, ms in scores.items() if owner[key] == i}
-            if sub:
-                parts.append(self._candidates(BASE_GROUP if g is None else g.name, sub, teams))
-        return parts, teams
-
-    def _joint(self, parts: list, teams: list[str], max_miss_rate: float) -> JointSolve:
-        """The groups' joint multipliers (and minimum impacts) at `max_miss_rate`."""
-        # a candidate is (multiplier j, minimum impact l) at index l * n_k + j; groups
-        # whose minimum impact is not solved have l = 0 only (their own value)
-        n_k, n_t = len(self.ks), len(teams)
-        cost = [alerts + KNOWN_FALSE_PENALTY * kf for _, _, _, alerts, kf, _ in parts]
-        idx = greedy_multipliers([p[1] for p in parts], cost, max_miss_rate,
-                                 forward_only=[p[2] is None for p in parts])
-        caught = np.zeros(len(self.incidents), dtype=bool)
-        ta = np.zeros(n_t, dtype=np.int64)
-        alerts = kf = 0
-        group_k: dict[str, float] = {}
-        group_m: dict[str, float] = {}
-        for (name, cm, grid, al, kfs, curves), i in zip(parts, idx, strict=True):
-            caught |= cm[i]
-            c = curves[i // n_k]
-            for t, v in zip(c.teams, c.team_alerts[i % n_k], strict=True):
-                ta[teams.index(t)] += v
-            alerts += int(al[i])
-            kf += int(kfs[i])
-            group_k[name] = float(self.ks[i % n_k])
-            if grid is not None:
-                group_m[name] = _level(grid, i // n_k)
-        return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
-                          group_k=group_k, group_min_impact=group_m)
-
-    def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
-                    teams: list[str]):
-        """One group's candidates: (name, caught (n_cand, n_inc), minimum impact grid or
-        None, alerts, known-false alerts, curves (candidate i is row i % n_k of curve
-        i // n_k)); `teams` gains the group's teams."""
-        grid = self.group_min_impacts.get(name)
-        if grid is None:
-            c, kf, eps = self.curve(sub)
-            caught = np.zeros((len(self.ks), len(self.incidents)), dtype=bool)
-            pa, pi = catch_pairs(eps, self.incidents, self.ses.ws.incidents.early_hours,
-                                 self.ses.ws.incidents.late_hours)
-            caught[np.asarray(eps.grid, dtype=np.int64)[pa], pi] = True
-            curves, kfs = [c], [kf]
-        else:
-            grid = {m: g for m, g in grid.items() if any(key[1] == m for key in sub)}
-            curves, kfs, caught_lk = self._impact_curves(sub, grid)
-            caught = caught_lk.reshape(len(curves) * len(self.ks), len(self.incidents))
-        for c in curves:
-            teams.extend(t for t in c.teams if t not in teams)
-        alerts = np.concatenate([c.alerts for c in curves])
-        return name, caught, grid, alerts, np.concatenate(kfs), curves
-
-    def _impact_curves(self, scores: dict[tuple[str, str], MetricScores],
-                       grids: dict[str, np.ndarray]):
-        """Curves over the multiplier grid for every minimum-impact level of `grids`
-        (tuning hours), the known-false alerts of each, and which incidents each
-        (level, multiplier) catches."""
-        ws = self.ses.ws
-        runs = sweep_runs(scores, self.ks, self.replayer.routes,
-                          start_hours=(self.first_hour, self.split_hour), min_impacts=grids)
-        curves, caught = impact_curves(runs, self.ks, self.incidents, ws.incidents.early_hours,
-                                       ws.incidents.late_hours, self.ses.analysts, self.n_days)
-        kfs = [np.zeros(len(self.ks), dtype=np.int64)] * len(curves)
-        if self.false_windows is not None:
-            kfs = [c.true_alerts for c in impact_curves(
-                runs, self.ks, self.false_windows, 0, 0, self.ses.analysts, self.n_days)[0]]
-        return curves, kfs, caught
-
-    def _budget_ratio(self, c: Curve, j: int) -> float:
-        return _max_ratio(dict(zip(c.teams, c.team_alerts[j], strict=True)), self.ses.analysts,
-                          self.judge, self.n_days)[1]
-
-    def _figures(self, *, feasible: bool, reason: str, k: float, group_k: dict[str, float],
-                 caught: int, alerts: int, kf: int, team_alerts: np.ndarray,
-                 teams: Sequence[str], min_impact: dict[str, float] | None = None) -> Evaluation:
-        n_inc = len(self.incidents)
-        miss = (n_inc - caught) / n_inc if n_inc else 0.0
-        high = float(wilson(n_inc - caught, n_inc)[1]) if n_inc else 0.0
-        rates, ratio = _max_ratio(dict(zip(teams, team_alerts, strict=True)), self.ses.analysts,
-                                  self.judge, self.n_days)
-        total_analysts = sum(self.ses.analysts.values()) or 1
-        value = (alerts + KNOWN_FALSE_PENALTY * kf) / (total_analysts * self.n_days)
-        constraints = [miss - self.judge.max_miss_rate, ratio - 1.0]
-        return Evaluation(
-            feasible=feasible, reason=reason, k=k, group_k=group_k, incidents=n_inc,
-            caught=caught, miss_rate=miss, miss_rate_high=high, alerts=alerts,
-            known_false_alerts=kf, team_rate=rates, max_budget_ratio=ratio, value=value,
-            constraints=constraints, min_impact=min_impact,
-        )
-
-
-def _level(grids: dict[str, np.ndarray], lv: int) -> dict[str, float]:
-    """Each metric's minimum impact at level `lv` of per-metric `grids`."""
-    return {m: float(g[lv]) for m, g in grids.items()}
-
-
-def _max_ratio(team_alerts: dict[str, Any], analysts: dict[str, int], goal: Goal,
-               n_days: float) -> tuple[dict[str, float], float]:
-    """Alerts per analyst per day of each team with analysts, and the worst budget ratio."""
-    rates, worst = {}, 0.0
-    for t, n in analysts.items():
-        if n <= 0:
-            continue
-        rate = float(team_alerts.get(t, 0)) / (n * n_days)
-        rates[t] = rate
-        b = goal.budget(t)
-        worst = max(worst, rate / b if math.isfinite(b) else 0.0)
-    return rates, worst
-
-
-def _fallback_index(c: Curve, goal: Goal) -> int:
-    """Grid point reported for an infeasible setting: among multipliers meeting the
-    miss rate the one with the lowest worst budget ratio, else the lowest miss rate."""
-    miss = np.where(np.isnan(c.miss_rate), 0.0, c.miss_rate)
-    ok = np.flatnonzero(miss <= goal.max_miss_rate)
-    if len(ok):
-        budget = np.array([goal.budget(t) for t in c.teams])
-        checked = c.analysts > 0
-        load = np.where(checked[None, :], np.nan_to_num(c.alerts_per_analyst_day), 0.0)
-        ratio = np.where(np.isfinite(budget)[None, :], load / budget[None, :], 0.0).max(axis=1)
-        return int(ok[np.lexsort((-c.ks[ok], ratio[ok]))[0]])
-    return int(np.lexsort((-c.ks, miss))[0])
-
-
-def greedy_multipliers(caught: Sequence[np.ndarray], cost: Sequence[np.ndarray],
-                       max_miss_rate: float,
-                       forward_only: Sequence[bool] | None = None) -> list[int]:
-    """Joint multiplier grid indices for several groups (method in the module docstring).
-
-    Parameters
-    ----------
-    caught : list of (n_cand, n_incidents) bool arrays, one per group
-    cost : list of (n_cand,) arrays (alerts, penalised), one per group
-    max_miss_rate : float
-    forward_only : list of bool, optional
-        Per group: moves only to a later candidate (a larger multiplier, the default),
-        or to any candidate that saves alerts (candidates of (multiplier, minimum
-        impact) pairs). Every move saves alerts, so the method ends.
-
-    Returns
-    -------
-    list of int
-        Candidate index per group (the first one is where each group starts).
-    """
-    n_g = len(caught)
-    idx = [0] * n_g
-    n_inc = caught[0].shape[1] if n_g else 0
-    forward = list(forward_only) if forward_only is not None else [True] * n_g
-
-    def miss(count: np.ndarray | int) -> np.ndarray:
-        return (n_inc - np.asarray(count)) / n_inc if n_inc else np.zeros(np.shape(count))
-
-    while True:
-        rows = [caught[g][idx[g]] for g in range(n_g)]
-        now = np.logical_or.reduce(rows).sum() if n_g else 0
-        if miss(now) > max_miss_rate:
-            return idx
-        best: tuple[float, float, int, int] | None = None
-        for g in range(n_g):
-            others = np.logical_or.reduce([rows[h] for h in range(n_g) if h != g]) \
-                if n_g > 1 else np.zeros(n_inc, dtype=bool)
-            counts = (caught[g] | others[None, :]).sum(axis=1)
-            saving = cost[g][idx[g]] - cost[g]
-            lost = now - counts
-            ok = (miss(counts) <= max_miss_rate) & (saving > 0)
-            if forward[g]:
-                ok &= np.arange(len(counts)) > idx[g]
-            cand = np.flatnonzero(ok)
-            if not len(cand):
-                continue
-            with np.errstate(divide="ignore", invalid="ignore"):
-                rate = np.where(lost[cand] <= 0, np.inf, saving[cand] / lost[cand])
-            # the group's best move: highest rate, then saving, then the later candidate
-            top = np.lexsort((cand, saving[cand], rate))[-1]
-            move = (float(rate[top]), float(saving[cand][top]), -g, int(cand[top]))
-            if best is None or move > best:
-                best = move
-        if best is None:
-            return idx
-        idx[-best[2]] = best[3]
-
-
-def _reason(ev: Evaluation, goal: Goal) -> str:
-    if ev.feasible:
-        return (f"miss rate {ev.miss_rate:.3f} <= {goal.max_miss_rate:.3f}, every team within "
-                f"its alert budget ({ev.value:.2f} alerts per analyst per day)")
-    if ev.constraints[0] > 0:
-        return (f"miss rate {ev.miss_rate:.3f} is {ev.constraints[0]:.3f} above the target "
-                f"{goal.max_miss_rate:.3f}")
-    return (f"the busiest team gets {ev.max_budget_ratio:.2f} times its alert budget "
-            f"at miss rate {ev.miss_rate:.3f}")
 
 
 # --------------------------------------------------------------------------- result
@@ -1182,7 +491,7 @@ def _config_from(params: dict[str, Any], space: list[Param], ses: Session,
     names = group_names(ses, tune_by)
     out: dict[str, DetectorSettings] = {}
     for g in names or [""]:
-        cur = _settings_of(current, tune_by, g or None, ses)
+        cur = settings_of(current, tune_by, g or None, ses)
         changes = {p.setting: params[p.name] for p in space if (p.group or "") == g}
         s = replace(cur, **changes)
         s.validate(f"trial setting{'' if not g else ' of group ' + g}")
@@ -1199,7 +508,7 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
         existing = optuna.load_study(study_name=name, storage=store)
         created = False
     if created:  # what a later `report --study` needs to judge the trials as tune did
-        existing.set_user_attr("goal", _json_safe(dataclasses.asdict(ev.goal)))
+        existing.set_user_attr("goal", json_safe(dataclasses.asdict(ev.goal)))
         existing.set_user_attr("hours", [ev.first_hour, ev.split_hour])
         existing.set_user_attr("known_false", ev.false_windows is not None)
     if not created:  # trials a dead process left RUNNING; today's settings cut off
@@ -1397,7 +706,7 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
             fronts[chosen.number] = [[js.caught, js.load, None, None]
                                      for js in ev.group_front(structure)]
             if store_front:
-                study.set_user_attr(key, _json_safe(fronts[chosen.number]))
+                study.set_user_attr(key, json_safe(fronts[chosen.number]))
     pareto = pareto_frame(finished, goal, ses.analysts, fronts)
     n = ses.history.n_hours
     episodes = ev.replayer.replay(config).episodes
@@ -1486,10 +795,10 @@ def _key_figures(f: Figures | None) -> dict[str, Any] | None:
         return None
     keys = ("incidents", "caught", "miss_rate", "miss_rate_low", "miss_rate_high", "alerts",
             "false_alerts", "precision", "n_days")
-    out = {k: _json_safe(getattr(f, k)) for k in keys}
+    out = {k: json_safe(getattr(f, k)) for k in keys}
     if "alerts_per_analyst_day" in f.per_team.columns:
         out["alerts_per_analyst_day"] = {
-            str(t): _json_safe(v) for t, v in f.per_team["alerts_per_analyst_day"].items()}
+            str(t): json_safe(v) for t, v in f.per_team["alerts_per_analyst_day"].items()}
     return out
 
 
@@ -1536,83 +845,7 @@ def provenance(ses: Session, config: DetectorConfig, name: str, store: str, goal
     }
 
 
-def _json_safe(v: Any) -> Any:
-    if isinstance(v, dict):
-        return {str(k): _json_safe(x) for k, x in v.items()}
-    if isinstance(v, list | tuple):
-        return [_json_safe(x) for x in v]
-    if isinstance(v, np.generic):
-        v = v.item()
-    if isinstance(v, float) and not math.isfinite(v):
-        return None if math.isnan(v) else (1e300 if v > 0 else -1e300)
-    return v
-
-
 # --------------------------------------------------------------------------- CLI
-
-
-def _pct(x: float | None) -> str:
-    return "n/a" if x is None or x != x else f"{100 * x:.1f}%"
-
-
-def side_by_side(result: TuneResult) -> list[str]:
-    """Tuning and held-out figures side by side, with 95% intervals."""
-    cols = [("tuning weeks (in-sample)", result.tuning),
-            ("held-out weeks (out-of-sample)", result.holdout)]
-    lines = [f"{'':<28}" + "".join(f"{n:>32}" for n, _ in cols)]
-
-    def cell(f: Figures | None, what: str) -> str:
-        if f is None:
-            return "none held out"
-        if what == "incidents":
-            return f"{f.caught} of {f.incidents} caught"
-        if what == "recall":
-            return f"{_pct(f.recall)} ({_pct(f.recall_low)}-{_pct(f.recall_high)})"
-        if what == "miss":
-            return f"{_pct(f.miss_rate)} ({_pct(f.miss_rate_low)}-{_pct(f.miss_rate_high)})"
-        if what == "alerts":
-            return f"{f.alerts} ({f.false_alerts} false)"
-        if what == "precision":
-            return f"{_pct(f.precision)} ({_pct(f.precision_low)}-{_pct(f.precision_high)})"
-        team = what.split(":", 1)[1]
-        if team in f.per_team.index and "alerts_per_analyst_day" in f.per_team.columns:
-            row = f.per_team.loc[team]
-            if "alerts_per_analyst_day_low" in f.per_team.columns:
-                return (f"{row['alerts_per_analyst_day']:.2f} "
-                        f"({row['alerts_per_analyst_day_low']:.2f}-"
-                        f"{row['alerts_per_analyst_day_high']:.2f})")
-            return f"{row['alerts_per_analyst_day']:.2f}"
-        return "n/a"
-
-    rows = [("incidents", "incidents"), ("recall (95% interval)", "recall"),
-            ("miss rate (95% interval)", "miss"), ("alerts", "alerts"),
-            ("precision (95% interval)", "precision")]
-    teams = [t for t, n in sorted(result.tuning.per_team.get("analysts", pd.Series()).items())
-             if n > 0] if "analysts" in result.tuning.per_team.columns else []
-    rows += [(f"{t}: per analyst-day", f"team:{t}") for t in teams]
-    for label, what in rows:
-        lines.append(f"{label:<28}" + "".join(f"{cell(f, what):>32}" for _, f in cols))
-    lines.append("the tuning-week figures are optimistic: the settings were chosen on those "
-                 "labels; judge by the held-out ones. Intervals: "
-                 + (result.tuning.interval_method or "95% Wilson"))
-    return lines
-
-
-def labels_line(n_incidents: int, goal: Goal) -> str:
-    """What `n_incidents` tuning-week labels can show at best: the miss-rate upper bound
-    of a setting that misses none (Wilson), against the target; one line."""
-    bound = zero_miss_bound(n_incidents)
-    head = (f"{n_incidents} labelled incident(s) in the tuning weeks: even a setting that "
-            f"misses none shows a miss rate of at most {bound:.1%} (95% upper bound)")
-    if goal.spare_incidents and goal.max_misses(n_incidents) < 0:
-        return (head + f"; with spare_incidents = {goal.spare_incidents} no setting can meet "
-                f"the target {goal.max_miss_rate:.1%}: there are too few incidents")
-    if bound <= goal.max_miss_rate:
-        return head + f", within the target {goal.max_miss_rate:.1%}"
-    need = incidents_needed(goal.max_miss_rate)
-    more = "" if need is None else f"; showing it would take at least {need} labelled incidents"
-    return (head + f", above the target {goal.max_miss_rate:.1%}: these labels cannot show the "
-            "target is met, only that it is not clearly missed" + more)
 
 
 def split_hour(ses: Session) -> int:
@@ -1638,118 +871,3 @@ def thin_margin(ses: Session, episodes: Episodes, config: DetectorConfig, start:
     fence_only = np.array(["flatline" not in d for d in eps.detectors], dtype=bool)
     close = fence_only & (np.nan_to_num(eps.peak_score, nan=np.inf) <= k * (1.0 + margin))
     return sum(1 for i in np.flatnonzero(m.caught) if close[m.alerts_of(int(i))].all())
-
-
-def metric_lines(result: TuneResult) -> list[str]:
-    """Recall and alerts per watched metric and alerts per detector on the tuning weeks
-    (in-sample), and a warning for every metric with labelled incidents but no alert."""
-    f = result.tuning
-    pm = f.per_metric
-    lines = ["per metric, tuning weeks (in-sample, chosen on these labels):"]
-    warnings = []
-    for metric, row in pm.iterrows():
-        n, caught, alerts = int(row["incidents"]), int(row["caught"]), int(row["alerts"])
-        rec = (f"recall {_pct(row['recall'])} [{_pct(row['recall_low'])}, "
-               f"{_pct(row['recall_high'])}] ({caught} of {n})" if n else "no incidents")
-        lines.append(f"  {metric}: {rec}, {alerts} alerts")
-        if n and alerts == 0 and metric != "(any)":
-            warnings.append(f"WARNING: metric '{metric}' has {n} labelled incident(s) in the "
-                            "tuning weeks but the tuned settings raise no alert on it: it is "
-                            "switched off in effect; check its minimum impact")
-        elif n and caught == 0 and metric != "(any)":
-            warnings.append(f"WARNING: metric '{metric}' catches none of its {n} labelled "
-                            "incident(s) in the tuning weeks: the goal counts incidents of "
-                            "every metric together and is met without them")
-    det = ", ".join(f"{d}: {int(r['alerts'])} alerts ({_pct(r['precision'])} true)"
-                    for d, r in f.per_detector.iterrows())
-    lines.append(f"per detector, tuning weeks: {det or 'no alerts'}")
-    if f.before_first_scored:
-        lines.append(f"{f.before_first_scored} incident(s) begin before the first scored hour "
-                     "and cannot be caught: listed apart, left out of recall")
-    if f.already_alerting:
-        lines.append(f"{f.already_alerting} incident(s) missed while an earlier alert was "
-                     "still running (already alerting, not counted as caught)")
-    return lines + warnings
-
-
-def changed_settings_line(result: TuneResult) -> str:
-    """One line: the settings the tuned config changes, today's value -> the new one."""
-    cur, new = result.current.base, result.config.base
-    diffs = [f"{f.name} {getattr(cur, f.name)!r} -> {getattr(new, f.name)!r}"
-             for f in dataclasses.fields(new) if getattr(cur, f.name) != getattr(new, f.name)]
-    groups = f"; {len(result.config.groups)} group(s) with their own settings" \
-        if result.config.groups else ""
-    return "changed: " + (", ".join(diffs) if diffs else "nothing in the base settings") + groups
-
-
-def pareto_lines(result: TuneResult) -> list[str]:
-    """The best trade-offs (Pareto front), most recall first, one line each (at most
-    one per number of incidents caught)."""
-    front = result.pareto
-    label = front.attrs.get("load_label", "alert load")
-    lines = [f"best trade-offs found on the tuning weeks (load: {label}):"]
-    rows = front.sort_values("recall", ascending=False, kind="stable")
-    for d in rows.to_dict("records"):
-        impact = d["min_impact"]
-        shown = f", min_impact: {impact}" if isinstance(impact, str) and impact else ""
-        k = "multipliers per group" if d["k"] != d["k"] else f"k={d['k']:.3g}"
-        lines.append(f"  recall {_pct(d['recall'])} ({d['caught']} of {d['incidents']}), "
-                     f"load {d['load']:.3g}: trial {d['number']}, {k}" + shown)
-    return lines
-
-
-def fold_rows(result: TuneResult) -> list[dict[str, Any]]:
-    """Rolling folds as plain rows: hours, chosen settings and test figures with their
-    intervals (out of sample for the settings each fold chose)."""
-    rows = []
-    for f in result.folds:
-        fig = f.figures
-        teams = {} if fig is None else {
-            t: [_json_safe(r.get("alerts_per_analyst_day")),
-                _json_safe(r.get("alerts_per_analyst_day_low")),
-                _json_safe(r.get("alerts_per_analyst_day_high"))]
-            for t, r in fig.per_team.to_dict(orient="index").items() if r.get("analysts")}
-        rows.append({
-            "fold": f.number, "train_end_hour": f.train_end, "test_start_hour": f.test_start,
-            "test_end_hour": f.test_end, "feasible_on_its_tuning_hours": f.feasible,
-            "settings": _json_safe(f.settings),
-            "caught": None if fig is None else fig.caught,
-            "incidents": None if fig is None else fig.incidents,
-            "recall": None if fig is None else _json_safe(
-                [fig.recall, fig.recall_low, fig.recall_high]),
-            "alerts_per_analyst_day": teams,
-        })
-    return rows
-
-
-def fold_lines(result: TuneResult) -> list[str]:
-    """Terminal lines of the rolling validation (nothing without folds)."""
-    if not result.folds:
-        return []
-    lines = ["rolling validation (each fold tuned on the weeks before its test block; "
-             "test figures out-of-sample):"]
-    for r in fold_rows(result):
-        rec = r["recall"]
-        recall = ("no incidents" if not r["incidents"] else
-                  f"recall {_pct(rec[0])} ({_pct(rec[1])}-{_pct(rec[2])}), "
-                  f"{r['caught']} of {r['incidents']}")
-        load = ", ".join(f"{t} {v[0]:.2f} ({v[1]:.2f}-{v[2]:.2f})"
-                         for t, v in r["alerts_per_analyst_day"].items())
-        k = r["settings"].get("fence_multiplier")
-        lines.append(f"  fold {r['fold']}: {recall}; per analyst-day {load}; k={k:.3g}"
-                     if k is not None else f"  fold {r['fold']}: {recall}; {load}")
-    moving = {n: v for n, v in rolling.stability(result.folds).items() if len(set(map(
-        str, v))) > 1}
-    lines.append("  settings that differ between folds: " + (", ".join(
-        f"{n} {v}" for n, v in moving.items()) or "none"))
-    if result.pooled is not None:
-        p = result.pooled
-        lines.append(f"  pooled test blocks: recall {_pct(p.recall)} ({_pct(p.recall_low)}-"
-                     f"{_pct(p.recall_high)}), {p.caught} of {p.incidents}")
-    return lines
-
-
-def verdict_line(result: TuneResult) -> str:
-    """The out-of-sample verdict and its reasons, one line (printed last)."""
-    return (f"out-of-sample verdict: {result.verdict.upper()}: "
-            + "; ".join(result.verdict_reasons))

@@ -18,8 +18,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from calibrate import api
-from calibrate import replay as replay_mod
+from calibrate import api, replay as replay_mod
 from calibrate.cli import main
 from calibrate.executors import DaskExecutor, SerialExecutor, dask_batch_size
 from calibrate.settings import DetectorConfig

@@ -31,10 +31,10 @@ STAGES: dict[str, int] = {
     # 7 the session layer: a loaded workspace, replays and figures over it
     "api": 7,
     # 8 search
-    "studies": 8, "rolling": 8, "search": 8,
+    "studies": 8, "rolling": 8, "search_space": 8, "evaluate": 8, "search": 8,
     # 9 outputs
     "report_data": 9, "plots": 9, "report": 9, "retune": 9, "review": 9, "review_data": 9,
-    "review_app": 9, "sample": 9, "demo": 9, "commands": 9,
+    "review_app": 9, "sample": 9, "demo": 9, "commands": 9, "summaries": 9,
     # 10 command line
     "cli": 10, "__main__": 10, "__init__": 10,
 }

@@ -12,7 +12,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from calibrate import api, rolling, search
+from calibrate import api, rolling, search, summaries
 from calibrate.errors import InputError
 from tests.synthetic import START, make_workspace
 
@@ -77,7 +77,7 @@ def test_each_fold_is_tuned_only_on_the_weeks_before_it(tmp_path: Path):
     assert res.pooled.alerts == sum(f.figures.alerts for f in res.folds)
     assert res.verdict in ("holds", "does not hold", "cannot tell")
     assert all(r.startswith("rolling folds pooled") for r in res.verdict_reasons)
-    lines = search.fold_lines(res)
+    lines = summaries.fold_lines(res)
     assert lines[0].startswith("rolling validation") and "fold 2" in lines[2]
     # the report carries the folds, their stability and the verdict
     import json

@@ -21,7 +21,7 @@ import optuna
 import pandas as pd
 import pytest
 
-from calibrate import api, scoring, search
+from calibrate import api, scoring, search, search_space, summaries
 from calibrate.cli import main
 from calibrate.episodes import Episodes
 from calibrate.errors import InputError
@@ -346,7 +346,7 @@ def test_min_impact_is_solved_per_metric_in_its_own_units(tmp_path, monkeypatch)
     assert "min_impact" in {p.name for p in search.build_space(ses_l)}
     # a study whose trials sampled the minimum impact is never continued by one solving
     # it (its trials lack the solved value): the name records what is solved
-    monkeypatch.setattr(search, "solved_min_impact", lambda *a: False)
+    monkeypatch.setattr(search_space, "solved_min_impact", lambda *a: False)
     assert search.study_name_for(ses, ses.ws.goal, None) != solved_name
 
 
@@ -384,7 +384,7 @@ def test_impossible_goal_says_which_constraint_and_by_how_much(ses, tmp_path):
     front = res.pareto
     assert front["load"].is_monotonic_increasing and front["recall"].is_monotonic_increasing
     assert front["recall"].iloc[-1] == pytest.approx(1 - res.trials["miss_rate"].min())
-    lines = search.pareto_lines(res)
+    lines = summaries.pareto_lines(res)
     assert lines[0].startswith("best trade-offs found") and "trial" in lines[1]
 
 
@@ -795,7 +795,7 @@ def test_metric_lines_warn_about_metrics_switched_off_or_missing_all():
                        index=pd.Index(["fence", "flatline"], name="detectors"))
     tuning = SimpleNamespace(per_metric=pm, per_detector=det, before_first_scored=2,
                              already_alerting=1)
-    lines = search.metric_lines(SimpleNamespace(tuning=tuning))
+    lines = summaries.metric_lines(SimpleNamespace(tuning=tuning))
     warnings = [x for x in lines if x.startswith("WARNING")]
     assert len(warnings) == 2
     assert "'clicks'" in warnings[0] and "no alert" in warnings[0]
