@@ -34,7 +34,7 @@ from calibrate.errors import InputError
 from calibrate.executors import make_executor
 from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.replay import ReplayResult, alerts_frame
-from calibrate.review import VERDICTS
+from calibrate.review import VERDICTS, read_reviewed
 from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_teams
 from calibrate.settings import DetectorConfig
 
@@ -93,12 +93,7 @@ def read_verdicts(path: str | Path, ses: api.Session, previous: ReplayResult,
     """
     path = Path(path)
     where = str(path)
-    df = read_text_csv(path)
-    df.columns = [str(c).strip() for c in df.columns]
-    for col in ("alert_id", "verdict"):
-        if col not in df.columns:
-            raise InputError(f"{where} row 1", f"missing column '{col}' "
-                             f"(found: {', '.join(df.columns) or 'none'})")
+    df = read_reviewed(path)
     hist = ses.history
     ref = alerts_frame(previous.episodes, hist)
     pos_of = {a: i for i, a in enumerate(ref["alert_id"])}
@@ -388,6 +383,13 @@ class RetuneResult:
     provenance: dict[str, Any] = field(default_factory=dict)
     added: pd.DataFrame | None = None  # incidents added in `calibrate review`
 
+    @property
+    def held_out_labels(self) -> bool:
+        """Some new labels came from looking at the held-out weeks (verdicts on their
+        alerts, or incidents added there in review): that check is not independent."""
+        return bool(self.verdicts.held_out_incidents
+                    or self.provenance.get("held_out_incidents_added_in_review"))
+
 
 Tuner = Callable[..., Any]
 
@@ -457,14 +459,14 @@ def retune(
                 held_out_incidents_added=len(verdicts.held_out_incidents))
     if added_held_out:
         prov.update(held_out_incidents_added_in_review=added_held_out)
-        verdicts.held_out_incidents.extend(["(added in review)"] * added_held_out)
-    if verdicts.held_out_incidents and hasattr(result, "verdict_reasons"):
+    res = RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov,
+                       added)
+    if res.held_out_labels and hasattr(result, "verdict_reasons"):
         result.verdict_reasons = [*result.verdict_reasons, HELD_OUT_NOTE]
     if added is not None:
         prov.update(incidents_added_in_review=str(added_incidents),
                     incidents_added_in_review_count=len(added))
-    return RetuneResult(verdicts, merged, previous, result.config, result, comp, ses2, prov,
-                        added)
+    return res
 
 
 def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progress, tune_kwargs,
@@ -630,7 +632,7 @@ def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
     written.append(write_report_data_files(files, report, force=force))
     if all(hasattr(res.tune, a) for a in ("trials", "split_hour", "first_hour", "current")):
         write_report(res.session, res.tune, report / "calibration", force=force,
-                     derived_from_held_out=bool(res.verdicts.held_out_incidents))
+                     derived_from_held_out=res.held_out_labels)
         written.append(report / "calibration")
     return written
 

@@ -8,7 +8,12 @@ time order. Alert ids are kept: they are how `retune` finds each alert again.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pandas as pd
+
+from calibrate.errors import InputError
+from calibrate.incidents import read_text_csv
 
 VERDICTS = ("real", "false", "duplicate")
 REVIEW_COLUMNS = ("verdict", "comment")
@@ -34,4 +39,17 @@ def review_frame(alerts: pd.DataFrame) -> pd.DataFrame:
     df = df.reset_index(drop=True)
     for col in REVIEW_COLUMNS:
         df[col] = ""
+    return df
+
+
+def read_reviewed(path: Path) -> pd.DataFrame:
+    """A reviewed alerts file (text cells, stripped column names), checked for the
+    ``alert_id`` and ``verdict`` columns."""
+    df = read_text_csv(Path(path))
+    df.columns = [str(c).strip() for c in df.columns]
+    for col in ("alert_id", "verdict"):
+        if col not in df.columns:
+            raise InputError(f"{path} row 1", f"missing column '{col}' (a verdicts file is "
+                             "an alerts-for-review file with a verdict column; found: "
+                             f"{', '.join(df.columns) or 'none'})")
     return df

@@ -33,7 +33,7 @@ from calibrate.formulas import parse_formula
 from calibrate.incidents import incidents_from_frame, read_text_csv
 from calibrate.outputs import load_config, write_table
 from calibrate.replay import ReplayResult
-from calibrate.review import VERDICTS, review_frame
+from calibrate.review import VERDICTS, read_reviewed, review_frame
 
 MAX_COMMENT = 2000
 MAX_NOTE = 2000
@@ -224,12 +224,7 @@ class ReviewData:
         if not path.exists():
             return
         where = str(path)
-        df = read_text_csv(path)
-        df.columns = [str(c).strip() for c in df.columns]
-        for col in ("alert_id", "verdict"):
-            if col not in df.columns:
-                raise InputError(f"{where} row 1", f"missing column '{col}' (a verdicts file "
-                                 "is an alerts-for-review file with a verdict column)")
+        df = read_reviewed(path)
         ids = df["alert_id"].str.strip().to_numpy(dtype=object)
         words = df["verdict"].str.strip().str.lower().to_numpy(dtype=object)
         notes = (df["comment"].to_numpy(dtype=object) if "comment" in df.columns

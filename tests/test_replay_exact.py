@@ -18,6 +18,15 @@ from calibrate.decompose import MIN_FENCE_VALUES, fence_scores, remainder_stream
 from calibrate.settings import DetectorSettings
 
 
+def _fence_score(stream, r, method):
+    """The fence score of remainder r against the quartiles of `stream` (both sides)."""
+    q1, q3 = np.percentile(stream, [25, 75], method=method)
+    iqr = q3 - q1
+    if iqr == 0:
+        return math.inf if (r > q3 or r < q1) else 0.0
+    return max((r - q3) / iqr, (q1 - r) / iqr)
+
+
 def _reference_fit(y, t0, L, P, s, trend_arg):
     """statsmodels' STL (MSTL with a weekly period) on the window ending at t0, its
     undefined hours linearly interpolated inside the window."""
@@ -60,13 +69,7 @@ def reference_loop(y, s: DetectorSettings, W: int, k: float):
         if not valid[t] or len(stream) < MIN_FENCE_VALUES:
             out_score[t], out_flag[t] = np.nan, False
             continue
-        q1, q3 = np.percentile(stream, [25, 75], method=s.quartile_method)
-        iqr = q3 - q1
-        r = rem[t]
-        if iqr == 0:
-            sc = math.inf if (r > q3 or r < q1) else 0.0
-        else:
-            sc = max((r - q3) / iqr, (q1 - r) / iqr)
+        sc = _fence_score(stream, rem[t], s.quartile_method)
         out_score[t], out_flag[t] = sc, sc > k
     return out_exp, out_score, out_flag
 
@@ -101,13 +104,7 @@ def forecast_reference_loop(y, s: DetectorSettings, windows: tuple[int, ...], k:
             if t < L + W or not valid[t] or len(stream) < MIN_FENCE_VALUES:
                 out_score[W][t], out_flag[W][t] = np.nan, False
                 continue
-            q1, q3 = np.percentile(stream, [25, 75], method=s.quartile_method)
-            iqr = q3 - q1
-            r = rem[t]
-            if iqr == 0:
-                sc = math.inf if (r > q3 or r < q1) else 0.0
-            else:
-                sc = max((r - q3) / iqr, (q1 - r) / iqr)
+            sc = _fence_score(stream, rem[t], s.quartile_method)
             out_score[W][t], out_flag[W][t] = sc, sc > k
     return out_exp, out_score, out_flag
 
