@@ -23,16 +23,16 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from calibrate.checks import unreplayable
+from calibrate.engine.executors import Executor, make_executor
+from calibrate.engine.replay import Replayer, ReplayResult
 from calibrate.errors import InputError
-from calibrate.executors import Executor, make_executor
-from calibrate.history import History, load_history
-from calibrate.incidents import Incidents, load_incidents
-from calibrate.owners import load_owners
-from calibrate.replay import Replayer, ReplayResult
+from calibrate.inputs.checks import unreplayable
+from calibrate.inputs.history import History, load_history
+from calibrate.inputs.incidents import Incidents, load_incidents
+from calibrate.inputs.owners import load_owners
+from calibrate.inputs.workspace import Workspace, load_workspace
 from calibrate.scoring import Figures, figures, match, period_filter, route_teams, volume
 from calibrate.settings import DetectorConfig
-from calibrate.workspace import Workspace, load_workspace
 
 
 @dataclass

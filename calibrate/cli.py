@@ -265,8 +265,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def cmd_check(args) -> int:
-    from calibrate.checks import check_workspace
-    from calibrate.workspace import load_workspace
+    from calibrate.inputs.checks import check_workspace
+    from calibrate.inputs.workspace import load_workspace
 
     summary = check_workspace(load_workspace(args.workspace))
     for line in summary.lines():
@@ -336,7 +336,7 @@ def _scored_lines(ses, eps, start: int, end: int, first: int) -> list[str]:
 
 def cmd_score(args) -> int:
     from calibrate import api
-    from calibrate.incidents import read_text_csv
+    from calibrate.inputs.incidents import read_text_csv
     from calibrate.outputs import check_outputs, write_text
     from calibrate.scoring import episodes_from_alerts_frame, route_teams
 
@@ -400,7 +400,7 @@ def format_figures(d: dict) -> list[str]:
 
 def cmd_volume(args) -> int:
     from calibrate import api
-    from calibrate.incidents import read_text_csv
+    from calibrate.inputs.incidents import read_text_csv
     from calibrate.outputs import check_outputs, load_config, write_table
     from calibrate.scoring import episodes_from_alerts_frame, route_teams
 
@@ -467,7 +467,7 @@ def cmd_retune(args) -> int:
 
 
 def cmd_review(args) -> int:
-    from calibrate.review_app import review
+    from calibrate.feedback.review_app import review
 
     review(args.workspace, verdicts=args.verdicts, config=args.config, alerts=args.alerts,
            incidents_out=args.incidents_out, host=args.host, port=args.port,
@@ -510,7 +510,7 @@ def _stop_handler(command: str) -> Callable[[int, Any], None]:
     stopping: list[int] = []
 
     def handler(signum: int, frame: Any) -> None:
-        from calibrate.executors import defer_stop
+        from calibrate.engine.executors import defer_stop
 
         if not stopping and defer_stop(signum):
             return  # delivered again once the workers being started are up

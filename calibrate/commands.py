@@ -2,8 +2,8 @@
 write the config and report, write a report, retune from verdicts.
 
 `calibrate.cli` parses the arguments and calls these; each prints what a user reads
-and returns the exit code. The work itself is in `calibrate.search`, `calibrate.report`
-and `calibrate.retune`, which never import this module.
+and returns the exit code. The work itself is in `calibrate.tuning.search`,
+`calibrate.reporting.report` and `calibrate.feedback.retune`, which never import this module.
 """
 
 from __future__ import annotations
@@ -14,12 +14,13 @@ from typing import Any
 
 from calibrate import api, errors
 from calibrate.api import Session
+from calibrate.engine.executors import Executor
 from calibrate.errors import CalibrationError, InputError, UsageError
-from calibrate.executors import Executor
-from calibrate.report import step, steps_bar, write_config_report, write_report
-from calibrate.retune import retune, retune_paths, write_retune_outputs
-from calibrate.search import labels_line, tune, tuning_incidents
-from calibrate.summaries import (
+from calibrate.feedback.retune import retune, retune_paths, write_retune_outputs
+from calibrate.inputs.workspace import Goal
+from calibrate.reporting.report import step, steps_bar, write_config_report, write_report
+from calibrate.tuning.search import labels_line, tune, tuning_incidents
+from calibrate.tuning.summaries import (
     changed_settings_line,
     fold_lines,
     metric_lines,
@@ -27,7 +28,6 @@ from calibrate.summaries import (
     side_by_side,
     verdict_line,
 )
-from calibrate.workspace import Goal
 
 
 def cli_tune(args: Any) -> int:
@@ -53,7 +53,7 @@ def cli_tune(args: Any) -> int:
         if not mb > 0:
             raise InputError("--max-alerts-per-analyst-day", f"must be positive, but got {mb!r}")
         goal = replace(goal, max_alerts_per_analyst_day=float(mb))
-    from calibrate.executors import make_executor
+    from calibrate.engine.executors import make_executor
 
     # one executor for the search and the report: the workers start once
     executor = make_executor(getattr(args, "engine", "local"), getattr(args, "workers", None),
@@ -67,7 +67,7 @@ def cli_tune(args: Any) -> int:
 def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
                     executor: Executor) -> int:
     from calibrate.outputs import write_config
-    from calibrate.report import write_report
+    from calibrate.reporting.report import write_report
 
     tune_by = ses.ws.search.tune_by
     if tune_by != "group" and ses.ws.detector.groups:
@@ -128,8 +128,8 @@ def cli_report(args: Any) -> int:
     if ses.incidents is None:
         raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
     if study is not None:
-        from calibrate.executors import make_executor
-        from calibrate.search import study_result
+        from calibrate.engine.executors import make_executor
+        from calibrate.tuning.search import study_result
 
         executor = make_executor(args.engine, args.workers, args.scheduler)
         bar = steps_bar(progress, total=5)

@@ -12,13 +12,13 @@ import time
 from pathlib import Path
 
 from calibrate import api
-from calibrate.checks import check_workspace
+from calibrate.engine.executors import Executor, make_executor
 from calibrate.errors import CalibrationError
-from calibrate.executors import Executor, make_executor
+from calibrate.feedback.review import review_frame
+from calibrate.inputs.checks import check_workspace
 from calibrate.outputs import check_outputs, write_config, write_table, write_text
-from calibrate.report import write_report
-from calibrate.review import review_frame
-from calibrate.search import tune
+from calibrate.reporting.report import write_report
+from calibrate.tuning.search import tune
 
 # what the demo writes into its folder (the study journal is continued, not replaced)
 FILES = ("alerts-current.csv", "tuned.toml", "alerts-for-review.csv", "volume.csv",

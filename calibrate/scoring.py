@@ -14,7 +14,7 @@ recall). Alerts on an ancestor or descendant series are credited only when asked
 (``related=history``) and then reported separately, never in the main figures.
 
 Teams come from the ``team`` column of both tables; `route_teams` fills it from a
-routing array per level (the seam to ``calibrate.owners``).
+routing array per level (the seam to ``calibrate.inputs.owners``).
 """
 
 from __future__ import annotations
@@ -29,10 +29,10 @@ import numpy as np
 import pandas as pd
 from statsmodels.stats.proportion import proportion_confint
 
-from calibrate.episodes import CodedEpisodes, Episodes
+from calibrate.detection.episodes import CodedEpisodes, Episodes
 from calibrate.errors import InputError
-from calibrate.history import History
-from calibrate.incidents import (
+from calibrate.inputs.history import History
+from calibrate.inputs.incidents import (
     ANY_METRIC,
     FrameRows,
     Incidents,
@@ -41,7 +41,7 @@ from calibrate.incidents import (
     resolve_series,
     resolve_span,
 )
-from calibrate.workspace import Goal, Workspace
+from calibrate.inputs.workspace import Goal, Workspace
 
 Table = TypeVar("Table", Episodes, Incidents)
 ANY_LABEL = "(any)"
@@ -1005,7 +1005,7 @@ def impact_curves(runs: Any, ks: np.ndarray, incidents: Incidents, early: int, l
 
     Parameters
     ----------
-    runs : calibrate.replay.RunTable
+    runs : calibrate.engine.replay.RunTable
         A multiplier grid's episodes as runs, each with its raised hour at every
         minimum impact of its metric's grid (``runs.raised``, -1: not raised there).
     ks, incidents, early, late, teams_analysts, n_days, confidence
@@ -1142,7 +1142,7 @@ def exact_solve(runs: Any, ks: np.ndarray, incidents: Incidents, early: int, lat
 
     Parameters
     ----------
-    runs : calibrate.replay.RunTable
+    runs : calibrate.engine.replay.RunTable
         Runs over the ascending grid `ks`, with raised hours per minimum-impact level.
     ks : ndarray
         Ascending multipliers.

@@ -18,9 +18,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from calibrate import api, replay as replay_mod
+from calibrate import api
 from calibrate.cli import main
-from calibrate.executors import DaskExecutor, SerialExecutor, dask_batch_size
+from calibrate.engine import replay as replay_mod
+from calibrate.engine.executors import DaskExecutor, SerialExecutor, dask_batch_size
 from calibrate.settings import DetectorConfig
 from tests.synthetic import make_workspace
 
@@ -181,7 +182,7 @@ def test_a_passed_local_executor_keeps_its_workers_across_replays(ses):
     """Replayers of one history hand the executor the same shared arrays, and closing a
     replayer leaves an executor it was given running, so the second replay reuses the
     first one's worker processes (same pool object) and gives the same alerts."""
-    from calibrate.executors import LocalExecutor
+    from calibrate.engine.executors import LocalExecutor
 
     ex = LocalExecutor(workers=2)
     try:
@@ -278,7 +279,7 @@ def test_a_worker_that_retires_mid_run_has_its_batches_rerun(monkeypatch):
     (A cluster of its own: the module's cluster keeps its two workers.)"""
     from dask.distributed import LocalCluster
 
-    import calibrate.executors as executors_mod
+    import calibrate.engine.executors as executors_mod
 
     monkeypatch.setattr(executors_mod, "LIVENESS_SECONDS", 0.2)
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,

@@ -1,6 +1,6 @@
 """Episodes of a multiplier grid: the compiled kernel against a plain hour-by-hour loop.
 
-The reference below is the rule of calibrate/detectors.py written out for one k at a
+The reference below is the rule of calibrate/detection/detectors.py written out for one k at a
 time: an hour is flagged when (score > k) + flatline >= min_detectors (a NaN score
 never passes the fence); consecutive flagged hours of a series form one episode; its
 peak is the highest non-NaN score (first hour on ties; NaN and the start hour if none),
@@ -18,9 +18,9 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from calibrate.detectors import episodes_grid
-from calibrate.incidents import Incidents
-from calibrate.replay import MetricScores, sweep, sweep_codes, sweep_runs
+from calibrate.detection.detectors import episodes_grid
+from calibrate.engine.replay import MetricScores, sweep, sweep_codes, sweep_runs
+from calibrate.inputs.incidents import Incidents
 from calibrate.scoring import (
     impact_curves,
     match,

@@ -13,11 +13,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from calibrate import api, search
+from calibrate import api
+from calibrate.engine.executors import SerialExecutor
 from calibrate.errors import InputError
-from calibrate.executors import SerialExecutor
 from calibrate.outputs import load_config, write_config
 from calibrate.settings import DetectorConfig, DetectorSettings
+from calibrate.tuning import search
 from tests.synthetic import make_workspace
 from tests.test_search import _brute_force_k
 

@@ -11,11 +11,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from calibrate.checks import check_workspace
 from calibrate.errors import InputError
-from calibrate.history import History, fill_carry_forward, load_history
-from calibrate.owners import load_owners
-from calibrate.workspace import load_workspace
+from calibrate.inputs.checks import check_workspace
+from calibrate.inputs.history import History, fill_carry_forward, load_history
+from calibrate.inputs.owners import load_owners
+from calibrate.inputs.workspace import load_workspace
 
 HEADER = "hour,market,advertiser,campaign,impressions,clicks"
 # Hand-worked roll-up example: 2 hours, 4 campaigns under 3 advertisers in 2 markets.

@@ -14,7 +14,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from calibrate import api, search
+from calibrate import api
+from calibrate.tuning import search
 from tests.synthetic import START, make_workspace
 
 SPLIT_DAY = "2026-01-30"  # hour 600 of 840

@@ -13,9 +13,9 @@ import pandas as pd
 import pytest
 
 from calibrate.errors import InputError
-from calibrate.history import History, LevelSeries
-from calibrate.incidents import Incidents, incidents_from_frame, load_incidents
-from calibrate.workspace import HistorySource, IncidentSource, Workspace
+from calibrate.inputs.history import History, LevelSeries
+from calibrate.inputs.incidents import Incidents, incidents_from_frame, load_incidents
+from calibrate.inputs.workspace import HistorySource, IncidentSource, Workspace
 
 KEYS = ("market", "advertiser", "campaign")
 START = pd.Timestamp("2024-01-01T00:00:00Z")  # a Monday

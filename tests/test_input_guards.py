@@ -14,9 +14,9 @@ import pytest
 
 from calibrate.cli import main
 from calibrate.errors import InputError
-from calibrate.history import MAX_VALUE, load_history
-from calibrate.sources import _sqlite_read_only
-from calibrate.workspace import load_workspace
+from calibrate.inputs.history import MAX_VALUE, load_history
+from calibrate.inputs.sources import _sqlite_read_only
+from calibrate.inputs.workspace import load_workspace
 from tests.synthetic import make_workspace
 
 HEADER = "hour,market,advertiser,campaign,impressions,clicks"

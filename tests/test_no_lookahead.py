@@ -26,7 +26,7 @@ import pandas as pd
 import pytest
 
 from calibrate import api
-from calibrate.replay import ReplayResult
+from calibrate.engine.replay import ReplayResult
 
 N_HOURS = 168
 START = pd.Timestamp("2024-05-06T00:00Z")

@@ -139,12 +139,12 @@ def test_score_json_and_volume_csv_refuse_to_overwrite_without_force(ws, tmp_pat
 
 
 def test_retune_checks_every_output_before_running(ws, tmp_path, capsys, monkeypatch):
-    import calibrate.retune
+    import calibrate.feedback.retune
 
     def no_work(*a, **k):
         raise AssertionError("retune started working")
 
-    monkeypatch.setattr(calibrate.retune, "retune", no_work)
+    monkeypatch.setattr(calibrate.feedback.retune, "retune", no_work)
     (tmp_path / "new-known-false.csv").write_text("mine")
     argv = ["retune", str(ws), "--verdicts", str(tmp_path / "v.csv"),
             "--out", str(tmp_path / "new.toml"), "--engine", "serial"]
@@ -215,7 +215,7 @@ def test_stale_temporary_files_of_ours_are_removed(tmp_path):
 
 
 def test_a_full_disk_keeps_the_old_report_and_says_so_in_one_line(tmp_path, monkeypatch):
-    from calibrate.report import write_report_data_files
+    from calibrate.reporting.report import write_report_data_files
 
     rep = write_report_data_files({"a.txt": b"old a", "b.txt": b"old b"}, tmp_path / "rep")
     (rep / "mine.txt").write_text("kept")

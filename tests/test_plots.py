@@ -11,9 +11,9 @@ import matplotlib.collections
 import numpy as np
 import pytest
 
-from calibrate import plots
 from calibrate.formulas import never_negative
-from calibrate.report import CurveData, SeriesPanel, VolumeData, can_be_negative
+from calibrate.reporting import plots
+from calibrate.reporting.report import CurveData, SeriesPanel, VolumeData, can_be_negative
 
 
 @pytest.fixture

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from statsmodels.tsa.seasonal import MSTL, STL
 
-from calibrate.decompose import MIN_FENCE_VALUES, fence_scores, remainder_stream
+from calibrate.decomposition.decompose import MIN_FENCE_VALUES, fence_scores, remainder_stream
 from calibrate.settings import DetectorSettings
 
 
@@ -177,7 +177,7 @@ def test_weekly_stream_matches_mstl_reference(h):
 @pytest.mark.parametrize("w", [4, 5, 48, 167])
 def test_compiled_quartiles_bitwise_equal_numpy(w):
     # numpy.percentile(method="linear") is the reference; NaNs are skipped per row
-    from calibrate.decompose import _quartiles
+    from calibrate.decomposition.decompose import _quartiles
 
     rng = np.random.default_rng(w)
     block = rng.normal(size=(300, w)) * rng.choice([1e-3, 1.0, 1e6], size=(300, 1))
@@ -199,7 +199,7 @@ def test_compiled_quartiles_bitwise_equal_numpy(w):
 def test_fence_scores_match_numpy_formula(sides):
     # Reference: the fence score written with plain numpy array operations (docs/detector.md
     # definition): (r - Q3)/IQR up, (Q1 - r)/IQR down, inf/0 at IQR = 0, NaN if undefined.
-    from calibrate.decompose import fence_scores
+    from calibrate.decomposition.decompose import fence_scores
 
     rng = np.random.default_rng(5)
     r = rng.normal(size=(40, 300))

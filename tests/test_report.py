@@ -15,16 +15,16 @@ import pandas as pd
 import pytest
 
 from calibrate import api
+from calibrate.engine.executors import SerialExecutor
 from calibrate.errors import CalibrationError
-from calibrate.executors import SerialExecutor
-from calibrate.report import (
+from calibrate.feedback.review import review_frame
+from calibrate.reporting.report import (
     build_report_data,
     goal_verdict,
     pareto_front,
     write_config_report,
     write_report,
 )
-from calibrate.review import review_frame
 from tests.synthetic import make_workspace
 
 SPLIT = 600
@@ -324,8 +324,8 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
 
     import optuna
 
-    from calibrate import search
     from calibrate.cli import main
+    from calibrate.tuning import search
 
     ws = make_workspace(tmp_path / "ws", search="fence_window_hours = [48, 72]\ntrials = 3")
     ses = api.open_session(ws)
@@ -374,7 +374,7 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
 def test_per_metric_and_detector_table_equals_scoring(ses, chosen_config) -> None:
     """Reference: `score_episodes` per period, counted per metric and per detector by
     hand from the replay's episodes and a plain `match`."""
-    from calibrate.report import metric_rows
+    from calibrate.reporting.report import metric_rows
     from calibrate.scoring import match, period_filter
 
     rep = _replay(ses, chosen_config)
@@ -400,7 +400,7 @@ def test_per_metric_and_detector_table_equals_scoring(ses, chosen_config) -> Non
 
 
 def test_metric_rows_warn_about_silent_metrics() -> None:
-    from calibrate.report import metric_rows
+    from calibrate.reporting.report import metric_rows
 
     fig = {"per_metric": {
         "clicks": {"incidents": 2, "caught": 0, "alerts": 0, "recall": 0.0,

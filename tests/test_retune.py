@@ -12,11 +12,11 @@ import pandas as pd
 import pytest
 
 from calibrate import api
+from calibrate.engine.executors import SerialExecutor
+from calibrate.engine.replay import sweep
 from calibrate.errors import CalibrationError, InputError
-from calibrate.executors import SerialExecutor
-from calibrate.replay import sweep
-from calibrate.retune import raised_windows, read_verdicts, retune, write_retune_outputs
-from calibrate.review import review_frame
+from calibrate.feedback.retune import raised_windows, read_verdicts, retune, write_retune_outputs
+from calibrate.feedback.review import review_frame
 from calibrate.scoring import match, multiplier_curve
 from tests.synthetic import make_workspace
 
@@ -50,7 +50,7 @@ def _write(df: pd.DataFrame, path: Path) -> Path:
 
 
 def grid_tuner(calls: list):
-    """Test double for `calibrate.search.tune`: smallest k (of a grid) that raises none
+    """Test double for `calibrate.tuning.search.tune`: smallest k (of a grid) that raises none
     of the known false alarms while meeting the miss-rate goal; else the k with fewest."""
 
     def tune(ses, *, trials=None, warm_start=(), known_false=None, executor=None,
@@ -239,7 +239,7 @@ def test_bad_rows_name_file_row_and_column(ses, previous, reviewed, tmp_path: Pa
 def test_with_the_real_search(ses, previous, reviewed, tmp_path: Path) -> None:
     """The real search behind retune: every false alarm the new config still raises is
     explained, and the known false alarms are counted as the file marks them."""
-    from calibrate.search import TuneResult
+    from calibrate.tuning.search import TuneResult
 
     df = reviewed.copy()
     df.loc[df.index[~df["_true"]][:4], "verdict"] = "false"
@@ -256,8 +256,8 @@ def test_incidents_from_held_out_alerts_are_marked(ses, previous, reviewed,
     """A `real` verdict on an alert raised in the held-out weeks (the last week here)
     becomes an RH- incident; one from the tuning weeks an R- one. Reference: the split
     of the workspace's search and the alerts' raised hours from the replay."""
-    from calibrate.retune import read_verdicts
-    from calibrate.search import split_hour
+    from calibrate.feedback.retune import read_verdicts
+    from calibrate.tuning.search import split_hour
 
     rep = api.replay_session(ses, previous, executor=SerialExecutor(), progress=False)
     split = split_hour(ses)

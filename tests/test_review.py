@@ -17,13 +17,13 @@ import numpy as np
 import pytest
 
 from calibrate import api
+from calibrate.engine.executors import SerialExecutor
 from calibrate.errors import CalibrationError, InputError
-from calibrate.executors import SerialExecutor
-from calibrate.incidents import incidents_from_frame, read_text_csv
-from calibrate.retune import merged_frame, read_verdicts, retune
-from calibrate.review import review_frame
-from calibrate.review_app import running
-from calibrate.review_data import ReviewError, open_review
+from calibrate.feedback.retune import merged_frame, read_verdicts, retune
+from calibrate.feedback.review import review_frame
+from calibrate.feedback.review_app import running
+from calibrate.feedback.review_data import ReviewError, open_review
+from calibrate.inputs.incidents import incidents_from_frame, read_text_csv
 from calibrate.scoring import match
 from tests.review_helpers import HOSTILE, Client, review_workspace, snapshot
 

@@ -12,11 +12,11 @@ from pathlib import Path
 import pytest
 
 from calibrate import api
-from calibrate.executors import SerialExecutor
-from calibrate.incidents import incidents_from_frame, read_text_csv
-from calibrate.retune import retune
-from calibrate.review_app import running
-from calibrate.review_data import open_review
+from calibrate.engine.executors import SerialExecutor
+from calibrate.feedback.retune import retune
+from calibrate.feedback.review_app import running
+from calibrate.feedback.review_data import open_review
+from calibrate.inputs.incidents import incidents_from_frame, read_text_csv
 from tests.review_helpers import HOSTILE, review_workspace
 
 sync_api = pytest.importorskip("playwright.sync_api")

@@ -12,8 +12,9 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from calibrate import api, rolling, search, summaries
+from calibrate import api
 from calibrate.errors import InputError
+from calibrate.tuning import rolling, search, summaries
 from tests.synthetic import START, make_workspace
 
 ROLLING = ('holdout_start = "2026-03-01"\nvalidation = "rolling"\nfolds = 2\n'
@@ -82,7 +83,7 @@ def test_each_fold_is_tuned_only_on_the_weeks_before_it(tmp_path: Path):
     # the report carries the folds, their stability and the verdict
     import json
 
-    from calibrate.report import write_report
+    from calibrate.reporting.report import write_report
 
     write_report(ses, res, tmp_path / "report", engine="serial")
     summary = json.loads((tmp_path / "report" / "summary.json").read_text())

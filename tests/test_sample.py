@@ -143,7 +143,7 @@ def test_workspace_toml(workspace: Path) -> None:
 
 
 def test_loads_as_workspace(workspace: Path) -> None:
-    from calibrate.workspace import load_workspace
+    from calibrate.inputs.workspace import load_workspace
 
     ws = load_workspace(workspace)
     assert ws.history.key_columns == tuple(KEYS)

@@ -18,9 +18,10 @@ import pytest
 from sklearn.metrics import precision_recall_fscore_support
 from statsmodels.stats.proportion import proportion_confint
 
-from calibrate.episodes import Episodes
+from calibrate.detection.episodes import Episodes
 from calibrate.errors import InputError
-from calibrate.incidents import Incidents
+from calibrate.inputs.incidents import Incidents
+from calibrate.inputs.workspace import Goal
 from calibrate.scoring import (
     Curve,
     breakdown,
@@ -37,7 +38,6 @@ from calibrate.scoring import (
     volume,
     wilson,
 )
-from calibrate.workspace import Goal
 from tests.test_incidents import make_history, make_workspace
 
 

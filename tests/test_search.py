@@ -21,16 +21,17 @@ import optuna
 import pandas as pd
 import pytest
 
-from calibrate import api, scoring, search, search_space, summaries
+from calibrate import api, scoring
 from calibrate.cli import main
-from calibrate.episodes import Episodes
+from calibrate.detection.episodes import Episodes
+from calibrate.engine.executors import SerialExecutor
+from calibrate.engine.replay import Replayer
 from calibrate.errors import InputError
-from calibrate.executors import SerialExecutor
-from calibrate.incidents import Incidents
+from calibrate.inputs.incidents import Incidents
+from calibrate.inputs.workspace import Goal
 from calibrate.outputs import load_config, load_provenance
-from calibrate.replay import Replayer
 from calibrate.scoring import load_axis, match, period_filter
-from calibrate.workspace import Goal
+from calibrate.tuning import search, search_space, summaries
 from tests.synthetic import make_workspace
 
 SEARCH = "fence_window_hours = [48, 72]\nseasonal_span = [7, 11]\ntrials = 4"
@@ -391,7 +392,7 @@ def test_impossible_goal_says_which_constraint_and_by_how_much(ses, tmp_path):
 def test_report_judges_with_the_goal_the_tune_used(tmp_path):
     # per-team budgets in the workspace, one budget for all as a tune override: the
     # report's axis, trade-off front and verdicts must all be those of the override
-    from calibrate.report import write_report
+    from calibrate.reporting.report import write_report
 
     ws = make_workspace(tmp_path / "ws", search=SEARCH, budget="{ blue = 2.0, green = 20.0 }")
     ses = api.open_session(ws)

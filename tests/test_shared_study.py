@@ -4,7 +4,7 @@ Reference: the study itself, loaded with Optuna after both processes exit.
 
 Budget rule checked: the budget is for the whole study, so the two processes
 together finish between `BUDGET` and `BUDGET + PROCESSES - 1` trials that count
-against it (`calibrate.search.BUDGET_STATES`: COMPLETE, and PRUNED for settings
+against it (`calibrate.tuning.search.BUDGET_STATES`: COMPLETE, and PRUNED for settings
 that fail validation). A process only starts a trial while fewer than `BUDGET`
 are finished; when the `BUDGET`-th one finishes, each other process can hold at
 most one trial it already started, and that trial is finished too (not lost), so
@@ -22,7 +22,7 @@ from pathlib import Path
 import optuna
 from optuna.trial import TrialState
 
-from calibrate.search import BUDGET_STATES
+from calibrate.tuning.search import BUDGET_STATES
 from tests.synthetic import make_workspace
 
 REPO = Path(__file__).resolve().parents[1]

@@ -12,8 +12,8 @@ import pandas as pd
 import pytest
 
 from calibrate.errors import InputError
-from calibrate.sources import CsvReader, ParquetReader, SqlReader, reader_for
-from calibrate.workspace import HistorySource
+from calibrate.inputs.sources import CsvReader, ParquetReader, SqlReader, reader_for
+from calibrate.inputs.workspace import HistorySource
 
 KEYS = ("market", "campaign")
 COLUMNS = ["hour", "market", "campaign", "clicks"]

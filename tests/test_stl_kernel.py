@@ -17,7 +17,7 @@ import pytest
 from statsmodels.datasets import co2
 from statsmodels.tsa.seasonal import MSTL, STL
 
-from calibrate.stl_kernel import (
+from calibrate.decomposition.stl_kernel import (
     exact_div,
     linear_smoother,
     mstl_fit,
@@ -333,7 +333,7 @@ def test_many_zero_weights_bit_identical() -> None:
 def test_all_zero_weight_window_keeps_input() -> None:
     # statsmodels' _ess: a LOESS window whose weights are all 0 gives NaN and the input
     # value is kept. Checked on the kernel's LOESS directly (plain port vs vectorised).
-    from calibrate import stl_kernel as k
+    from calibrate.decomposition import stl_kernel as k
 
     n, span = 200, 25
     y = np.random.default_rng(0).normal(size=n)
@@ -358,7 +358,7 @@ def test_all_zero_weight_window_keeps_input() -> None:
 @pytest.mark.parametrize("seasonal", [7, 11])
 def test_windows_degenerate_robust_match_statsmodels(window: int, seasonal: int) -> None:
     # Degenerate robust windows (6*median|R| near 0, bisquare weights on a knife edge),
-    # laid end to end as calibrate/decompose.py does. Reference: statsmodels' STL.
+    # laid end to end as calibrate/decomposition/decompose.py does. Reference: statsmodels' STL.
     kinds = ["zeros", "spikes", "periodic", "constant", "night_zero"]
     wins = [_degenerate(kind, window) for kind in kinds]
     flat = np.concatenate(wins)
@@ -394,7 +394,7 @@ def test_reuse_weights_same_bits_as_blocked(n: int) -> None:
 def test_reuse_weights_zero_weight_window_keeps_input() -> None:
     # Prepared weights of a window with all robustness weights 0 are NaN; the LOESS then
     # keeps the input, as statsmodels' _ess does. Compared with the plain port's _ess.
-    from calibrate import stl_kernel as k
+    from calibrate.decomposition import stl_kernel as k
 
     n, span = 200, 25
     y = np.random.default_rng(0).normal(size=n)

@@ -22,8 +22,9 @@ import optuna
 import pytest
 from optuna.trial import TrialState
 
-from calibrate import api, search, studies
+from calibrate import api
 from calibrate.cli import main
+from calibrate.tuning import search, studies
 from tests.synthetic import make_workspace
 
 SEARCH = "fence_window_hours = [48, 72]\ntrials = 2"

@@ -15,7 +15,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from calibrate import api, search
+from calibrate import api
+from calibrate.inputs.workspace import Goal
 from calibrate.scoring import (
     Figures,
     cluster_bootstrap_ratio,
@@ -24,7 +25,7 @@ from calibrate.scoring import (
     validation_verdict,
     zero_miss_bound,
 )
-from calibrate.workspace import Goal
+from calibrate.tuning import search
 from tests.synthetic import make_workspace
 
 
@@ -145,8 +146,8 @@ def test_thin_margin_counts_incidents_caught_only_near_the_multiplier():
     the multiplier's doing), D by none. Only A is on the knife edge."""
     from types import SimpleNamespace
 
-    from calibrate.episodes import Episodes
-    from calibrate.incidents import Incidents
+    from calibrate.detection.episodes import Episodes
+    from calibrate.inputs.incidents import Incidents
     from calibrate.settings import DetectorConfig, DetectorSettings
 
     inc = Incidents.make(["campaign"] * 4, [0, 1, 2, 3], [10, 10, 10, 10], [20, 20, 20, 20])

@@ -7,8 +7,8 @@ from pathlib import Path
 import pytest
 
 from calibrate.errors import InputError
+from calibrate.inputs.workspace import load_workspace
 from calibrate.settings import DetectorSettings
-from calibrate.workspace import load_workspace
 
 FULL = {
     "incidents": 'path = "labels/incidents.csv"\nearly_hours = 2\nlate_hours = 3',

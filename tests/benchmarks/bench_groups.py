@@ -35,7 +35,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _repeat import add_runs_flag, spread  # noqa: E402
 from _sample import SAMPLE, sample_copy  # noqa: E402
 
-from calibrate import api, search  # noqa: E402
+from calibrate import api  # noqa: E402
+from calibrate.tuning import search  # noqa: E402
 
 
 def variants(text: str) -> dict[str, str]:

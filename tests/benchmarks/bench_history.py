@@ -111,8 +111,8 @@ def peak_rss_mb() -> float:
 def load(workspace: str) -> None:
     """Child process: load and report its peak RSS and wall time."""
     sys.path.insert(0, str(ROOT))
-    from calibrate.history import load_history
-    from calibrate.workspace import load_workspace
+    from calibrate.inputs.history import load_history
+    from calibrate.inputs.workspace import load_workspace
 
     t0 = time.perf_counter()
     history = load_history(load_workspace(workspace))

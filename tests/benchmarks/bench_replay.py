@@ -49,10 +49,10 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
 from _repeat import PeakRSS, add_runs_flag, ratios, repeat_many, spread  # noqa: E402
 
-from calibrate.decompose import fence_scores  # noqa: E402
-from calibrate.executors import Executor, LocalExecutor, SerialExecutor  # noqa: E402
-from calibrate.history import History, LevelSeries  # noqa: E402
-from calibrate.replay import Replayer  # noqa: E402
+from calibrate.decomposition.decompose import fence_scores  # noqa: E402
+from calibrate.engine.executors import Executor, LocalExecutor, SerialExecutor  # noqa: E402
+from calibrate.engine.replay import Replayer  # noqa: E402
+from calibrate.inputs.history import History, LevelSeries  # noqa: E402
 from calibrate.settings import DetectorConfig, DetectorSettings  # noqa: E402
 
 

@@ -39,10 +39,10 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _repeat import add_runs_flag, spread  # noqa: E402
 
 from calibrate import api  # noqa: E402
-from calibrate.executors import SerialExecutor  # noqa: E402
-from calibrate.replay import sweep  # noqa: E402
-from calibrate.review_app import running  # noqa: E402
-from calibrate.review_data import open_review  # noqa: E402
+from calibrate.engine.executors import SerialExecutor  # noqa: E402
+from calibrate.engine.replay import sweep  # noqa: E402
+from calibrate.feedback.review_app import running  # noqa: E402
+from calibrate.feedback.review_data import open_review  # noqa: E402
 
 TARGET = 10_000
 HOURS = 24 * 7 * 5

@@ -39,9 +39,9 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
 from _repeat import PeakRSS, add_runs_flag, repeat_many, spread  # noqa: E402
 
-from calibrate.executors import DaskExecutor, Executor, LocalExecutor  # noqa: E402
-from calibrate.history import History, LevelSeries  # noqa: E402
-from calibrate.replay import Replayer  # noqa: E402
+from calibrate.engine.executors import DaskExecutor, Executor, LocalExecutor  # noqa: E402
+from calibrate.engine.replay import Replayer  # noqa: E402
+from calibrate.inputs.history import History, LevelSeries  # noqa: E402
 from calibrate.settings import DetectorConfig, DetectorSettings  # noqa: E402
 
 METRICS = 4

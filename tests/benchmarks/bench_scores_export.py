@@ -41,8 +41,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 
 from _repeat import add_runs_flag, ratios, spread  # noqa: E402
 
+from calibrate.engine.replay import MetricScores, ReplayResult  # noqa: E402
 from calibrate.outputs import write_table, write_table_blocks  # noqa: E402
-from calibrate.replay import MetricScores, ReplayResult  # noqa: E402
 from calibrate.settings import DetectorSettings  # noqa: E402
 
 METRICS = ("impressions", "clicks", "ctr", "spend")

@@ -62,9 +62,10 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from _repeat import add_runs_flag, ratios, spread  # noqa: E402
 from _sample import sample_copy  # noqa: E402
 
-from calibrate import api, search  # noqa: E402
+from calibrate import api  # noqa: E402
+from calibrate.engine.executors import make_executor  # noqa: E402
 from calibrate.errors import InputError  # noqa: E402
-from calibrate.executors import make_executor  # noqa: E402
+from calibrate.tuning import search  # noqa: E402
 
 
 @dataclass

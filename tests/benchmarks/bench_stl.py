@@ -41,7 +41,7 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
 from _repeat import add_runs_flag, ratios, repeat, repeat_many, spread  # noqa: E402
 
-from calibrate.stl_kernel import (  # noqa: E402
+from calibrate.decomposition.stl_kernel import (  # noqa: E402
     _smoother,
     linear_smoother,
     mstl_fit,

@@ -20,7 +20,7 @@ import numba
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from calibrate import stl_kernel
+from calibrate.decomposition import stl_kernel
 from calibrate.settings import DetectorSettings
 
 MIN_FENCE_VALUES = 4  # fewer usable remainders in a fence window: no score

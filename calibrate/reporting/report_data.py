@@ -1,5 +1,5 @@
-"""The report's content as plain records (stage 9): what `calibrate.report` computes and
-then renders, and what `calibrate.plots` draws. Pure data, no computation."""
+"""The report's content as plain records (stage 9): what `calibrate.reporting.report` computes and
+then renders, and what `calibrate.reporting.plots` draws. Pure data, no computation."""
 
 from __future__ import annotations
 

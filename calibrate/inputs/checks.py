@@ -9,10 +9,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from calibrate.history import History, load_history
-from calibrate.owners import load_owners
+from calibrate.inputs.history import History, load_history
+from calibrate.inputs.owners import load_owners
+from calibrate.inputs.workspace import Workspace
 from calibrate.settings import DetectorConfig
-from calibrate.workspace import Workspace
 
 EXAMPLES = 5
 
@@ -219,15 +219,15 @@ def summarise_history(ws: Workspace, history: History) -> CheckSummary:
 
 def _incidents(ws: Workspace, history: History, notes: list[str]) -> dict[str, int] | None:
     try:
-        module = importlib.import_module("calibrate.incidents")
+        module = importlib.import_module("calibrate.inputs.incidents")
     except ModuleNotFoundError as exc:
-        if exc.name != "calibrate.incidents":
+        if exc.name != "calibrate.inputs.incidents":
             raise
-        notes.append("incidents not checked: calibrate.incidents is not available yet")
+        notes.append("incidents not checked: calibrate.inputs.incidents is not available yet")
         return None
     loader = getattr(module, "load_incidents", None)
     if loader is None:
-        notes.append("incidents not checked: calibrate.incidents has no load_incidents")
+        notes.append("incidents not checked: calibrate.inputs.incidents has no load_incidents")
         return None
     incidents = loader(ws, history)
     levels, counts = np.unique(np.asarray(incidents.level, dtype=str), return_counts=True)

@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 
 from calibrate.errors import InputError
-from calibrate.workspace import HistorySource
+from calibrate.inputs.workspace import HistorySource
 
 _HASH_BLOCK = 1 << 20
 _SCAN_BLOCK = 1 << 22

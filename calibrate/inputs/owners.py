@@ -23,8 +23,8 @@ import numpy as np
 import pandas as pd
 
 from calibrate.errors import InputError
-from calibrate.history import History, LevelSeries
-from calibrate.workspace import Workspace
+from calibrate.inputs.history import History, LevelSeries
+from calibrate.inputs.workspace import Workspace
 
 TEAM_COLUMN = "team"
 

@@ -1,4 +1,4 @@
-"""What `tune` prints (stage 9): tuning and held-out figures side by side, per metric
+"""What `tune` prints (stage 8): tuning and held-out figures side by side, per metric
 and detector, trade-offs, rolling folds and the verdict, as lines of text.
 """
 
@@ -9,12 +9,12 @@ from typing import Any
 
 import pandas as pd
 
-from calibrate import rolling
-from calibrate.evaluate import json_safe
 from calibrate.scoring import (
     Figures,
 )
-from calibrate.search import TuneResult
+from calibrate.tuning import rolling
+from calibrate.tuning.evaluate import json_safe
+from calibrate.tuning.search import TuneResult
 
 
 def _pct(x: float | None) -> str:

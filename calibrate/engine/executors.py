@@ -84,7 +84,7 @@ def _start_fork_server() -> None:
 
     # not the default `__main__`: where Python honours it, the fork server would run
     # the calling script (an unguarded one would start a replay there, breaking the pool)
-    forkserver.set_forkserver_preload(["calibrate.executors"])
+    forkserver.set_forkserver_preload(["calibrate.engine.executors"])
     if threading.current_thread() is not threading.main_thread():
         forkserver.ensure_running()  # signal handlers can only be set in the main thread
         return

@@ -21,8 +21,8 @@ from pandas.api.types import union_categoricals
 
 from calibrate.errors import InputError
 from calibrate.formulas import parse_formula
-from calibrate.sources import reader_for
-from calibrate.workspace import Workspace
+from calibrate.inputs.sources import reader_for
+from calibrate.inputs.workspace import Workspace
 
 HOUR_NS = 3_600_000_000_000
 MAX_HOURS = 24 * 366 * 10  # a longer grid is almost surely a mistyped year

@@ -17,11 +17,11 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate.decompose import Stream, fence_scores, remainder_stream
-from calibrate.detectors import episode_runs, flatline_flags
-from calibrate.episodes import CodedEpisodes, Episodes
-from calibrate.executors import Executor, SerialExecutor, batched
-from calibrate.history import History
+from calibrate.decomposition.decompose import Stream, fence_scores, remainder_stream
+from calibrate.detection.detectors import episode_runs, flatline_flags
+from calibrate.detection.episodes import CodedEpisodes, Episodes
+from calibrate.engine.executors import Executor, SerialExecutor, batched
+from calibrate.inputs.history import History
 from calibrate.settings import DetectorConfig, DetectorSettings
 
 SERIES_PER_TASK = 8

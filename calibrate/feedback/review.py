@@ -13,7 +13,7 @@ from pathlib import Path
 import pandas as pd
 
 from calibrate.errors import InputError
-from calibrate.incidents import read_text_csv
+from calibrate.inputs.incidents import read_text_csv
 
 VERDICTS = ("real", "false", "duplicate")
 REVIEW_COLUMNS = ("verdict", "comment")

@@ -14,8 +14,8 @@ import optuna
 
 from calibrate.api import Session
 from calibrate.errors import InputError
+from calibrate.inputs.workspace import BASE_GROUP, SearchParam
 from calibrate.settings import DetectorConfig, DetectorGroup, DetectorSettings
-from calibrate.workspace import BASE_GROUP, SearchParam
 
 IMPACT_STEPS = (1.0, 1.5, 2.0, 3.0, 5.0, 7.0)  # solved minimum impacts, per decade
 

@@ -42,9 +42,9 @@ from starlette.responses import FileResponse, HTMLResponse, JSONResponse, Respon
 from starlette.routing import Route
 
 from calibrate.errors import CalibrationError
-from calibrate.review_data import ReviewData, ReviewError, open_review
+from calibrate.feedback.review_data import ReviewData, ReviewError, open_review
 
-HERE = Path(__file__).parent
+HERE = Path(__file__).parents[1]  # calibrate/: templates/ and static/
 STATIC = {"review.js": "text/javascript", "review.css": "text/css"}
 TOKEN_HEADER = "x-review-token"
 MAX_BODY = 64 * 1024

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from calibrate.api import Session
-from calibrate.episodes import Episodes
+from calibrate.detection.episodes import Episodes
 from calibrate.errors import InputError
 from calibrate.scoring import Figures, figures, match, period_filter
 from calibrate.settings import DetectorConfig

@@ -1,6 +1,6 @@
 """Re-tuning from analysts' verdicts on reviewed alerts (`calibrate retune`).
 
-The reviewed file is an alerts export (`calibrate.review.review_frame`) with the
+The reviewed file is an alerts export (`calibrate.feedback.review.review_frame`) with the
 ``verdict`` column filled in. Its alert ids refer to a replay of the previous
 config, so that config is replayed again to find each alert's episode, and every
 row's level, keys, metric and start are checked against it. Then:
@@ -29,12 +29,12 @@ import numpy as np
 import pandas as pd
 
 from calibrate import api
-from calibrate.episodes import Episodes
+from calibrate.detection.episodes import Episodes
+from calibrate.engine.executors import make_executor
+from calibrate.engine.replay import ReplayResult, alerts_frame
 from calibrate.errors import InputError
-from calibrate.executors import make_executor
-from calibrate.incidents import Incidents, incidents_from_frame, read_text_csv
-from calibrate.replay import ReplayResult, alerts_frame
-from calibrate.review import VERDICTS, read_reviewed
+from calibrate.feedback.review import VERDICTS, read_reviewed
+from calibrate.inputs.incidents import Incidents, incidents_from_frame, read_text_csv
 from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_teams
 from calibrate.settings import DetectorConfig
 
@@ -257,7 +257,7 @@ def compare(
     known_false: Incidents,
 ) -> Comparison:
     """Figures, alerts per team, incidents gained and lost, known false alarms still raised."""
-    from calibrate.report import settings_rows
+    from calibrate.reporting.report import settings_rows
 
     first = max(api.first_scored_hour(old.config, ses.ws), api.first_scored_hour(new.config,
                                                                                   ses.ws))
@@ -312,7 +312,7 @@ def explain_still_raised(
     """Why known false alarms are still raised: the fence multiplier and the minimum
     impact that would each drop one, and the miss rate there (everything else as in the
     new settings; the minimum impact raised for every series alike)."""
-    from calibrate.replay import sweep_codes
+    from calibrate.engine.replay import sweep_codes
     from calibrate.scoring import period_filter
 
     out = []
@@ -422,7 +422,7 @@ def retune(
         Trial budget of the new study.
     tuner : callable, optional
         ``tune(ses, *, trials, warm_start, known_false, ...)``; default
-        `calibrate.search.tune`.
+        `calibrate.tuning.search.tune`.
     added_incidents : path, optional
         Incidents CSV of incidents added in `calibrate review` (``--incidents-out``),
         merged into the labels before the verdicts are read.
@@ -433,7 +433,7 @@ def retune(
     if added_incidents is not None:
         added = read_text_csv(Path(added_incidents))
         own_added = incidents_from_frame(added, ses.ws, ses.history, str(added_incidents))
-        from calibrate.search import split_hour
+        from calibrate.tuning.search import split_hour
 
         # labelled while looking at the held-out weeks: that check is then not independent
         added_held_out = int((own_added.start >= split_hour(ses)).sum())
@@ -473,14 +473,14 @@ def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progres
                   added=None):
     rp = api.make_replayer(ses, progress=progress, executor=executor)
     old = rp.replay(previous)
-    from calibrate.search import split_hour
+    from calibrate.tuning.search import split_hour
 
     verdicts = read_verdicts(verdicts_path, ses, old, split_hour(ses))
     merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)",
                              added)
     ses2 = replace(ses, incidents=merged)
     if tuner is None:
-        from calibrate.search import tune as tuner
+        from calibrate.tuning.search import tune as tuner
     result = tuner(ses2, trials=trials, warm_start=[previous],
                    known_false=verdicts.known_false, progress=progress, executor=executor,
                    **tune_kwargs)
@@ -550,7 +550,7 @@ def comparison_html(res: RetuneResult, png: bytes) -> str:
     import base64
     import html
 
-    from calibrate.report import CSS
+    from calibrate.reporting.report import CSS
 
     md = comparison_markdown(res)
     body = []
@@ -602,9 +602,9 @@ def retune_paths(out: Path, report: Path | None) -> tuple[Path, Path, Path, Path
 def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
                          force: bool = False) -> list[Path]:
     """Write the new config, merged incidents, known false alarms and the comparison."""
-    from calibrate import plots
     from calibrate.outputs import check_outputs, write_config, write_table
-    from calibrate.report import write_report, write_report_data_files
+    from calibrate.reporting import plots
+    from calibrate.reporting.report import write_report, write_report_data_files
 
     out, inc_path, false_path, report = retune_paths(out, report)
     check_outputs((out, inc_path, false_path), force, folders=[report])

@@ -7,7 +7,7 @@ resumes where the files left off. `ReviewData` answers the page's questions as p
 JSON-ready dicts and saves each change at once:
 
 - verdicts go to the ``--verdicts`` file in the format `calibrate retune --verdicts`
-  reads (the alerts-for-review columns of `calibrate.review.review_frame` with
+  reads (the alerts-for-review columns of `calibrate.feedback.review.review_frame` with
   ``verdict`` and ``comment`` filled in), rewritten whole and atomically on every
   change, so every earlier verdict stays in it;
 - incidents an analyst adds go to ``--incidents-out`` in the incidents CSV format,
@@ -28,12 +28,12 @@ import numpy as np
 import pandas as pd
 
 from calibrate import api
+from calibrate.engine.replay import ReplayResult
 from calibrate.errors import CalibrationError, InputError
+from calibrate.feedback.review import VERDICTS, read_reviewed, review_frame
 from calibrate.formulas import parse_formula
-from calibrate.incidents import incidents_from_frame, read_text_csv
+from calibrate.inputs.incidents import incidents_from_frame, read_text_csv
 from calibrate.outputs import load_config, write_table
-from calibrate.replay import ReplayResult
-from calibrate.review import VERDICTS, read_reviewed, review_frame
 
 MAX_COMMENT = 2000
 MAX_NOTE = 2000

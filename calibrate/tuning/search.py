@@ -1,8 +1,8 @@
 """Constrained search for detector settings (pipeline stage 8, `calibrate tune`).
 
-The search space is `calibrate.search_space`, the scoring of one setting
-`calibrate.evaluate`; this module runs the study and assembles the result
-(`calibrate.summaries` prints it). The method, in short:
+The search space is `calibrate.tuning.search_space`, the scoring of one setting
+`calibrate.tuning.evaluate`; this module runs the study and assembles the result
+(`calibrate.tuning.summaries` prints it). The method, in short:
 
 Optuna drives the structural settings (windows, spans, flatline hours, ...); the
 fence multiplier is never searched. For each trial the `Replayer` computes fence
@@ -71,20 +71,13 @@ import optuna
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate import api, rolling, studies
+from calibrate import api
 from calibrate.api import Session
-from calibrate.episodes import Episodes
+from calibrate.detection.episodes import Episodes
+from calibrate.engine.executors import Executor
 from calibrate.errors import CalibrationError, InputError
-from calibrate.evaluate import (  # `X as X`: re-exported as calibrate.search.X
-    KNOWN_FALSE_PENALTY as KNOWN_FALSE_PENALTY,
-    Evaluation as Evaluation,
-    Evaluator,
-    greedy_multipliers as greedy_multipliers,
-    json_safe,
-    labels_line,
-)
-from calibrate.executors import Executor
-from calibrate.incidents import Incidents
+from calibrate.inputs.incidents import Incidents
+from calibrate.inputs.workspace import BASE_GROUP, Goal
 from calibrate.scoring import (
     Figures,
     load_axis,
@@ -93,7 +86,17 @@ from calibrate.scoring import (
     period_filter,
     validation_verdict,
 )
-from calibrate.search_space import (  # `X as X`: re-exported as calibrate.search.X
+from calibrate.settings import DetectorConfig, DetectorSettings
+from calibrate.tuning import rolling, studies
+from calibrate.tuning.evaluate import (  # `X as X`: re-exported as calibrate.tuning.search.X
+    KNOWN_FALSE_PENALTY as KNOWN_FALSE_PENALTY,
+    Evaluation as Evaluation,
+    Evaluator,
+    greedy_multipliers as greedy_multipliers,
+    json_safe,
+    labels_line,
+)
+from calibrate.tuning.search_space import (  # `X as X`: re-exported as calibrate.tuning.search.X
     Param,
     build_space,
     candidate_values,
@@ -111,8 +114,6 @@ from calibrate.search_space import (  # `X as X`: re-exported as calibrate.searc
     solved_min_impact as solved_min_impact,
     typical_level as typical_level,
 )
-from calibrate.settings import DetectorConfig, DetectorSettings
-from calibrate.workspace import BASE_GROUP, Goal
 
 GRID_POINTS = 80
 STUDY_FILE = ".calibrate/study.journal"
@@ -224,7 +225,7 @@ def study_name_for(ses: Session, goal: Goal, known_false: Incidents | None) -> s
 
 
 def open_storage(ses: Session, storage: str | None) -> tuple[Any, str]:
-    """Optuna storage object and how to name it (`calibrate.studies.open_storage`)."""
+    """Optuna storage object and how to name it (`calibrate.tuning.studies.open_storage`)."""
     return studies.open_storage(ses.ws.root / STUDY_FILE, storage)
 
 
@@ -314,7 +315,7 @@ def tune(
 
 def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[DetectorConfig],
              name: str, store: Any, budget: int, progress: bool, result: TuneResult) -> None:
-    """Rolling validation (`calibrate.rolling`): one study per fold on the hours before its
+    """Rolling validation (`calibrate.tuning.rolling`): one study per fold on the hours before its
     test block, sharing the evaluator's replayer (and so its cached fits); fills the
     folds, their pooled figures and the verdict into `result`."""
     s = ses.ws.search

@@ -7,7 +7,7 @@ Two steps, kept apart (content as tested data first, rendering after):
    trials of a study). It is pure computation over arrays and is what the tests
    check; every figure in it comes from `calibrate.api.score_episodes`,
    `calibrate.scoring.multiplier_curve` and `calibrate.api.alert_volume`.
-2. `render_html`, `render_markdown`, `summary_dict` and `calibrate.plots` turn
+2. `render_html`, `render_markdown`, `summary_dict` and `calibrate.reporting.plots` turn
    the record into ``index.html`` (self-contained, images embedded), ``report.md``
    (images beside it), ``summary.json`` and PNG files.
 
@@ -33,10 +33,10 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from calibrate import api
+from calibrate.engine.replay import MetricScores, ReplayResult, sweep_codes
 from calibrate.errors import CalibrationError
-from calibrate.incidents import ANY_METRIC
-from calibrate.replay import MetricScores, ReplayResult, sweep_codes
-from calibrate.report_data import (
+from calibrate.inputs.incidents import ANY_METRIC
+from calibrate.reporting.report_data import (
     CurveData,
     PeriodData,
     ReportData,
@@ -101,7 +101,7 @@ def build_report_data(
     trials : DataFrame, optional
         Trials of a study (columns miss_rate, feasible, alerts_per_analyst_day...).
     front : DataFrame, optional
-        The study's best trade-offs (`calibrate.search.pareto_frame`).
+        The study's best trade-offs (`calibrate.tuning.search.pareto_frame`).
     feasible, reason, holdout_warning : optional
         What the search said.
     derived_from_held_out : bool
@@ -150,7 +150,7 @@ def build_report_data(
     volume = volume_data(ses, chosen, first, split)
     incidents, delays = incident_rows(periods, hist.hours)
     panels, left_out = series_panels(ses, chosen, first, n, incidents)
-    from calibrate import search
+    from calibrate.tuning import search
 
     verdict, reasons = validation_verdict(held_out, goal)
     validation = {
@@ -388,7 +388,7 @@ def group_impact_data(
     """For a config with groups: per group, recall and alerts per analyst per day (of
     every group together) as that group's minimum impact moves at its chosen k, every
     other group at its chosen settings. Grids as in `impact_data`, per group."""
-    from calibrate.workspace import BASE_GROUP
+    from calibrate.inputs.workspace import BASE_GROUP
 
     config = chosen.config
     owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
@@ -411,9 +411,9 @@ def _impact_curve(ses, chosen, mine, rest, s, group, start, end, teams, budgets)
     """Recall and load of all series as the minimum impacts of those in `mine` (settings
     `s`, search group `group`) move together over their per-metric grids (x: the share of
     each metric's range, `search.impact_grids`), those in `rest` at their own settings."""
-    from calibrate import search
-    from calibrate.replay import sweep, sweep_runs
+    from calibrate.engine.replay import sweep, sweep_runs
     from calibrate.scoring import impact_curves, wilson
+    from calibrate.tuning import search
 
     inc = period_filter(ses.incidents, start, end)
     early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
@@ -709,7 +709,7 @@ PLOT_FILES = ("tradeoff.png", "multiplier.png", "volume.png", "delay.png")
 
 def render_plots(data: ReportData) -> dict[str, bytes]:
     """Every PNG of the report, by file name."""
-    from calibrate import plots
+    from calibrate.reporting import plots
 
     out = {
         "tradeoff.png": plots.tradeoff_png(data.tradeoff),
@@ -1200,7 +1200,7 @@ def write_report_data_files(files: Mapping[str, bytes], out_dir: str | Path,
 
 
 def _review_csv(result: ReplayResult) -> bytes:
-    from calibrate.review import review_frame
+    from calibrate.feedback.review import review_frame
 
     return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
 
@@ -1256,7 +1256,7 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
                  progress: bool = False, steps: tqdm | None = None,
                  derived_from_held_out: bool = False,
                  **replay_kwargs: Any) -> ReportData:
-    """Write the report of a tuning run (`calibrate.search.TuneResult`) to `out_dir`,
+    """Write the report of a tuning run (`calibrate.tuning.search.TuneResult`) to `out_dir`,
     judged against the goal the run was tuned to (`result.goal`, when set).
     `progress` shows a bar over the steps (or they advance `steps`, a caller's bar)."""
     goal = getattr(result, "goal", None)
@@ -1282,7 +1282,7 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
         derived_from_held_out=derived_from_held_out,
     ))
     if getattr(result, "folds", None):
-        from calibrate import rolling, summaries
+        from calibrate.tuning import rolling, summaries
 
         data.validation.update(
             verdict=result.verdict, reasons=list(result.verdict_reasons),

@@ -15,9 +15,10 @@ from typing import Any
 import numpy as np
 
 from calibrate.api import Session
+from calibrate.engine.replay import MetricScores, Replayer, sweep_codes, sweep_runs
 from calibrate.errors import InputError
-from calibrate.incidents import Incidents
-from calibrate.replay import MetricScores, Replayer, sweep_codes, sweep_runs
+from calibrate.inputs.incidents import Incidents
+from calibrate.inputs.workspace import BASE_GROUP, Goal
 from calibrate.scoring import (
     Curve,
     ExactPoint,
@@ -35,7 +36,6 @@ from calibrate.scoring import (
     zero_miss_bound,
 )
 from calibrate.settings import DetectorConfig
-from calibrate.workspace import BASE_GROUP, Goal
 
 KNOWN_FALSE_PENALTY = 1.0
 

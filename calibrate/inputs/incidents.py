@@ -20,8 +20,8 @@ import numpy as np
 import pandas as pd
 
 from calibrate.errors import InputError
-from calibrate.history import History
-from calibrate.workspace import Workspace
+from calibrate.inputs.history import History
+from calibrate.inputs.workspace import Workspace
 
 INCIDENT_COLUMNS = ("incident_id", "level", "metric", "start", "end")
 ANY_METRIC = ""

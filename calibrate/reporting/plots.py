@@ -1,6 +1,6 @@
 """PNG plots of the calibration report (matplotlib, Agg backend, CPU only).
 
-Every function takes plain data from `calibrate.report.ReportData` (no session,
+Every function takes plain data from `calibrate.reporting.report.ReportData` (no session,
 no replay) and returns PNG bytes, so the report's content is computed and tested
 first and rendered afterwards.
 """
@@ -19,7 +19,7 @@ import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 
 if TYPE_CHECKING:
-    from calibrate.report_data import CurveData, SeriesPanel, TradeoffData, VolumeData
+    from calibrate.reporting.report_data import CurveData, SeriesPanel, TradeoffData, VolumeData
 
 # Our own palette: colour-blind friendly, distinct in greyscale print too.
 INK = "#222222"

@@ -14,7 +14,7 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 
-from calibrate.detectors import detector_names
+from calibrate.detection.detectors import detector_names
 
 
 @dataclass
@@ -93,7 +93,7 @@ class CodedEpisodes:
     series, start, end, peak_hour, peak_score, value, expected, grid
         As in `Episodes`.
     bits : ndarray of int64
-        Detector bit mask (`calibrate.detectors.FENCE_BIT`, `FLATLINE_BIT`).
+        Detector bit mask (`calibrate.detection.detectors.FENCE_BIT`, `FLATLINE_BIT`).
     team_code : ndarray of int64
         Index into `teams`.
     pairs : tuple of (str, str)

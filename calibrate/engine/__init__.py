@@ -1,0 +1,3 @@
+"""Stage 5, the replay: worker pools, local or Dask (`executors`), and the hour-by-hour
+replay of every level and metric (`replay`).
+"""

@@ -1,0 +1,3 @@
+"""Stage 9, the report: its records (`report_data`), building and writing it (`report`)
+and its plots (`plots`).
+"""
