@@ -31,7 +31,9 @@ from calibrate.inputs.history import History, load_history
 from calibrate.inputs.incidents import Incidents, load_incidents
 from calibrate.inputs.owners import load_owners
 from calibrate.inputs.workspace import Workspace, load_workspace
-from calibrate.scoring import Figures, figures, match, period_filter, route_teams, volume
+from calibrate.scoring.figures import Figures, figures
+from calibrate.scoring.matching import match, period_filter, route_teams
+from calibrate.scoring.tables import volume
 from calibrate.settings import DetectorConfig
 
 

@@ -338,7 +338,8 @@ def cmd_score(args) -> int:
     from calibrate import api
     from calibrate.inputs.incidents import read_text_csv
     from calibrate.outputs import check_outputs, write_text
-    from calibrate.scoring import episodes_from_alerts_frame, route_teams
+    from calibrate.scoring.alerts_file import episodes_from_alerts_frame
+    from calibrate.scoring.matching import route_teams
 
     check_outputs((args.json,), args.force)
     ses = api.open_session(args.workspace)
@@ -402,7 +403,8 @@ def cmd_volume(args) -> int:
     from calibrate import api
     from calibrate.inputs.incidents import read_text_csv
     from calibrate.outputs import check_outputs, load_config, write_table
-    from calibrate.scoring import episodes_from_alerts_frame, route_teams
+    from calibrate.scoring.alerts_file import episodes_from_alerts_frame
+    from calibrate.scoring.matching import route_teams
 
     check_outputs((args.csv,), args.force)
     ses = api.open_session(args.workspace, incidents=False)

@@ -21,12 +21,8 @@ import pytest
 from calibrate.detection.detectors import episodes_grid
 from calibrate.engine.replay import MetricScores, sweep, sweep_codes, sweep_runs
 from calibrate.inputs.incidents import Incidents
-from calibrate.scoring import (
-    impact_curves,
-    match,
-    multiplier_curve,
-    period_filter,
-)
+from calibrate.scoring.curves import impact_curves, multiplier_curve
+from calibrate.scoring.matching import match, period_filter
 from calibrate.settings import DetectorSettings
 
 
@@ -203,7 +199,8 @@ def random_incidents(seed: int) -> Incidents:
 
 
 def naive_pairs(ep, inc, early: int, late: int) -> list[tuple[int, int]]:
-    """Event rule of calibrate/scoring.py, pair by pair, sorted by incident then episode."""
+    """Event rule of calibrate/scoring/matching.py, pair by pair, sorted by incident then
+    episode."""
     level, metric = ep.level, ep.metric
     return [
         (a, i)

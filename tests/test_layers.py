@@ -26,7 +26,9 @@ STAGES: dict[str, int] = {
     # 5 replay engine
     "engine.executors": 5, "engine.replay": 5,
     # 6 scoring
-    "scoring": 6,
+    "scoring.matching": 6, "scoring.intervals": 6, "scoring.tables": 6, "scoring.figures": 6,
+    "scoring.curves": 6, "scoring.tradeoffs": 6, "scoring.alerts_file": 6,
+    "scoring.hour_level": 6,
     # 7 the session layer: a loaded workspace, replays and figures over it
     "api": 7,
     # 8 tuning

@@ -114,7 +114,7 @@ def test_summary_equals_scoring_output(ses, chosen_config, config_report: Path) 
     for name, a, b in (("tuning", first, SPLIT), ("holdout", SPLIT, ses.history.n_hours)):
         ref = api.score_episodes(ses, eps, a, b).to_json_dict()
         assert summary[name] == json.loads(json.dumps(ref, default=str))
-    from calibrate.scoring import validation_verdict
+    from calibrate.scoring.figures import validation_verdict
 
     held = api.score_episodes(ses, eps, SPLIT, ses.history.n_hours)
     want = validation_verdict(held, ses.ws.goal)
@@ -375,7 +375,7 @@ def test_per_metric_and_detector_table_equals_scoring(ses, chosen_config) -> Non
     """Reference: `score_episodes` per period, counted per metric and per detector by
     hand from the replay's episodes and a plain `match`."""
     from calibrate.reporting.report import metric_rows
-    from calibrate.scoring import match, period_filter
+    from calibrate.scoring.matching import match, period_filter
 
     rep = _replay(ses, chosen_config)
     data = build_report_data(ses, rep, first_hour=200, split_hour=SPLIT)

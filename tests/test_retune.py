@@ -17,7 +17,8 @@ from calibrate.engine.replay import sweep
 from calibrate.errors import CalibrationError, InputError
 from calibrate.feedback.retune import raised_windows, read_verdicts, retune, write_retune_outputs
 from calibrate.feedback.review import review_frame
-from calibrate.scoring import match, multiplier_curve
+from calibrate.scoring.curves import multiplier_curve
+from calibrate.scoring.matching import match
 from tests.synthetic import make_workspace
 
 PREVIOUS_K = 1.0

@@ -24,7 +24,7 @@ from calibrate.feedback.review import review_frame
 from calibrate.feedback.review_app import running
 from calibrate.feedback.review_data import ReviewError, open_review
 from calibrate.inputs.incidents import incidents_from_frame, read_text_csv
-from calibrate.scoring import match
+from calibrate.scoring.matching import match
 from tests.review_helpers import HOSTILE, Client, review_workspace, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]

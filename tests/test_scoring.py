@@ -2,7 +2,7 @@
 
 Outside references are named next to each check. Hand-worked cases are written out
 in the test; "by hand" means the expected value was worked out on paper from the
-event rule in calibrate/scoring.py's docstring.
+event rule in calibrate/scoring/matching.py's docstring.
 """
 
 from __future__ import annotations
@@ -22,22 +22,17 @@ from calibrate.detection.episodes import Episodes
 from calibrate.errors import InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import Goal
-from calibrate.scoring import (
-    Curve,
-    breakdown,
-    episodes_from_alerts_frame,
-    figures,
+from calibrate.scoring.alerts_file import episodes_from_alerts_frame
+from calibrate.scoring.curves import Curve, multiplier_curve, solve_multiplier
+from calibrate.scoring.figures import figures
+from calibrate.scoring.hour_level import (
     intervals_mask,
-    match,
-    multiplier_curve,
-    period_filter,
     point_precision_recall,
     range_precision_recall,
-    route_teams,
-    solve_multiplier,
-    volume,
-    wilson,
 )
+from calibrate.scoring.intervals import wilson
+from calibrate.scoring.matching import match, period_filter, route_teams
+from calibrate.scoring.tables import breakdown, volume
 from tests.test_incidents import make_history, make_workspace
 
 

@@ -21,7 +21,7 @@ import optuna
 import pandas as pd
 import pytest
 
-from calibrate import api, scoring
+from calibrate import api
 from calibrate.cli import main
 from calibrate.detection.episodes import Episodes
 from calibrate.engine.executors import SerialExecutor
@@ -30,7 +30,9 @@ from calibrate.errors import InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import Goal
 from calibrate.outputs import load_config, load_provenance
-from calibrate.scoring import load_axis, match, period_filter
+from calibrate.scoring.figures import validation_verdict
+from calibrate.scoring.matching import match, period_filter
+from calibrate.scoring.tradeoffs import load_axis
 from calibrate.tuning import search, search_space, summaries
 from tests.synthetic import make_workspace
 
@@ -190,7 +192,7 @@ def _naive_front(caught, load):
 def test_best_tradeoffs_is_the_pareto_front_with_its_tie_rule():
     """Reference: the front's definition computed naively (`_naive_front`), on random
     candidates with many ties; ties go to the larger k, then the smaller impact."""
-    from calibrate.scoring import best_tradeoffs
+    from calibrate.scoring.tradeoffs import best_tradeoffs
 
     rng = np.random.default_rng(5)
     for _ in range(30):
@@ -206,10 +208,10 @@ def test_best_tradeoffs_is_the_pareto_front_with_its_tie_rule():
 
 
 def test_curve_loads_equal_load_axis_at_every_grid_point(ses):
-    """Reference: `scoring.load_axis` (the report's one-point rule) row by row, with
+    """Reference: `scoring.tradeoffs.load_axis` (the report's one-point rule) row by row, with
     per-team budgets (one infinite) so the share-of-budget branch runs, and with one
     budget for all."""
-    from calibrate.scoring import curve_loads, load_axis
+    from calibrate.scoring.tradeoffs import curve_loads, load_axis
 
     first, split = 167, ses.history.n_hours - 168
     ks = np.geomspace(0.5, 60.0, 9)
@@ -701,7 +703,7 @@ def test_cli_writes_the_config_and_refuses_to_overwrite(tmp_path, capsys):
     res = search.study_result(api.open_session(ws), storage=str(tmp_path / "cli.journal"),
                               engine="serial")
     assert last.startswith(f"out-of-sample verdict: {res.verdict.upper()}: ")
-    assert res.verdict == scoring.validation_verdict(res.holdout, res.goal)[0]
+    assert res.verdict == validation_verdict(res.holdout, res.goal)[0]
     tuned = load_config(out).base
     assert tuned.fence_multiplier > 0
     # the changed settings, today's value -> the written one

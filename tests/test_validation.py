@@ -17,12 +17,11 @@ import pytest
 
 from calibrate import api
 from calibrate.inputs.workspace import Goal
-from calibrate.scoring import (
-    Figures,
+from calibrate.scoring.figures import Figures, validation_verdict
+from calibrate.scoring.intervals import (
     cluster_bootstrap_ratio,
     day_bootstrap_total,
     incidents_needed,
-    validation_verdict,
     zero_miss_bound,
 )
 from calibrate.tuning import search
@@ -83,7 +82,7 @@ def test_day_bootstrap_of_a_steady_load_is_tight_and_of_a_bursty_one_wide():
 
 
 def _figs(n_inc, caught, load, low, high):
-    from calibrate.scoring import wilson
+    from calibrate.scoring.intervals import wilson
 
     ml, mh = wilson(n_inc - caught, n_inc)
     per_team = pd.DataFrame({"analysts": [2], "alerts_per_analyst_day": [load],

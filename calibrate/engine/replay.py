@@ -342,7 +342,7 @@ def sweep_codes(
     Rows come (level, metric) by (level, metric) in `scores` order, each as
     `episodes_grid` gives them (grid index, series, start). With `start_hours`
     ``(start, end)`` only episodes starting in ``[start, end)`` are kept, as
-    `scoring.period_filter` would.
+    `scoring.matching.period_filter` would.
     """
     runs, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours)
     # every (level, metric) writes its rows straight into one table

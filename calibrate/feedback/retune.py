@@ -35,7 +35,9 @@ from calibrate.engine.replay import ReplayResult, alerts_frame
 from calibrate.errors import InputError
 from calibrate.feedback.review import VERDICTS, read_reviewed
 from calibrate.inputs.incidents import Incidents, incidents_from_frame, read_text_csv
-from calibrate.scoring import HELD_OUT_NOTE, match, multiplier_curve, route_teams
+from calibrate.scoring.curves import multiplier_curve
+from calibrate.scoring.figures import HELD_OUT_NOTE
+from calibrate.scoring.matching import match, route_teams
 from calibrate.settings import DetectorConfig
 
 CHECKED_COLUMNS = ("level", "metric", "start")
@@ -313,7 +315,7 @@ def explain_still_raised(
     impact that would each drop one, and the miss rate there (everything else as in the
     new settings; the minimum impact raised for every series alike)."""
     from calibrate.engine.replay import sweep_codes
-    from calibrate.scoring import period_filter
+    from calibrate.scoring.matching import period_filter
 
     out = []
     ep = new.episodes

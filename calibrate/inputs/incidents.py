@@ -7,7 +7,7 @@ like `Episodes`: level, series index into ``History.levels[level].keys``, metric
 `incidents_from_frame` does the same checks on an in-memory frame.
 
 The row/column resolvers here (`FrameRows`, `resolve_series`, `resolve_hours`) are
-shared with `calibrate.scoring.episodes_from_alerts_frame`. Row numbers in error
+shared with `calibrate.scoring.alerts_file.episodes_from_alerts_frame`. Row numbers in error
 messages count the header as row 1.
 """
 
@@ -46,7 +46,7 @@ class Incidents:
     label : ndarray of object (str)
         Human-readable series label ('a / b / c').
     team : ndarray of object (str)
-        Owning team ("" until routed, see `calibrate.scoring.route_teams`).
+        Owning team ("" until routed, see `calibrate.scoring.matching.route_teams`).
     hours : pandas.DatetimeIndex
         The hour grid the indices refer to (not a column; may be empty).
     """

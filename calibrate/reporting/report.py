@@ -6,7 +6,7 @@ Two steps, kept apart (content as tested data first, rendering after):
    chosen settings (plus, optionally, a replay of the current settings and the
    trials of a study). It is pure computation over arrays and is what the tests
    check; every figure in it comes from `calibrate.api.score_episodes`,
-   `calibrate.scoring.multiplier_curve` and `calibrate.api.alert_volume`.
+   `calibrate.scoring.curves.multiplier_curve` and `calibrate.api.alert_volume`.
 2. `render_html`, `render_markdown`, `summary_dict` and `calibrate.reporting.plots` turn
    the record into ``index.html`` (self-contained, images embedded), ``report.md``
    (images beside it), ``summary.json`` and PNG files.
@@ -45,16 +45,11 @@ from calibrate.reporting.report_data import (
     TradeoffData,
     VolumeData,
 )
-from calibrate.scoring import (
-    ANY_LABEL,
-    HELD_OUT_NOTE,
-    load_axis,
-    match,
-    multiplier_curve,
-    pareto_front,
-    period_filter,
-    validation_verdict,
-)
+from calibrate.scoring.curves import multiplier_curve
+from calibrate.scoring.figures import HELD_OUT_NOTE, validation_verdict
+from calibrate.scoring.matching import match, period_filter
+from calibrate.scoring.tables import ANY_LABEL
+from calibrate.scoring.tradeoffs import load_axis, pareto_front
 from calibrate.settings import DetectorConfig
 
 MAX_MISSED_PANELS = 20
@@ -412,7 +407,8 @@ def _impact_curve(ses, chosen, mine, rest, s, group, start, end, teams, budgets)
     `s`, search group `group`) move together over their per-metric grids (x: the share of
     each metric's range, `search.impact_grids`), those in `rest` at their own settings."""
     from calibrate.engine.replay import sweep, sweep_runs
-    from calibrate.scoring import impact_curves, wilson
+    from calibrate.scoring.curves import impact_curves
+    from calibrate.scoring.intervals import wilson
     from calibrate.tuning import search
 
     inc = period_filter(ses.incidents, start, end)

@@ -19,22 +19,17 @@ from calibrate.engine.replay import MetricScores, Replayer, sweep_codes, sweep_r
 from calibrate.errors import InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import BASE_GROUP, Goal
-from calibrate.scoring import (
+from calibrate.scoring.curves import (
     Curve,
     ExactPoint,
-    best_tradeoffs,
-    catch_pairs,
-    curve_loads,
     exact_solve,
     impact_curves,
-    incidents_needed,
-    load_axis,
     multiplier_curve,
-    period_filter,
     solve_multiplier,
-    wilson,
-    zero_miss_bound,
 )
+from calibrate.scoring.intervals import incidents_needed, wilson, zero_miss_bound
+from calibrate.scoring.matching import catch_pairs, period_filter
+from calibrate.scoring.tradeoffs import best_tradeoffs, curve_loads, load_axis
 from calibrate.settings import DetectorConfig
 
 KNOWN_FALSE_PENALTY = 1.0
@@ -63,7 +58,7 @@ class Evaluation:
     # the same per group: group -> metric -> minimum impact
     group_min_impact: dict[str, dict[str, float]] = field(default_factory=dict)
     # best trade-offs over the solved multiplier (and minimum impact) grid: [caught,
-    # load (`scoring.load_axis`), k, min_impact or None]; empty for grouped settings
+    # load (`scoring.tradeoffs.load_axis`), k, min_impact or None]; empty for grouped settings
     # (`tune` computes the chosen grouped setting's with `Evaluator.group_front`)
     front: list[list[float | None]] = field(default_factory=list)
 
@@ -174,7 +169,7 @@ class Evaluator:
 
     def _exact(self, scores: dict[tuple[str, str], MetricScores],
                grids: dict[str, np.ndarray] | None):
-        """`scoring.exact_solve` over every breakpoint multiplier (and minimum-impact
+        """`scoring.curves.exact_solve` over every breakpoint multiplier (and minimum-impact
         level of `grids`; None: each series' own minimum impact)."""
         ws = self.ses.ws
         ks = self.breakpoints(scores)
@@ -224,7 +219,7 @@ class Evaluator:
 
     def _front(self, curves: Sequence[Curve],
                grids: dict[str, np.ndarray] | None) -> list[list[Any]]:
-        """`scoring.best_tradeoffs` over every (multiplier, minimum impact) pair of
+        """`scoring.tradeoffs.best_tradeoffs` over every (multiplier, minimum impact) pair of
         `curves` (curve l at minimum impact level l of `grids`; None: the config's own)."""
         pts = best_tradeoffs(
             np.concatenate([c.caught for c in curves]),
@@ -250,7 +245,7 @@ class Evaluator:
     def group_front(self, config: DetectorConfig) -> list[JointSolve]:
         """Best trade-offs of a grouped `config`: the joint solve (`greedy_multipliers`)
         at every miss-rate level k/n, kept where no other level catches as many for
-        less load (`scoring.best_tradeoffs`); most incidents caught first."""
+        less load (`scoring.tradeoffs.best_tradeoffs`); most incidents caught first."""
         parts, teams = self._group_parts(config, self.replayer.scores(config))
         n_inc = len(self.incidents)
         budgets = {t: self.judge.budget(t) for t in self.ses.analysts}

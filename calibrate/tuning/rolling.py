@@ -17,7 +17,8 @@ import numpy as np
 from calibrate.api import Session
 from calibrate.detection.episodes import Episodes
 from calibrate.errors import InputError
-from calibrate.scoring import Figures, figures, match, period_filter
+from calibrate.scoring.figures import Figures, figures
+from calibrate.scoring.matching import match, period_filter
 from calibrate.settings import DetectorConfig
 
 DAY = 24
@@ -66,7 +67,7 @@ def fold_bounds(first: int, split: int, folds: int, gap_days: int) -> list[Fold]
 
 def pooled_figures(ses: Session, folds: list[Fold], episodes: list[Episodes]) -> Figures:
     """Out-of-sample figures of all folds together: each fold's alerts raised in its own
-    test block, against the incidents that start there (`scoring.figures`)."""
+    test block, against the incidents that start there (`scoring.figures.figures`)."""
     parts = [period_filter(ep, f.test_start, f.test_end)
              for f, ep in zip(folds, episodes, strict=True)]
     eps = Episodes(*[np.concatenate([getattr(p, c.name) for p in parts])

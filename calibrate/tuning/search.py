@@ -10,7 +10,7 @@ scores (cached remainder streams: only settings that change the decomposition
 refit); the flags change only where k passes a score, so `Evaluator.breakpoints`
 (every distinct score of the hours before the split in the multiplier range) are
 all the multipliers there are, `sweep_runs` turns them into runs of flagged hours
-(each one episode over a range of breakpoints) and `scoring.exact_solve` picks the
+(each one episode over a range of breakpoints) and `scoring.curves.exact_solve` picks the
 breakpoint with the fewest alerts that meets the miss-rate target and every team's
 alert budget. An 80-point grid (`multiplier_curve`) is scored for plots, the
 trade-off front and, when nothing is feasible, the point closest to the goal.
@@ -78,14 +78,9 @@ from calibrate.engine.executors import Executor
 from calibrate.errors import CalibrationError, InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import BASE_GROUP, Goal
-from calibrate.scoring import (
-    Figures,
-    load_axis,
-    match,
-    pareto_front,
-    period_filter,
-    validation_verdict,
-)
+from calibrate.scoring.figures import Figures, validation_verdict
+from calibrate.scoring.matching import match, period_filter
+from calibrate.scoring.tradeoffs import load_axis, pareto_front
 from calibrate.settings import DetectorConfig, DetectorSettings
 from calibrate.tuning import rolling, studies
 from calibrate.tuning.evaluate import (  # `X as X`: re-exported as calibrate.tuning.search.X
@@ -166,7 +161,7 @@ class TuneResult:
         the report judges with it too.
     verdict, verdict_reasons : str, list of str
         Out of sample (held-out weeks): "holds", "does not hold" or "cannot tell"
-        (`scoring.validation_verdict`), with the reasons.
+        (`scoring.figures.validation_verdict`), with the reasons.
     thin_margin : int
         Incidents caught on the tuning weeks only by alerts whose peak fence score is
         within 10% of the multiplier (a little less sensitivity would miss them).
@@ -637,7 +632,7 @@ def pareto_frame(trials: Sequence[optuna.trial.FrozenTrial], goal: Goal,
     (`tune` gives the chosen grouped setting's, `Evaluator.group_front`); other
     trials without one (grouped settings, older studies) offer their solved point.
     Columns `FRONT_COLUMNS`, least load first; ``attrs["load_label"]`` names the
-    load (`scoring.load_axis`).
+    load (`scoring.tradeoffs.load_axis`).
     """
     fronts = fronts or {}
     budgets = {t: goal.budget(t) for t in analysts}

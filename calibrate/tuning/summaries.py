@@ -9,9 +9,7 @@ from typing import Any
 
 import pandas as pd
 
-from calibrate.scoring import (
-    Figures,
-)
+from calibrate.scoring.figures import Figures
 from calibrate.tuning import rolling
 from calibrate.tuning.evaluate import json_safe
 from calibrate.tuning.search import TuneResult

@@ -39,7 +39,7 @@ from _repeat import add_runs_flag, spread  # noqa: E402
 from calibrate import api  # noqa: E402
 from calibrate.engine.executors import make_executor  # noqa: E402
 from calibrate.inputs.workspace import SearchParam  # noqa: E402
-from calibrate.scoring import Figures  # noqa: E402
+from calibrate.scoring.figures import Figures  # noqa: E402
 from calibrate.tuning import search  # noqa: E402
 
 VARIANTS = {"fit only": ("fit",), "forecast only": ("forecast",),
