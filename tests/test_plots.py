@@ -13,7 +13,8 @@ import pytest
 
 from calibrate.formulas import never_negative
 from calibrate.reporting import plots
-from calibrate.reporting.report import CurveData, SeriesPanel, VolumeData, can_be_negative
+from calibrate.reporting.build import can_be_negative
+from calibrate.reporting.report_data import CurveData, SeriesPanel, VolumeData
 
 
 @pytest.fixture

@@ -18,13 +18,9 @@ from calibrate import api
 from calibrate.engine.executors import SerialExecutor
 from calibrate.errors import CalibrationError
 from calibrate.feedback.review import review_frame
-from calibrate.reporting.report import (
-    build_report_data,
-    goal_verdict,
-    pareto_front,
-    write_config_report,
-    write_report,
-)
+from calibrate.reporting.build import build_report_data, goal_verdict
+from calibrate.reporting.report import write_config_report, write_report
+from calibrate.scoring.tradeoffs import pareto_front
 from tests.synthetic import make_workspace
 
 SPLIT = 600
@@ -374,7 +370,7 @@ def test_report_from_a_study_runs_no_trial_and_reports_its_best(tmp_path: Path, 
 def test_per_metric_and_detector_table_equals_scoring(ses, chosen_config) -> None:
     """Reference: `score_episodes` per period, counted per metric and per detector by
     hand from the replay's episodes and a plain `match`."""
-    from calibrate.reporting.report import metric_rows
+    from calibrate.reporting.render import metric_rows
     from calibrate.scoring.matching import match, period_filter
 
     rep = _replay(ses, chosen_config)
@@ -400,7 +396,7 @@ def test_per_metric_and_detector_table_equals_scoring(ses, chosen_config) -> Non
 
 
 def test_metric_rows_warn_about_silent_metrics() -> None:
-    from calibrate.reporting.report import metric_rows
+    from calibrate.reporting.render import metric_rows
 
     fig = {"per_metric": {
         "clicks": {"incidents": 2, "caught": 0, "alerts": 0, "recall": 0.0,

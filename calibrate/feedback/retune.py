@@ -259,7 +259,7 @@ def compare(
     known_false: Incidents,
 ) -> Comparison:
     """Figures, alerts per team, incidents gained and lost, known false alarms still raised."""
-    from calibrate.reporting.report import settings_rows
+    from calibrate.reporting.build import settings_rows
 
     first = max(api.first_scored_hour(old.config, ses.ws), api.first_scored_hour(new.config,
                                                                                   ses.ws))
@@ -552,7 +552,7 @@ def comparison_html(res: RetuneResult, png: bytes) -> str:
     import base64
     import html
 
-    from calibrate.reporting.report import CSS
+    from calibrate.reporting.render import CSS
 
     md = comparison_markdown(res)
     body = []

@@ -1,3 +1,4 @@
-"""Stage 9, the report: its records (`report_data`), building and writing it (`report`)
-and its plots (`plots`).
+"""Stage 9, the report: its records (`report_data`), computing them (`build`), how
+values are written (`formats`), rendering the pages (`render`) and plots (`plots`),
+and writing the folder (`report`).
 """

@@ -1,6 +1,6 @@
 """PNG plots of the calibration report (matplotlib, Agg backend, CPU only).
 
-Every function takes plain data from `calibrate.reporting.report.ReportData` (no session,
+Every function takes plain data from `calibrate.reporting.report_data` (no session,
 no replay) and returns PNG bytes, so the report's content is computed and tested
 first and rendered afterwards.
 """

@@ -1,5 +1,6 @@
-"""The report's content as plain records (stage 9): what `calibrate.reporting.report` computes and
-then renders, and what `calibrate.reporting.plots` draws. Pure data, no computation."""
+"""The report's content as plain records (stage 9): what `calibrate.reporting.build`
+computes, `calibrate.reporting.render` renders and `calibrate.reporting.plots` draws.
+Pure data, no computation."""
 
 from __future__ import annotations
 
