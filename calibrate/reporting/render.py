@@ -1,6 +1,9 @@
-"""The report's pages (stage 9): a `ReportData` record rendered as ``index.html``
-(self-contained: inline CSS, images as data: URIs, no scripts), ``report.md`` (images as
-files beside it), the ``summary.json`` dict and the PNG plots (`calibrate.reporting.plots`).
+"""The report's pages (stage 9): a `ReportData` record rendered as ``index.html`` (the
+Jinja2 template ``calibrate/templates/report.html`` with autoescape; self-contained:
+inline CSS, images as data: URIs, no scripts), ``report.md`` (plain text, built here;
+images as files beside it), the ``summary.json`` dict and the PNG plots
+(`calibrate.reporting.plots`). The tables' rows (`goal_rows`, `metric_rows`,
+`fold_table`) are shared by the HTML and the Markdown.
 
 No computation over replays here: every figure comes from the record
 (`calibrate.reporting.build`).
@@ -9,13 +12,18 @@ No computation over replays here: every figure comes from the record
 from __future__ import annotations
 
 import base64
-import html
-from collections.abc import Callable, Mapping, Sequence
+import functools
+from collections.abc import Mapping, Sequence
+from pathlib import Path
 from typing import Any
+
+import jinja2
 
 from calibrate.reporting.formats import finite, hours, num, pct, show
 from calibrate.reporting.report_data import ReportData, SeriesPanel
 from calibrate.scoring.tables import ANY_LABEL
+
+TEMPLATES = Path(__file__).parents[1] / "templates"
 
 
 def summary_dict(data: ReportData) -> dict[str, Any]:
@@ -130,25 +138,10 @@ nav ol { columns: 2; font-size: .9rem; }
 """
 
 
-def _e(x: Any) -> str:
-    return html.escape(str(x))
-
-
-def _table(headers: Sequence[str], rows: Sequence[Sequence[Any]],
-           row_class: Sequence[str] | None = None) -> str:
-    head = "".join(f"<th>{_e(h)}</th>" for h in headers)
-    body = []
-    for i, r in enumerate(rows):
-        cls = f' class="{row_class[i]}"' if row_class and row_class[i] else ""
-        cells = "".join(
-            f'<td class="num">{_e(c)}</td>' if isinstance(c, int | float) or _numeric(c)
-            else f"<td>{_e(c)}</td>" for c in r
-        )
-        body.append(f"<tr{cls}>{cells}</tr>")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(body)}</tbody></table>"
-
-
 def _numeric(c: Any) -> bool:
+    """A table cell shown right-aligned: a number, or text reading as one ("12.5%")."""
+    if isinstance(c, int | float):
+        return True
     s = str(c).rstrip("%").replace(".", "", 1).lstrip("-")
     return s.isdigit()
 
@@ -263,183 +256,27 @@ def _rate(row: Mapping[str, Any]) -> str:
 
 
 def render_html(data: ReportData, images: Mapping[str, bytes]) -> str:
-    """A self-contained HTML page: inline CSS, images as data: URIs, no scripts."""
+    """A self-contained HTML page from the template ``calibrate/templates/report.html``:
+    inline CSS, images (PNG bytes by file name) as data: URIs, no scripts. The template
+    engine escapes every value (autoescape)."""
 
-    def img(name: str, alt: str, caption: str) -> str:
-        b64 = base64.b64encode(images[name]).decode("ascii")
-        return (f'<figure><img src="data:image/png;base64,{b64}" alt="{_e(alt)}">'
-                f"<figcaption>{_e(caption)}</figcaption></figure>")
+    def data_uri(name: str) -> str:
+        return "data:image/png;base64," + base64.b64encode(images[name]).decode("ascii")
 
-    return _document(data, img, html_page=True)
+    return _environment().get_template("report.html").render(
+        data=data, css=CSS, data_uri=data_uri, short_answer=short_answer,
+        budgets_text=_budgets_text, goal_rows=goal_rows, metric_rows=metric_rows,
+        fold_table=fold_table, impact_file=_impact_file, panel_file=_panel_file)
 
 
-def _document(data: ReportData, img: Callable[[str, str, str], str], html_page: bool) -> str:
-    p0 = data.periods[0]
-    overall = all(p.goal_met for p in data.periods)
-    parts = [
-        "<!DOCTYPE html>",
-        '<html lang="en"><head><meta charset="utf-8">',
-        '<meta name="viewport" content="width=device-width, initial-scale=1">',
-        f"<title>{_e(data.title)}</title><style>{CSS}</style></head><body>",
-        f"<h1>{_e(data.title)}</h1>",
-        f'<p class="meta">Generated {_e(data.generated)} from {_e(data.workspace)}'
-        + (f" &middot; {_e(data.source)}" if data.source else "") + "</p>",
-        f'<div class="answer {"met" if overall else "notmet"}"><strong>In short:</strong> '
-        + _e(short_answer(data)) + "</div>",
-        f'<p class="caution"><strong>Caution.</strong> {_e(data.caution)}</p>',
-        "<nav><ol>"
-        '<li><a href="#goal">Goal and result</a></li>'
-        '<li><a href="#settings">Settings</a></li>'
-        '<li><a href="#tradeoff">Recall against alert load</a></li>'
-        '<li><a href="#multiplier">Fence multiplier and minimum impact</a></li>'
-        '<li><a href="#volume">Alerts per team and week</a></li>'
-        '<li><a href="#delay">Detection delay</a></li>'
-        '<li><a href="#series">Missed incidents and false alerts</a></li>'
-        '<li><a href="#incidents">Every incident</a></li>'
-        "</ol></nav>",
-        '<h2 id="goal">1. Goal and result</h2>',
-        f"<p>Goal: catch at least {pct(data.goal['target_recall'])} of labelled incidents "
-        f"(miss rate at most {pct(data.goal['max_miss_rate'])}) while every team stays "
-        f"within its alert budget ({_e(_budgets_text(data.goal))} alerts per analyst per "
-        "day). Intervals are 95%; with few incidents they are wide.</p>",
-    ]
-    for p in data.periods:
-        cls = "met" if p.goal_met else "notmet"
-        parts.append(
-            f'<p><span class="badge {cls}">{"MET" if p.goal_met else "NOT MET"}</span> '
-            f"<strong>{_e(p.name)}</strong> ({_e(p.start[:10])} to {_e(p.end[:10])}): "
-            f"{_e(p.verdict)}</p>"
-        )
-    if data.holdout_warning:
-        parts.append(f"<p><strong>Held-out check:</strong> {_e(data.holdout_warning)}</p>")
-    v = data.validation
-    if v:
-        parts.append(f"<p><strong>Out-of-sample verdict: {_e(v['verdict'].upper())}.</strong> "
-                     f"{_e('; '.join(v['reasons']))}</p>")
-        parts.append(f"<p>{_e(v['labels'])}. The tuning-week figures are optimistic (the "
-                     "settings were chosen on those labels); judge by the held-out ones. "
-                     f"Intervals: {_e(v['interval_method'])}.</p>")
-    if v.get("folds"):
-        headers, rows = fold_table(v)
-        parts.append("<p>Rolling validation: each fold was tuned on the weeks before its "
-                     "test block and scored there (out of sample).</p>")
-        parts.append(_table(headers, rows))
-    if data.reason:
-        parts.append(f"<p><strong>Search:</strong> {_e(data.reason)}</p>")
-    headers, rows = goal_rows(data)
-    parts.append(_table(headers, rows))
-    headers, rows, warnings = metric_rows(data)
-    parts.append("<p>Per watched metric and per detector (chosen settings; tuning-week "
-                 "figures are in-sample, chosen on these labels):</p>")
-    parts.append(_table(headers, rows))
-    for w in warnings:
-        parts.append(f"<p><strong>Warning:</strong> {_e(w)}</p>")
-
-    parts.append('<h2 id="settings">2. Settings: current and chosen</h2>')
-    ch = data.changed
-    parts.append("<p>" + (f"{len(ch)} setting(s) changed (highlighted): {_e(', '.join(ch))}."
-                          if ch else "No setting changed.") + "</p>")
-    parts.append(_table(
-        ["setting", "current", "chosen"],
-        [[r.name, show(r.current), show(r.chosen)] for r in data.settings],
-        ["changed" if r.changed else "" for r in data.settings],
-    ))
-
-    parts.append('<h2 id="tradeoff">3. Recall against alert load</h2>')
-    t = data.tradeoff
-    line = ("The dark step line is the best trade-off the search found for each recall: "
-            "the least alert load of any trial at any multiplier (and minimum impact) on "
-            "its grid (for settings tuned per group: the chosen setting's joint solve at "
-            "each recall level), so it shows what a stricter or looser recall target "
-            "would cost."
-            if t.front_x else "The dark step line joins the best trade-offs found.")
-    what = (f"Each dot is one trial of the search ({len(t.x)} trials) at its solved "
-            "multiplier; blue ones meet the goal on the tuning weeks, grey ones do not. "
-            f"{line}" if t.x else "No study trials are attached to this report.")
-    parts.append(img("tradeoff.png", "recall against alerts per analyst per day",
-                     f"{what} The dotted line shows the chosen settings at other fence "
-                     "multipliers; the star is the chosen point; the dashed lines are the "
-                     "alert budget and the recall target. Up and to the left is better."))
-
-    parts.append('<h2 id="multiplier">4. Moving the fence multiplier and the minimum impact'
-                 '</h2>')
-    parts.append(img("multiplier.png", "recall and alert load against fence multiplier",
-                     f"Tuning weeks ({p0.start[:10]} to {p0.end[:10]}). A larger multiplier "
-                     "widens the fences: fewer alerts, and eventually missed incidents. The "
-                     "red line is the chosen multiplier. Every other setting is held at its "
-                     "chosen value (per-group multipliers are replaced by the one on the "
-                     "axis)."))
-    if data.impact is not None:
-        parts.append(img("impact.png", "recall and alert load against minimum impact",
-                         "The same weeks at the chosen multiplier. An alert episode whose "
-                         "An alert is raised once its episode's |impact so far| (value "
-                         "minus expected, summed over its hours) reaches its metric's "
-                         "minimum impact. Each metric's minimum impact moves over the same "
-                         "share of its own range (x axis): a larger one means fewer and "
-                         "later alerts, and eventually missed incidents with a small impact. "
-                         "The red line is the chosen setting."))
-    for i, (name, _c) in enumerate(data.impact_groups):
-        parts.append(img(_impact_file(i, name), f"recall and alert load against the minimum "
-                         f"impact of group {name}",
-                         f"Group {name}: its minimum impact moves at its chosen multiplier, "
-                         "every other group stays at its chosen settings; recall and alerts "
-                         "are of all groups together. The red line is the group's chosen "
-                         "minimum impact."))
-
-    parts.append('<h2 id="volume">5. Alerts per team and week</h2>')
-    parts.append(img("volume.png", "alerts per analyst per day per team and week",
-                     "Bars: alerts per analyst per day in each ISO week (partial weeks are "
-                     "rated by the days they have). Dashed lines: each team's budget."))
-    v = data.volume
-    vrows, vcls = [], []
-    for r in v.table:
-        over = bool(r.get("over_budget"))
-        vrows.append([r["team"], r["week"], f"{r['days']:.2g}", r["alerts"], r["analysts"],
-                      num(r["alerts_per_analyst_day"]), show(r.get("budget", "")),
-                      "yes" if over else ""])
-        vcls.append("bad" if over else "")
-    parts.append(_table(["team", "week", "days", "alerts", "analysts",
-                         "per analyst per day", "budget", "over budget"], vrows, vcls))
-
-    parts.append('<h2 id="delay">6. Detection delay</h2>')
-    parts.append(img("delay.png", "histogram of detection delays",
-                     f"Hours from the labelled start of each caught incident to the first "
-                     f"alert that met it ({len(data.delays)} caught incidents, every scored "
-                     "period). Negative values: the alert started inside the early "
-                     "tolerance."))
-
-    parts.append('<h2 id="series">7. Missed incidents and the worst false alerts</h2>')
-    n_missed = sum(1 for p in data.panels if p.kind == "missed incident")
-    parts.append(
-        f"<p>{n_missed + data.panels_left_out} missed incident(s)"
-        + (f" ({data.panels_left_out} not drawn, see the table)" if data.panels_left_out else "")
-        + f" and the {sum(1 for p in data.panels if p.kind == 'false alerts')} series with "
-        "the most false alerts. Black: value; dashed: expected value; blue band: the "
-        "fences (Q1 - k*IQR to Q3 + k*IQR of the remainder, drawn around the expected "
-        "value); green: labelled incident window; red marks at the bottom: alerts raised. "
-        "For a metric that cannot be negative (a measure, or a formula without subtraction, "
-        "over a series with no negative value) fences and expected values below 0 are drawn "
-        "at 0; the figures and summary.json keep the values as computed.</p>"
-    )
-    for i, panel in enumerate(data.panels):
-        parts.append(img(_panel_file(i, panel), panel.title, panel.note))
-
-    parts.append('<h2 id="incidents">8. Every incident</h2>')
-    irows, icls = [], []
-    for r in data.incidents:
-        irows.append([r["period"], r["incident_id"], r["level"], r["series_label"],
-                      r["metric"], r.get("team", ""), str(r.get("start", ""))[:16],
-                      str(r.get("end", ""))[:16], "caught" if r["caught"] else "MISSED",
-                      hours(r.get("delay_hours"))])
-        icls.append("" if r["caught"] else "bad")
-    parts.append(_table(["period", "incident", "level", "series", "metric", "team", "start",
-                         "end", "result", "delay"], irows, icls))
-    if data.provenance:
-        parts.append("<h2>Where these settings come from</h2>")
-        parts.append(_table(["item", "value"], [[k, show(v)] for k, v in
-                                                 sorted(data.provenance.items())]))
-    parts.append("</body></html>")
-    return "\n".join(parts)
+@functools.cache
+def _environment() -> jinja2.Environment:
+    # as the review page (calibrate/feedback/review_app.py) loads its template
+    env = jinja2.Environment(loader=jinja2.FileSystemLoader(TEMPLATES), autoescape=True,
+                             undefined=jinja2.StrictUndefined)
+    env.filters.update(pct=pct, hours=hours, num=num, show=show)
+    env.tests["numeric"] = _numeric
+    return env
 
 
 def short_answer(data: ReportData) -> str:
