@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import copy
 import html
 import io
 import json
@@ -20,7 +21,9 @@ from calibrate.engine.executors import SerialExecutor
 from calibrate.errors import CalibrationError
 from calibrate.feedback.review import review_frame
 from calibrate.reporting.build import build_report_data, goal_verdict
+from calibrate.reporting.render import render_html
 from calibrate.reporting.report import write_config_report, write_report
+from calibrate.reporting.report_data import ReportData
 from calibrate.scoring.tradeoffs import pareto_front
 from tests.synthetic import make_workspace
 
@@ -39,27 +42,61 @@ def chosen_config(ses: api.Session):
 
 
 @pytest.fixture(scope="module")
-def config_report(ses, chosen_config, tmp_path_factory) -> Path:
+def written(ses, chosen_config, tmp_path_factory) -> tuple[Path, ReportData]:
     out = tmp_path_factory.mktemp("rep") / "report"
-    write_config_report(ses, chosen_config, out, split_hour=SPLIT, executor=SerialExecutor())
-    return out
+    data = write_config_report(ses, chosen_config, out, split_hour=SPLIT,
+                               executor=SerialExecutor())
+    return out, data
+
+
+@pytest.fixture(scope="module")
+def config_report(written) -> Path:
+    return written[0]
 
 
 class _Collect(HTMLParser):
+    VOID = {"meta", "img", "br", "hr", "link", "input"}
+
     def __init__(self) -> None:
         super().__init__()
         self.imgs: list[str] = []
+        self.alts: list[str] = []
         self.links: list[str] = []
         self.tags: list[str] = []
+        self.ids: list[str] = []
+        self.text: list[str] = []
+        self.open: list[str] = []  # elements not closed yet
+        self.unbalanced: list[str] = []  # end tags that close something else
 
     def handle_starttag(self, tag, attrs):
         a = dict(attrs)
         self.tags.append(tag)
+        if tag not in self.VOID:
+            self.open.append(tag)
+        if "id" in a:
+            self.ids.append(a["id"] or "")
         if tag == "img":
             self.imgs.append(a.get("src") or "")
+            self.alts.append(a.get("alt") or "")
         for key in ("href", "src"):
             if key in a and tag != "img":
                 self.links.append(a[key] or "")
+
+    def handle_endtag(self, tag):
+        if not self.open or self.open.pop() != tag:
+            self.unbalanced.append(tag)
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def _parse(page: str) -> _Collect:
+    """The page through html.parser; every element but the void ones closed in order."""
+    p = _Collect()
+    p.feed(page)
+    p.close()
+    assert not p.unbalanced and not p.open, (p.unbalanced, p.open)
+    return p
 
 
 def _decode_png(raw: bytes) -> np.ndarray:
@@ -76,10 +113,10 @@ def _replay(ses, config):
 
 def test_html_parses_and_every_image_is_embedded(config_report: Path) -> None:
     text = (config_report / "index.html").read_text(encoding="utf-8")
-    p = _Collect()
-    p.feed(text)
-    p.close()
+    p = _parse(text)
     assert "table" in p.tags and "h2" in p.tags
+    # the contents' links lead to the eight sections, in order
+    assert p.links == [f"#{i}" for i in p.ids] and len(p.ids) == 8
     assert len(p.imgs) >= 7  # 4 summary plots + 3 false-alert series
     for src in p.imgs:
         assert src.startswith("data:image/png;base64,"), src[:40]
@@ -89,6 +126,31 @@ def test_html_parses_and_every_image_is_embedded(config_report: Path) -> None:
     assert "<script" not in text and "@import" not in text and "url(" not in text
     assert "@media print" in text
     assert "only as good as the incident labels" in text
+
+
+def test_markup_in_values_is_shown_as_text(written) -> None:
+    """Values holding markup (a title, a series label, a setting, a panel's title and
+    note, a search reason, provenance) come back from html.parser as the same text and
+    add no element; the page stays balanced."""
+    out, data = written
+    bad = "<b>x</b> & <script>alert(1)</script> \"q\" 'a'"
+    data = copy.deepcopy(data)
+    data.title = data.reason = bad
+    data.panels[0].title = data.panels[0].note = bad
+    data.incidents[0]["series_label"] = bad
+    data.settings[0].chosen = bad
+    data.provenance = {"a&b<i>": bad}
+    images = {f.name: f.read_bytes() for f in out.glob("*.png")}
+    page = render_html(data, images)
+    p = _parse(page)
+    assert "b" not in p.tags and "script" not in p.tags and "i" not in p.tags
+    text = "".join(p.text)
+    # <title>, <h1>, the search line, the panel's caption, the incident and settings
+    # tables, the provenance value
+    assert text.count(bad) == 7
+    assert "a&b<i>" in text
+    assert bad in p.alts
+    assert "<script" not in page and "<b>" not in page
 
 
 def test_markdown_images_are_files_beside_it(config_report: Path) -> None:
