@@ -45,6 +45,12 @@ __all__ = [
 ]
 
 _JIT = dict(cache=True, nogil=True, error_model="numpy")
+# A bare constant passed to another compiled function is typed as a literal
+# (Literal[int](1)), which compiles a second copy of the callee beside its int64 one.
+# Numpy scalars keep the plain types, so every caller shares one compiled copy: pass
+# these instead of 0, 1, 2, 3, True and False (it shortens the cold-cache compile).
+_0, _1, _2, _3 = (np.int64(i) for i in range(4))
+_TRUE, _FALSE = np.bool_(True), np.bool_(False)
 
 
 @intrinsic
@@ -290,7 +296,7 @@ def _loess_shift(y, n, len_, ideg, xs0, nleft0, npts, userw, rw, tab, toff, ys, 
                 wbuf[row + k] = wn
         for k in range(npts):
             a[k] = tot
-    _loess_finish(y, n, ideg, npts, j0, 1, ys, xs0 - 1, wbuf, acc, hpos)
+    _loess_finish(y, n, ideg, npts, j0, _1, ys, xs0 - 1, wbuf, acc, hpos)
 
 
 @nb.njit(**_JIT)
@@ -326,7 +332,7 @@ def _loess_fixed(y, n, len_, ideg, xs0, npts, nleft, nright, userw, rw, tab, tof
         row = d * npts
         for k in range(npts):
             wbuf[row + k] = wbuf[row + k] / a[k]
-    _loess_finish(y, n, ideg, npts, nleft - 1, 0, ys, xs0 - 1, wbuf, acc, hpos)
+    _loess_finish(y, n, ideg, npts, nleft - 1, _0, ys, xs0 - 1, wbuf, acc, hpos)
 
 
 @nb.njit(**_JIT)
@@ -339,7 +345,7 @@ def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff,
     nleft = 1
     nright = n
     if len_ >= n and newnj == 1 and blocked:
-        _loess_fixed(y, n, len_, ideg, 1, n, 1, n, userw, rw, tab, toff, ys, blk, acc, hpos)
+        _loess_fixed(y, n, len_, ideg, _1, n, _1, n, userw, rw, tab, toff, ys, blk, acc, hpos)
         for i in range(n):
             if np.isnan(ys[i]):
                 ys[i] = y[i]
@@ -347,9 +353,9 @@ def _ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff,
     if len_ < n and newnj == 1 and blocked:
         nsh = (len_ + 2) // 2
         ninner = n - len_
-        _loess_fixed(y, n, len_, ideg, 1, nsh, 1, len_, userw, rw, tab, toff, ys, blk, acc,
+        _loess_fixed(y, n, len_, ideg, _1, nsh, _1, len_, userw, rw, tab, toff, ys, blk, acc,
                      hpos)
-        _loess_shift(y, n, len_, ideg, nsh + 1, 2, ninner, userw, rw, tab, toff, ys, blk,
+        _loess_shift(y, n, len_, ideg, nsh + 1, _2, ninner, userw, rw, tab, toff, ys, blk,
                      acc, hpos)
         i = nsh + ninner
         _loess_fixed(y, n, len_, ideg, i + 1, n - i, n - len_ + 1, n, userw, rw, tab, toff,
@@ -455,7 +461,7 @@ def _ss(work, n, np_, ns, isdeg, nsjump, userw, rw, season_out, blk, acc, hpos, 
         _ess(work1, k, ns, isdeg, nsjump, userw, work3, work2[1:], work4, blk, acc, hpos,
              tab, toff, blocked)
         nright = min(ns, k)
-        work2[0] = _est(work1, k, ns, isdeg, 0, 1, nright, work4, userw, work3, tab, toff)
+        work2[0] = _est(work1, k, ns, isdeg, _0, _1, nright, work4, userw, work3, tab, toff)
         if np.isnan(work2[0]):
             work2[0] = work2[1]
         nleft = max(1, k - ns + 1)
@@ -556,8 +562,8 @@ def _stl_into(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, n
             m = n + 2 * np_
             _ma(work[1], m, np_, work[2])
             _ma(work[2], m - np_ + 1, np_, work[0])
-            _ma(work[0], m - 2 * np_ + 2, 3, work[2])
-            _ess(work[2], n, nl, ildeg, nljump, False, work[3], work[0], work[4], blk, acc,
+            _ma(work[0], m - 2 * np_ + 2, _3, work[2])
+            _ess(work[2], n, nl, ildeg, nljump, _FALSE, work[3], work[0], work[4], blk, acc,
                  hpos, tab, toff, blocked)
             for i in range(n):
                 season[i] = work[1, np_ + i] - work[0, i]
@@ -594,38 +600,38 @@ def _stl_one(y, np_, ns, nt, nl, isdeg, itdeg, ildeg, nsjump, ntjump, nljump, ni
     return season, trend, rw
 
 
-@nb.njit(parallel=True, **_JIT)
+@nb.njit(**_JIT)
 def _stl_windows(y, ends, window, np_, ns, nt, nl, ni, no, tab, toff):
     """STL (default degrees and jumps) on ``y[e-window+1 : e+1]`` for each ``e``."""
     nw = ends.shape[0]
     trend_out = np.empty((nw, window))
     season_out = np.empty((nw, window))
     resid_out = np.empty((nw, window))
-    for w in nb.prange(nw):
+    for w in range(nw):
         e = ends[w]
         seg = y[e - window + 1 : e + 1]
         rw = np.empty(window)
         work = np.zeros((7, window + 2 * np_))
         blk, acc, hpos = _block_scratch(ns, nt, nl, window)
-        _stl_into(seg, np_, ns, nt, nl, 1, 1, 1, 1, 1, 1, ni, no,
-                  season_out[w], trend_out[w], rw, work, blk, acc, hpos, tab, toff, True)
+        _stl_into(seg, np_, ns, nt, nl, _1, _1, _1, _1, _1, _1, ni, no,
+                  season_out[w], trend_out[w], rw, work, blk, acc, hpos, tab, toff, _TRUE)
         for i in range(window):
             resid_out[w, i] = seg[i] - season_out[w, i] - trend_out[w, i]
     return trend_out, season_out, resid_out
 
 
-@nb.njit(parallel=True, **_JIT)
+@nb.njit(**_JIT)
 def _stl_rows(ys, np_, ns, nt, nl, ni, no, tab, toff):
     """STL (default degrees and jumps) of each row of ``ys``; returns (trend, season)."""
     nr, n = ys.shape
     trend_out = np.empty((nr, n))
     season_out = np.empty((nr, n))
-    for r in nb.prange(nr):
+    for r in range(nr):
         rw = np.empty(n)
         work = np.zeros((7, n + 2 * np_))
         blk, acc, hpos = _block_scratch(ns, nt, nl, n)
-        _stl_into(ys[r], np_, ns, nt, nl, 1, 1, 1, 1, 1, 1, ni, no,
-                  season_out[r], trend_out[r], rw, work, blk, acc, hpos, tab, toff, True)
+        _stl_into(ys[r], np_, ns, nt, nl, _1, _1, _1, _1, _1, _1, ni, no,
+                  season_out[r], trend_out[r], rw, work, blk, acc, hpos, tab, toff, _TRUE)
     return trend_out, season_out
 
 
@@ -920,7 +926,7 @@ def _stl_plan_into(y, np_, ni, no, sp, tp, lp, ws0, wt0, wl, season, trend, rw, 
             _plan_apply(sp[0], sp[1], cur_s, work[0], work[1], scr[0])
             _ma(work[1], m, np_, work[2])
             _ma(work[2], m - np_ + 1, np_, work[0])
-            _ma(work[0], m - 2 * np_ + 2, 3, work[2])
+            _ma(work[0], m - 2 * np_ + 2, _3, work[2])
             _plan_apply(lp[0], lp[1], wl, work[2], work[0], scr[0])
             for i in range(n):
                 season[i] = work[1, np_ + i] - work[0, i]
@@ -956,14 +962,14 @@ def _stl_plan_one(y, np_, ni, no, sp, tp, lp, ws0, wt0, wl):
     return season, trend, rw
 
 
-@nb.njit(parallel=True, **_JIT)
+@nb.njit(**_JIT)
 def _stl_plan_windows(y, ends, window, np_, ni, no, sp, tp, lp, ws0, wt0, wl):
     """`_stl_windows` with prepared weights (one plan shared by all windows)."""
     nw = ends.shape[0]
     trend_out = np.empty((nw, window))
     season_out = np.empty((nw, window))
     resid_out = np.empty((nw, window))
-    for w in nb.prange(nw):
+    for w in range(nw):
         e = ends[w]
         seg = y[e - window + 1 : e + 1]
         rw = np.empty(window)
@@ -1036,7 +1042,15 @@ def _as_series(y: object) -> np.ndarray:
     arr = np.ascontiguousarray(np.squeeze(np.asarray(y, dtype=np.float64)))
     if arr.ndim != 1:
         raise ValueError(f"y must be one-dimensional, but got shape {arr.shape}")
-    return arr
+    return _readonly(arr)
+
+
+def _readonly(arr: np.ndarray) -> np.ndarray:
+    """A read-only view (no copy): the kernels see one array type whatever the caller
+    passed, so each compiles once instead of once per writeable flag."""
+    view = arr.view()
+    view.flags.writeable = False
+    return view
 
 
 def stl_fit(
@@ -1232,13 +1246,14 @@ def mstl_fit(
         for i, (p, s) in enumerate(zip(per, win, strict=True)):
             deseas = deseas + seasonal[i]
             nt, nl = stl_config(p, s)
+            yd = _readonly(np.ascontiguousarray(deseas))
             if _plan_ok(n, p, (1, 1, 1)):
-                season, tr, _ = _stl_plan_one(np.ascontiguousarray(deseas), p, ni, no,
+                season, tr, _ = _stl_plan_one(yd, p, ni, no,
                                               *_plan_call(_plans(n, p, s, nt, nl, 1, 1, 1)))
             else:
                 tab, toff = _table_for(n, s, nt, nl)
-                season, tr, _ = _stl_one(np.ascontiguousarray(deseas), p, s, nt, nl, 1, 1,
-                                         1, 1, 1, 1, ni, no, tab, toff, True)
+                season, tr, _ = _stl_one(yd, p, s, nt, nl, 1, 1, 1, 1, 1, 1, ni, no, tab, toff,
+                                         True)
             seasonal[i] = season
             deseas = deseas - seasonal[i]
     resid = deseas - tr
@@ -1298,7 +1313,8 @@ def _smoother(window: int, period: int, seasonal: int, trend: int, weekly: bool
         nt, nl = stl_config(period, seasonal, trend or None)
         ni, no = _iterations(False, None, None)
         tab, toff = _table_for(window, seasonal, nt, nl)
-        cols_t, cols_s = _stl_rows(eye, int(period), int(seasonal), nt, nl, ni, no, tab, toff)
+        cols_t, cols_s = _stl_rows(_readonly(eye), int(period), int(seasonal), nt, nl, ni, no,
+                                   tab, toff)
     # Row r of cols_* is the fit of unit vector r, i.e. column r of the matrix.
     t_mat = np.ascontiguousarray(cols_t.T)
     s_mat = np.ascontiguousarray(cols_s.T)
@@ -1320,8 +1336,8 @@ def _mstl_rows(ys: np.ndarray, per: tuple[int, ...], win: tuple[int, ...]
             deseas = deseas + seasonal[i]
             nt, nl = stl_config(p, s)
             tab, toff = _table_for(ys.shape[1], s, nt, nl)
-            tr, season = _stl_rows(np.ascontiguousarray(deseas), p, s, nt, nl, ni, no, tab,
-                                   toff)
+            yd = _readonly(np.ascontiguousarray(deseas))
+            tr, season = _stl_rows(yd, p, s, nt, nl, ni, no, tab, toff)
             seasonal[i] = season
             deseas = deseas - seasonal[i]
     return tr, seasonal.sum(axis=0)

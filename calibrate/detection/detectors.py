@@ -205,7 +205,8 @@ def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, ms,
                 elif r_row[lv] >= 0:
                     kept = True
             if kept:
-                raised[:, q] = r_row
+                for lv in range(n_m):  # not raised[:, q] = r_row: see scoring.curves
+                    raised[lv, q] = r_row[lv]
                 ints[0, q] = c_s[a]
                 ints[1, q] = c_t[a]
                 ints[2, q] = c_t[b - 1] + 1

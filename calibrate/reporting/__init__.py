@@ -1,4 +1,4 @@
-"""Stage 9, the report: its records (`report_data`), computing them (`build`), how
-values are written (`formats`), rendering the pages (`render`) and plots (`plots`),
-and writing the folder (`report`).
+"""Stage 9, the report: its records (`report_data`), its content (`build`), the pages
+and summary it renders (`render`, with `formats` for values as text), its plots
+(`plots`) and writing the files (`report`).
 """

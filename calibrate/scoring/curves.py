@@ -267,12 +267,16 @@ def _online_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, n_k, n_t, n_inc
             if true:
                 diff[1, lo[e], lv, t] += 1
                 diff[1, hi[e], lv, t] -= 1
+    # element loops, not array statements (run += diff[w, j]): numba compiles the
+    # text of a shape-mismatch error for those, seconds of every cold-cache start
     counts = np.zeros((2, n_k, n_m, n_t), dtype=np.int64)
     for w in range(2):
-        run = np.zeros((n_m, n_t), dtype=np.int64)
-        for j in range(n_k):
-            run += diff[w, j]
-            counts[w, j] = run
+        for lv in range(n_m):
+            for t in range(n_t):
+                run = 0
+                for j in range(n_k):
+                    run += diff[w, j, lv, t]
+                    counts[w, j, lv, t] = run
     return counts, caught
 
 
@@ -429,7 +433,8 @@ def _exact_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, fa, fi, f_lo, f_
         kf = 0
         caught = 0
         for j in range(n_k):
-            alerts_t += d_team[j]
+            for t in range(n_t):  # element loops: see _online_kernel
+                alerts_t[t] += d_team[j, t]
             kf += d_false[j]
             caught += d_caught[j]
             if caught < need:
@@ -449,7 +454,8 @@ def _exact_kernel(lo, hi, raised, team, pa, pi, win_lo, win_hi, fa, fi, f_lo, f_
                 best_cost = cost
                 best_k = j
                 out[0], out[1], out[2], out[3], out[4] = lv, j, caught, total, kf
-                out_teams[:] = alerts_t
+                for t in range(n_t):
+                    out_teams[t] = alerts_t[t]
     return out, out_teams
 
 
