@@ -309,6 +309,19 @@ def test_linear_smoother_matches_statsmodels(window: int, seasonal: int, trend: 
     assert not sm.trend.flags.writeable
 
 
+@pytest.mark.parametrize(("window", "seasonal"), [(96, 7), (40, 7)])
+def test_linear_smoother_columns_are_unit_vector_fits(window: int, seasonal: int) -> None:
+    """Column r of each matrix is the kernel's STL of unit vector r, bit for bit, whether
+    the matrix is built through the weight-reuse path (window >= 2 periods) or not."""
+    sm = linear_smoother(window, 24, seasonal, 0)
+    for r in (0, window // 2, window - 1):
+        e = np.zeros(window)
+        e[r] = 1.0
+        tr, seas, _ = stl_fit(e, 24, seasonal, 0, False, reuse_weights=False)
+        np.testing.assert_array_equal(sm.trend[:, r], tr)
+        np.testing.assert_array_equal(sm.seasonal[:, r], seas)
+
+
 def test_linear_smoother_weekly_matches_mstl() -> None:
     window = 504  # weekly period 168 < 504 / 2 is kept
     sm = linear_smoother(window, 24, 7, weekly=True)

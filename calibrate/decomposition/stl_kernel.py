@@ -1311,10 +1311,7 @@ def _smoother(window: int, period: int, seasonal: int, trend: int, weekly: bool
         cols_t, cols_s = _mstl_rows(eye, per, win)
     else:
         nt, nl = stl_config(period, seasonal, trend or None)
-        ni, no = _iterations(False, None, None)
-        tab, toff = _table_for(window, seasonal, nt, nl)
-        cols_t, cols_s = _stl_rows(_readonly(eye), int(period), int(seasonal), nt, nl, ni, no,
-                                   tab, toff)
+        cols_t, cols_s = _rows_fit(eye, int(period), int(seasonal), nt, nl)
     # Row r of cols_* is the fit of unit vector r, i.e. column r of the matrix.
     t_mat = np.ascontiguousarray(cols_t.T)
     s_mat = np.ascontiguousarray(cols_s.T)
@@ -1327,7 +1324,6 @@ def _mstl_rows(ys: np.ndarray, per: tuple[int, ...], win: tuple[int, ...]
                ) -> tuple[np.ndarray, np.ndarray]:
     """Non-robust MSTL (iterate=2) of each row of `ys`; returns (trend, summed seasonal)."""
     iterate = 1 if len(per) == 1 else 2
-    ni, no = _iterations(False, None, None)
     seasonal = np.zeros((len(per),) + ys.shape)
     deseas = ys
     tr = np.zeros_like(ys)
@@ -1335,12 +1331,30 @@ def _mstl_rows(ys: np.ndarray, per: tuple[int, ...], win: tuple[int, ...]
         for i, (p, s) in enumerate(zip(per, win, strict=True)):
             deseas = deseas + seasonal[i]
             nt, nl = stl_config(p, s)
-            tab, toff = _table_for(ys.shape[1], s, nt, nl)
-            yd = _readonly(np.ascontiguousarray(deseas))
-            tr, season = _stl_rows(yd, p, s, nt, nl, ni, no, tab, toff)
+            tr, season = _rows_fit(deseas, p, s, nt, nl)
             seasonal[i] = season
             deseas = deseas - seasonal[i]
     return tr, seasonal.sum(axis=0)
+
+
+def _rows_fit(ys: np.ndarray, period: int, seasonal: int, nt: int, nl: int
+              ) -> tuple[np.ndarray, np.ndarray]:
+    """Non-robust STL (default degrees, jumps 1) of each row of `ys`: (trend, seasonal).
+
+    Through the weight-reuse kernel when it covers the rows (same bits as `_stl_rows`,
+    and the replay's other fits compile it anyway), else through `_stl_rows`.
+    """
+    ni, no = _iterations(False, None, None)
+    nr, n = ys.shape
+    if _plan_ok(n, period, (1, 1, 1)):
+        flat = _readonly(np.ascontiguousarray(ys, dtype=np.float64).reshape(-1))
+        ends = np.arange(n - 1, nr * n, n, dtype=np.int64)
+        plans = _plans(n, period, seasonal, nt, nl, 1, 1, 1)
+        tr, season, _ = _stl_plan_windows(flat, ends, n, period, ni, no, *_plan_call(plans))
+        return tr, season
+    tab, toff = _table_for(n, seasonal, nt, nl)
+    return _stl_rows(_readonly(np.ascontiguousarray(ys, dtype=np.float64)), period, seasonal,
+                     nt, nl, ni, no, tab, toff)
 
 
 def trend_matrix(window: int, period: int, seasonal: int, trend: int = 0,
