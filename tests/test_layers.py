@@ -20,7 +20,8 @@ STAGES: dict[str, int] = {
     "inputs.workspace": 1, "inputs.sources": 2, "inputs.history": 2, "inputs.owners": 2,
     "inputs.incidents": 2, "inputs.checks": 2,
     # 3 decomposition
-    "decomposition.stl_kernel": 3, "decomposition.decompose": 3,
+    "decomposition.loess": 3, "decomposition.stl_core": 3, "decomposition.stl_plan": 3,
+    "decomposition.stl": 3, "decomposition.smoother": 3, "decomposition.decompose": 3,
     # 4 detection
     "detection.detectors": 4, "detection.episodes": 4,
     # 5 replay engine

@@ -17,16 +17,9 @@ import pytest
 from statsmodels.datasets import co2
 from statsmodels.tsa.seasonal import MSTL, STL
 
-from calibrate.decomposition.stl_kernel import (
-    exact_div,
-    linear_smoother,
-    mstl_fit,
-    seasonal_matrix,
-    stl_config,
-    stl_fit,
-    stl_fit_windows,
-    trend_matrix,
-)
+from calibrate.decomposition.loess import exact_div
+from calibrate.decomposition.smoother import linear_smoother, seasonal_matrix, trend_matrix
+from calibrate.decomposition.stl import mstl_fit, stl_config, stl_fit, stl_fit_windows
 
 
 def _sm_stl(y: np.ndarray, period: int, seasonal: int, trend: int = 0, robust: bool = False,
@@ -346,19 +339,19 @@ def test_many_zero_weights_bit_identical() -> None:
 def test_all_zero_weight_window_keeps_input() -> None:
     # statsmodels' _ess: a LOESS window whose weights are all 0 gives NaN and the input
     # value is kept. Checked on the kernel's LOESS directly (plain port vs vectorised).
-    from calibrate.decomposition import stl_kernel as k
+    from calibrate.decomposition import loess, stl_core
 
     n, span = 200, 25
     y = np.random.default_rng(0).normal(size=n)
     rw = np.ones(n)
     rw[80:140] = 0.0
-    tab, toff = k._weight_table(span + 1)
+    tab, toff = loess._weight_table(span + 1)
     out = {}
     for blocked in (False, True):
-        blk, acc, hpos = k._block_scratch(7, span, span, n)
+        blk, acc, hpos = stl_core._block_scratch(7, span, span, n)
         ys = np.empty(n)
-        k._ess(y, n, span, 1, 1, True, rw, ys, np.empty(n), blk, acc, hpos, tab, toff,
-               blocked)
+        loess.ess(y, n, span, 1, 1, True, rw, ys, np.empty(n), blk, acc, hpos, tab, toff,
+                  blocked)
         out[blocked] = ys
     np.testing.assert_array_equal(out[True], out[False])
     np.testing.assert_array_equal(out[True][100:120], y[100:120])
@@ -407,23 +400,23 @@ def test_reuse_weights_same_bits_as_blocked(n: int) -> None:
 def test_reuse_weights_zero_weight_window_keeps_input() -> None:
     # Prepared weights of a window with all robustness weights 0 are NaN; the LOESS then
     # keeps the input, as statsmodels' _ess does. Compared with the plain port's _ess.
-    from calibrate.decomposition import stl_kernel as k
+    from calibrate.decomposition import loess, stl_core, stl_plan
 
     n, span = 200, 25
     y = np.random.default_rng(0).normal(size=n)
     rw = np.ones(n)
     rw[80:140] = 0.0
-    tab, toff = k._weight_table(span + 1)
-    blk, acc, hpos = k._block_scratch(7, span, span, n)
+    tab, toff = loess._weight_table(span + 1)
+    blk, acc, hpos = stl_core._block_scratch(7, span, span, n)
     want = np.empty(n)
-    k._ess(y, n, span, 1, 1, True, rw, want, np.empty(n), blk, acc, hpos, tab, toff, False)
+    loess.ess(y, n, span, 1, 1, True, rw, want, np.empty(n), blk, acc, hpos, tab, toff, False)
     blocks: list = []
-    k._series_blocks(blocks, n, span, tab, toff)
-    plan = k._pack(blocks, 1)
+    stl_plan._series_blocks(blocks, n, span, tab, toff)
+    plan = stl_plan._pack(blocks, 1)
     w = np.empty(plan.tw.shape[0])
-    k._plan_weights(*k._plan_args(plan), rw, w, np.empty((5, n)))  # 5 scratch rows
+    stl_plan._plan_weights(*stl_plan._plan_args(plan), rw, w, np.empty((5, n)))  # 5 scratch rows
     got = np.empty(n)
-    k._plan_apply(plan.info, plan.base, w, y, got, np.empty(n))
+    stl_plan._plan_apply(plan.info, plan.base, w, y, got, np.empty(n))
     np.testing.assert_array_equal(got, want)
     np.testing.assert_array_equal(got[100:120], y[100:120])
     assert np.isnan(w).any()

@@ -20,7 +20,7 @@ import numba
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from calibrate.decomposition import stl_kernel
+from calibrate.decomposition import smoother, stl
 from calibrate.settings import DetectorSettings
 
 MIN_FENCE_VALUES = 4  # fewer usable remainders in a fence window: no score
@@ -373,13 +373,13 @@ def _fence_kernel(r, q1, q3, sides, out):
 def _fit_one(y: np.ndarray, s: DetectorSettings):
     """One fit with the compiled kernel: trend, [seasonal], remainder."""
     if s.weekly_period:
-        trend, seas, resid = stl_kernel.mstl_fit(
+        trend, seas, resid = stl.mstl_fit(
             y, periods=(s.period_hours, 7 * s.period_hours), robust=s.robust
         )
         seas = np.asarray(seas)
         total = seas.sum(axis=1) if seas.ndim == 2 else seas
         return trend, [total], resid
-    trend, seas, resid = stl_kernel.stl_fit(
+    trend, seas, resid = stl.stl_fit(
         y, s.period_hours, s.seasonal_span, s.trend_span, s.robust
     )
     return trend, [seas], resid
@@ -391,7 +391,7 @@ def _fit_many(windows: np.ndarray, s: DetectorSettings):
         # all windows laid end to end: one compiled call, no copies
         flat = np.ascontiguousarray(windows).reshape(-1)
         ends = np.arange(L - 1, n * L, L, dtype=np.int64)
-        trend, seas, resid = stl_kernel.stl_fit_windows(
+        trend, seas, resid = stl.stl_fit_windows(
             flat, ends, L, s.period_hours, s.seasonal_span, s.trend_span, 0, s.robust
         )
         return trend, [seas], resid
@@ -406,7 +406,7 @@ def _fit_many(windows: np.ndarray, s: DetectorSettings):
 
 def _linear_parts(L: int, s: DetectorSettings) -> tuple[np.ndarray, list[np.ndarray]]:
     """Matrices T, S with trend = T @ y and seasonal = S @ y for a window y (cached)."""
-    sm = stl_kernel.linear_smoother(
+    sm = smoother.linear_smoother(
         L, s.period_hours, s.seasonal_span, s.trend_span, s.weekly_period
     )
     return sm.trend, [sm.seasonal]
@@ -424,7 +424,7 @@ def _forecast_row(L: int, s: DetectorSettings) -> np.ndarray:
 
 @functools.lru_cache(maxsize=16)
 def _forecast_vector(L: int, period: int, seasonal: int, trend: int, weekly: bool) -> np.ndarray:
-    sm = stl_kernel.linear_smoother(L, period, seasonal, trend, weekly)
+    sm = smoother.linear_smoother(L, period, seasonal, trend, weekly)
     lag = 7 * period if weekly else period
     return np.ascontiguousarray(sm.trend[L - 1] + sm.seasonal[L - lag])
 
@@ -432,5 +432,5 @@ def _forecast_vector(L: int, period: int, seasonal: int, trend: int, weekly: boo
 @functools.lru_cache(maxsize=16)
 def _fitted_matrix(L: int, period: int, seasonal: int, trend: int, weekly: bool) -> np.ndarray:
     return np.ascontiguousarray(
-        stl_kernel.linear_smoother(L, period, seasonal, trend, weekly).fitted
+        smoother.linear_smoother(L, period, seasonal, trend, weekly).fitted
     )

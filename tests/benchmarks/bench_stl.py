@@ -2,11 +2,11 @@
 
 Compares, on invented hourly counts (period 24, seasonal span 7):
 
-- one fit: `stl_kernel.stl_fit` versus `statsmodels.tsa.seasonal.STL(...).fit()`, for
+- one fit: `stl.stl_fit` versus `statsmodels.tsa.seasonal.STL(...).fit()`, for
   168, 336 and 672 points, non-robust and robust;
 - a batch of 200 consecutive windows: `stl_fit_windows` versus one statsmodels fit per
   window;
-- MSTL with periods (24, 168) on 672 points: `stl_kernel.mstl_fit` versus statsmodels'
+- MSTL with periods (24, 168) on 672 points: `stl.mstl_fit` versus statsmodels'
   `MSTL`.
 
 Cores: every ratio is measured with numba and BLAS limited to one thread, so both sides
@@ -41,13 +41,8 @@ sys.path.insert(0, os.path.join(os.path.dirname(__file__), "..", ".."))
 
 from _repeat import add_runs_flag, ratios, repeat, repeat_many, spread  # noqa: E402
 
-from calibrate.decomposition.stl_kernel import (  # noqa: E402
-    _smoother,
-    linear_smoother,
-    mstl_fit,
-    stl_fit,
-    stl_fit_windows,
-)
+from calibrate.decomposition.smoother import _smoother, linear_smoother  # noqa: E402
+from calibrate.decomposition.stl import mstl_fit, stl_fit, stl_fit_windows  # noqa: E402
 
 
 def per_call(fn: Callable[[], object], min_time: float) -> float:
