@@ -318,7 +318,7 @@ def ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff, 
         ys[0] = y[0]
         return
     newnj = min(njump, n - 1)
-    nleft = 1
+    nleft = ONE
     nright = n
     if len_ >= n and newnj == 1 and blocked:
         _loess_fixed(y, n, len_, ideg, ONE, n, ONE, n, userw, rw, tab, toff, ys, blk, acc, hpos)
@@ -341,7 +341,7 @@ def ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff, 
                 ys[i] = y[i]
         return
     if len_ >= n:
-        nleft = 1
+        nleft = ONE
         nright = n
         i = 0
         while i < n:
@@ -351,7 +351,7 @@ def ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff, 
             i += newnj
     elif newnj == 1:
         nsh = (len_ + 2) // 2
-        nleft = 1
+        nleft = ONE
         nright = len_
         i = 0
         while i < n:
@@ -367,7 +367,7 @@ def ess(y, n, len_, ideg, njump, userw, rw, ys, res, blk, acc, hpos, tab, toff, 
         i = 0
         while i < n:
             if (i + 1) < nsh:
-                nleft = 1
+                nleft = ONE
                 nright = len_
             elif (i + 1) >= (n - nsh + 1):
                 nleft = n - len_ + 1
