@@ -14,12 +14,14 @@ from typing import Any
 
 from calibrate import api, errors
 from calibrate.api import Session
-from calibrate.engine.executors import Executor
+from calibrate.engine.executors import Executor, make_executor
 from calibrate.errors import CalibrationError, InputError, UsageError
 from calibrate.feedback.retune import retune, retune_paths, write_retune_outputs
 from calibrate.inputs.workspace import Goal
+from calibrate.outputs import check_outputs, load_config, load_provenance, write_config
 from calibrate.reporting.report import step, steps_bar, write_config_report, write_report
-from calibrate.tuning.search import labels_line, tune, tuning_incidents
+from calibrate.tuning.evaluate import labels_line
+from calibrate.tuning.search import study_result, tune, tuning_incidents
 from calibrate.tuning.summaries import (
     changed_settings_line,
     fold_lines,
@@ -36,7 +38,6 @@ def cli_tune(args: Any) -> int:
     Exit 0 with the config written; 2 when no setting meets the goal (nothing
     written, the best trade-offs printed).
     """
-    from calibrate.outputs import check_outputs
 
     out = Path(args.out)
     force = bool(getattr(args, "force", False))
@@ -53,7 +54,6 @@ def cli_tune(args: Any) -> int:
         if not mb > 0:
             raise InputError("--max-alerts-per-analyst-day", f"must be positive, but got {mb!r}")
         goal = replace(goal, max_alerts_per_analyst_day=float(mb))
-    from calibrate.engine.executors import make_executor
 
     # one executor for the search and the report: the workers start once
     executor = make_executor(getattr(args, "engine", "local"), getattr(args, "workers", None),
@@ -66,8 +66,6 @@ def cli_tune(args: Any) -> int:
 
 def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
                     executor: Executor) -> int:
-    from calibrate.outputs import write_config
-    from calibrate.reporting.report import write_report
 
     tune_by = ses.ws.search.tune_by
     if tune_by != "group" and ses.ws.detector.groups:
@@ -115,7 +113,6 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
 
 def cli_report(args: Any) -> int:
     """`calibrate report WORKSPACE (--config C | --study [NAME]) --out DIR`."""
-    from calibrate.outputs import check_outputs, load_config, load_provenance
 
     config_path, study = getattr(args, "config", None), getattr(args, "study", None)
     if (config_path is None) == (study is None):
@@ -128,8 +125,6 @@ def cli_report(args: Any) -> int:
     if ses.incidents is None:
         raise CalibrationError(f"{ses.ws.file}: no [incidents] path; a report needs incidents")
     if study is not None:
-        from calibrate.engine.executors import make_executor
-        from calibrate.tuning.search import study_result
 
         executor = make_executor(args.engine, args.workers, args.scheduler)
         bar = steps_bar(progress, total=5)
@@ -157,7 +152,6 @@ def cli_report(args: Any) -> int:
 
 def cli_retune(args: Any) -> int:
     """`calibrate retune WORKSPACE --verdicts F --out C [--previous P] [--report D]`."""
-    from calibrate.outputs import check_outputs, load_config
 
     out = Path(args.out)
     paths = retune_paths(out, Path(args.report) if args.report else None)

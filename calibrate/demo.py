@@ -18,6 +18,7 @@ from calibrate.feedback.review import review_frame
 from calibrate.inputs.checks import check_workspace
 from calibrate.outputs import check_outputs, write_config, write_table, write_text
 from calibrate.reporting.report import write_report
+from calibrate.sample import generate_sample
 from calibrate.tuning.search import tune
 
 # what the demo writes into its folder (the study journal is continued, not replaced)
@@ -28,7 +29,6 @@ FOLDERS = ("workspace", "report")
 
 def run_demo(args) -> int:
     """Run the demo; `args` has out, trials, engine, workers, scheduler, force."""
-    from calibrate.sample import generate_sample
 
     t_start = time.perf_counter()
     out = Path(args.out)

@@ -33,7 +33,7 @@ from calibrate.outputs import load_config, load_provenance
 from calibrate.scoring.figures import validation_verdict
 from calibrate.scoring.matching import match, period_filter
 from calibrate.scoring.tradeoffs import load_axis
-from calibrate.tuning import search, search_space, summaries
+from calibrate.tuning import evaluate, search, search_space, summaries
 from tests.synthetic import make_workspace
 
 SEARCH = "fence_window_hours = [48, 72]\nseasonal_span = [7, 11]\ntrials = 4"
@@ -310,12 +310,12 @@ def test_known_false_alerts_with_a_solved_min_impact(ses):
     assert ev.min_impact == {"impressions": 30.0, "clicks": 15.0}
     analysts = sum(ses.analysts.values())
     assert ev.value == pytest.approx(
-        (len(got) + search.KNOWN_FALSE_PENALTY * expected) / (analysts * (split - first) / 24))
+        (len(got) + evaluate.KNOWN_FALSE_PENALTY * expected) / (analysts * (split - first) / 24))
 
 
 def test_min_impact_is_solved_per_metric_in_its_own_units(tmp_path, monkeypatch):
     ses = api.open_session(make_workspace(tmp_path / "a", search=SEARCH))
-    assert search.solved_min_impact(ses)  # solved by default
+    assert search_space.solved_min_impact(ses)  # solved by default
     assert "min_impact" not in {p.name for p in search.build_space(ses)}
     split = ses.history.n_hours - 168
     ranges = search.impact_ranges(ses, None, split)
@@ -326,7 +326,7 @@ def test_min_impact_is_solved_per_metric_in_its_own_units(tmp_path, monkeypatch)
         assert ranges[m] == (0.0, float(np.nanmedian(vals)))
     assert ranges["impressions"][1] > 5 * ranges["clicks"][1]  # different units
     grids = search.impact_grids(ranges, [{"impressions": 0.0, "clicks": 0.0}])
-    assert len(grids["impressions"]) == len(grids["clicks"]) == len(search.relative_grid())
+    assert len(grids["impressions"]) == len(grids["clicks"]) == len(search_space.relative_grid())
     assert grids["clicks"][0] == 0.0 and grids["clicks"][-1] == pytest.approx(
         ranges["clicks"][1], rel=1e-3)
     # today's values off the grid get one more level of their own
@@ -345,7 +345,7 @@ def test_min_impact_is_solved_per_metric_in_its_own_units(tmp_path, monkeypatch)
     solved_name = search.study_name_for(ses, ses.ws.goal, None)
     listed = SEARCH + "\nmin_impact = [0.0]"
     ses_l = api.open_session(make_workspace(tmp_path / "d", search=listed))
-    assert not search.solved_min_impact(ses_l)
+    assert not search_space.solved_min_impact(ses_l)
     assert "min_impact" in {p.name for p in search.build_space(ses_l)}
     # a study whose trials sampled the minimum impact is never continued by one solving
     # it (its trials lack the solved value): the name records what is solved
@@ -373,7 +373,7 @@ def test_known_false_alerts_are_counted_and_penalised(ses):
     assert marked.k == plain.k == 4.0
     assert marked.known_false_alerts == expected >= 2
     assert marked.value == pytest.approx(
-        plain.value * (plain.alerts + search.KNOWN_FALSE_PENALTY * expected) / plain.alerts)
+        plain.value * (plain.alerts + evaluate.KNOWN_FALSE_PENALTY * expected) / plain.alerts)
 
 
 def test_impossible_goal_says_which_constraint_and_by_how_much(ses, tmp_path):
@@ -590,7 +590,7 @@ def test_greedy_over_any_candidate_stops_at_a_local_optimum():
     caught = [rng.random((n_c, n_inc)) < 0.6 for _ in range(n_g)]
     cost = [rng.integers(0, 60, n_c).astype(float) for _ in range(n_g)]
     for target in (0.0, 0.3, 0.6, 1.0):
-        idx = search.greedy_multipliers(caught, cost, target, forward_only=[False] * n_g)
+        idx = evaluate.greedy_multipliers(caught, cost, target, forward_only=[False] * n_g)
 
         def miss(ix):
             got = np.logical_or.reduce([caught[g][ix[g]] for g in range(n_g)])
@@ -647,7 +647,7 @@ def test_greedy_matches_the_one_at_a_time_reference_with_ties():
         caught = [rng.random((n_c, n_inc)) < 0.7 for _ in range(n_g)]
         cost = [rng.integers(0, 6, n_c).astype(float) for _ in range(n_g)]  # many ties
         target = float(rng.choice([0.0, 0.2, 0.4, 1.0]))
-        assert search.greedy_multipliers(caught, cost, target) == \
+        assert evaluate.greedy_multipliers(caught, cost, target) == \
             _greedy_reference(caught, cost, target)
 
 
@@ -662,7 +662,7 @@ def test_greedy_group_multipliers_stop_at_a_local_optimum():
         caught.append(c)
         cost.append(np.sort(rng.integers(0, 50, n_k))[::-1].astype(float))
     for target in (0.0, 0.2, 0.4, 1.0):
-        idx = search.greedy_multipliers(caught, cost, target)
+        idx = evaluate.greedy_multipliers(caught, cost, target)
 
         def miss(ix):
             got = np.logical_or.reduce([caught[g][ix[g]] for g in range(n_g)])

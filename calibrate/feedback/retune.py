@@ -31,14 +31,19 @@ import pandas as pd
 from calibrate import api
 from calibrate.detection.episodes import Episodes
 from calibrate.engine.executors import make_executor
-from calibrate.engine.replay import ReplayResult, alerts_frame
+from calibrate.engine.replay import ReplayResult, alerts_frame, sweep_codes
 from calibrate.errors import InputError
 from calibrate.feedback.review import VERDICTS, read_reviewed
 from calibrate.inputs.incidents import Incidents, incidents_from_frame, read_text_csv
+from calibrate.outputs import check_outputs, write_config, write_table
+from calibrate.reporting.build import settings_rows
+from calibrate.reporting.render import CSS
+from calibrate.reporting.report import write_report, write_report_data_files
 from calibrate.scoring.curves import multiplier_curve
 from calibrate.scoring.figures import HELD_OUT_NOTE
-from calibrate.scoring.matching import match, route_teams
+from calibrate.scoring.matching import match, period_filter, route_teams
 from calibrate.settings import DetectorConfig
+from calibrate.tuning.search import split_hour, tune
 
 CHECKED_COLUMNS = ("level", "metric", "start")
 
@@ -259,7 +264,6 @@ def compare(
     known_false: Incidents,
 ) -> Comparison:
     """Figures, alerts per team, incidents gained and lost, known false alarms still raised."""
-    from calibrate.reporting.build import settings_rows
 
     first = max(api.first_scored_hour(old.config, ses.ws), api.first_scored_hour(new.config,
                                                                                   ses.ws))
@@ -314,8 +318,6 @@ def explain_still_raised(
     """Why known false alarms are still raised: the fence multiplier and the minimum
     impact that would each drop one, and the miss rate there (everything else as in the
     new settings; the minimum impact raised for every series alike)."""
-    from calibrate.engine.replay import sweep_codes
-    from calibrate.scoring.matching import period_filter
 
     out = []
     ep = new.episodes
@@ -435,7 +437,6 @@ def retune(
     if added_incidents is not None:
         added = read_text_csv(Path(added_incidents))
         own_added = incidents_from_frame(added, ses.ws, ses.history, str(added_incidents))
-        from calibrate.tuning.search import split_hour
 
         # labelled while looking at the held-out weeks: that check is then not independent
         added_held_out = int((own_added.start >= split_hour(ses)).sum())
@@ -475,14 +476,13 @@ def _retune_steps(ses, verdicts_path, previous, trials, tuner, executor, progres
                   added=None):
     rp = api.make_replayer(ses, progress=progress, executor=executor)
     old = rp.replay(previous)
-    from calibrate.tuning.search import split_hour
 
     verdicts = read_verdicts(verdicts_path, ses, old, split_hour(ses))
     merged = merge_incidents(ses, verdicts, f"{verdicts_path} (merged with the incidents)",
                              added)
     ses2 = replace(ses, incidents=merged)
     if tuner is None:
-        from calibrate.tuning.search import tune as tuner
+        tuner = tune
     result = tuner(ses2, trials=trials, warm_start=[previous],
                    known_false=verdicts.known_false, progress=progress, executor=executor,
                    **tune_kwargs)
@@ -552,7 +552,6 @@ def comparison_html(res: RetuneResult, png: bytes) -> str:
     import base64
     import html
 
-    from calibrate.reporting.render import CSS
 
     md = comparison_markdown(res)
     body = []
@@ -604,9 +603,7 @@ def retune_paths(out: Path, report: Path | None) -> tuple[Path, Path, Path, Path
 def write_retune_outputs(res: RetuneResult, out: Path, report: Path | None,
                          force: bool = False) -> list[Path]:
     """Write the new config, merged incidents, known false alarms and the comparison."""
-    from calibrate.outputs import check_outputs, write_config, write_table
     from calibrate.reporting import plots
-    from calibrate.reporting.report import write_report, write_report_data_files
 
     out, inc_path, false_path, report = retune_paths(out, report)
     check_outputs((out, inc_path, false_path), force, folders=[report])

@@ -19,8 +19,10 @@ import numpy as np
 import pandas as pd
 
 from calibrate import api
-from calibrate.engine.replay import MetricScores, ReplayResult, sweep_codes
+from calibrate.engine.replay import MetricScores, ReplayResult, sweep, sweep_codes, sweep_runs
+from calibrate.formulas import never_negative
 from calibrate.inputs.incidents import ANY_METRIC
+from calibrate.inputs.workspace import BASE_GROUP
 from calibrate.reporting.formats import finite, pct, plain
 from calibrate.reporting.report_data import (
     CurveData,
@@ -31,11 +33,14 @@ from calibrate.reporting.report_data import (
     TradeoffData,
     VolumeData,
 )
-from calibrate.scoring.curves import multiplier_curve
+from calibrate.scoring.curves import impact_curves, multiplier_curve
 from calibrate.scoring.figures import HELD_OUT_NOTE, validation_verdict
+from calibrate.scoring.intervals import wilson
 from calibrate.scoring.matching import match, period_filter
 from calibrate.scoring.tradeoffs import load_axis, pareto_front
 from calibrate.settings import DetectorConfig
+from calibrate.tuning.evaluate import labels_line
+from calibrate.tuning.search_space import impact_grids, impact_ranges, typical_level
 
 MAX_MISSED_PANELS = 20
 FALSE_ALERT_PANELS = 3
@@ -130,13 +135,12 @@ def build_report_data(
     volume = volume_data(ses, chosen, first, split)
     incidents, delays = incident_rows(periods, hist.hours)
     panels, left_out = series_panels(ses, chosen, first, n, incidents)
-    from calibrate.tuning import search
 
     verdict, reasons = validation_verdict(held_out, goal)
     validation = {
         "verdict": verdict, "reasons": reasons,
         "interval_method": periods[0].figures.get("interval_method", ""),
-        "labels": search.labels_line(periods[0].figures["incidents"], goal),
+        "labels": labels_line(periods[0].figures["incidents"], goal),
         "independent": not derived_from_held_out,
     }
     if derived_from_held_out:
@@ -368,7 +372,6 @@ def group_impact_data(
     """For a config with groups: per group, recall and alerts per analyst per day (of
     every group together) as that group's minimum impact moves at its chosen k, every
     other group at its chosen settings. Grids as in `impact_data`, per group."""
-    from calibrate.inputs.workspace import BASE_GROUP
 
     config = chosen.config
     owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
@@ -390,11 +393,7 @@ def group_impact_data(
 def _impact_curve(ses, chosen, mine, rest, s, group, start, end, teams, budgets) -> CurveData:
     """Recall and load of all series as the minimum impacts of those in `mine` (settings
     `s`, search group `group`) move together over their per-metric grids (x: the share of
-    each metric's range, `search.impact_grids`), those in `rest` at their own settings."""
-    from calibrate.engine.replay import sweep, sweep_runs
-    from calibrate.scoring.curves import impact_curves
-    from calibrate.scoring.intervals import wilson
-    from calibrate.tuning import search
+    each metric's range, `impact_grids`), those in `rest` at their own settings."""
 
     inc = period_filter(ses.incidents, start, end)
     early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
@@ -406,11 +405,11 @@ def _impact_curve(ses, chosen, mine, rest, s, group, start, end, teams, budgets)
     team_o = {} if others is None else pd.Series(others.team).value_counts().to_dict()
     n_o = 0 if others is None else len(others)
     metrics = sorted({m for _, m in mine})
-    ranges = {m: r for m, r in search.impact_ranges(ses, group, end).items() if m in metrics}
-    ranges.update({m: (0.0, search.typical_level(ses, m, end)) for m in metrics
+    ranges = {m: r for m, r in impact_ranges(ses, group, end).items() if m in metrics}
+    ranges.update({m: (0.0, typical_level(ses, m, end)) for m in metrics
                    if m not in ranges})
     own = {m: s.impact_for(m) for m in metrics}
-    grids = search.impact_grids(ranges, [own])
+    grids = impact_grids(ranges, [own])
     first = metrics[0]
     lo, hi = ranges[first]
     share = (grids[first] - lo) / (hi - lo) if hi > lo else np.zeros(len(grids[first]))
@@ -623,7 +622,6 @@ def _panel(
 def can_be_negative(ws: Any, metric: str, values: np.ndarray) -> bool:
     """False for a measure or a formula that `formulas.never_negative` clears, when
     none of the series' `values` is negative either (a measure may hold refunds)."""
-    from calibrate.formulas import never_negative
 
     formula = ws.metrics.get(metric)
     if formula is not None and not never_negative(formula):

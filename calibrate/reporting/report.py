@@ -22,11 +22,14 @@ from tqdm.auto import tqdm
 from calibrate import api
 from calibrate.engine.replay import ReplayResult
 from calibrate.errors import CalibrationError
+from calibrate.feedback.review import review_frame
+from calibrate.outputs import write_folder
 from calibrate.reporting.build import build_report_data
 from calibrate.reporting.formats import plain
 from calibrate.reporting.render import render_html, render_markdown, render_plots, summary_dict
 from calibrate.reporting.report_data import ReportData
 from calibrate.settings import DetectorConfig
+from calibrate.tuning import rolling, summaries
 
 
 def write_report_data(data: ReportData, out_dir: str | Path, force: bool = True,
@@ -51,13 +54,11 @@ def write_report_data_files(files: Mapping[str, bytes], out_dir: str | Path,
                             force: bool = False) -> Path:
     """Write `files` as the folder `out_dir` (`calibrate.outputs.write_folder`: built
     complete first; with `force` only this tool's files in an existing folder change)."""
-    from calibrate.outputs import write_folder
 
     return write_folder(files, out_dir, force=force)
 
 
 def _review_csv(result: ReplayResult) -> bytes:
-    from calibrate.feedback.review import review_frame
 
     return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
 
@@ -139,7 +140,6 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
         derived_from_held_out=derived_from_held_out,
     ))
     if getattr(result, "folds", None):
-        from calibrate.tuning import rolling, summaries
 
         data.validation.update(
             verdict=result.verdict, reasons=list(result.verdict_reasons),

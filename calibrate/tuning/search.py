@@ -83,15 +83,12 @@ from calibrate.scoring.matching import match, period_filter
 from calibrate.scoring.tradeoffs import load_axis, pareto_front
 from calibrate.settings import DetectorConfig, DetectorSettings
 from calibrate.tuning import rolling, studies
-from calibrate.tuning.evaluate import (  # `X as X`: re-exported as calibrate.tuning.search.X
-    KNOWN_FALSE_PENALTY as KNOWN_FALSE_PENALTY,
-    Evaluation as Evaluation,
+from calibrate.tuning.evaluate import (
     Evaluator,
-    greedy_multipliers as greedy_multipliers,
     json_safe,
     labels_line,
 )
-from calibrate.tuning.search_space import (  # `X as X`: re-exported as calibrate.tuning.search.X
+from calibrate.tuning.search_space import (
     Param,
     build_space,
     candidate_values,
@@ -103,11 +100,8 @@ from calibrate.tuning.search_space import (  # `X as X`: re-exported as calibrat
     impact_label,
     impact_ranges,
     params_of,
-    relative_grid as relative_grid,
     settings_of,
     solved_groups,
-    solved_min_impact as solved_min_impact,
-    typical_level as typical_level,
 )
 
 GRID_POINTS = 80

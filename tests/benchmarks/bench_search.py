@@ -65,7 +65,7 @@ from _sample import sample_copy  # noqa: E402
 from calibrate import api  # noqa: E402
 from calibrate.engine.executors import make_executor  # noqa: E402
 from calibrate.errors import InputError  # noqa: E402
-from calibrate.tuning import search  # noqa: E402
+from calibrate.tuning import search, search_space  # noqa: E402
 
 
 @dataclass
@@ -99,7 +99,7 @@ def plain_search(ses, trials: int, engine: str, first: int, split: int, seed: in
     current = ses.ws.detector
     # the tune solves each watched metric's minimum impact in these ranges; the plain
     # search samples it there (ranges widened to today's values, as the tune's grid is)
-    solved = search.solved_min_impact(ses)
+    solved = search_space.solved_min_impact(ses)
     ranges = search.impact_ranges(ses, None, split) if solved else {}
     today_m = search.current_impacts(ses, current, None) if solved else {}
     ranges = {m: (min(lo, today_m[m]), max(hi, today_m[m])) for m, (lo, hi) in ranges.items()}
@@ -194,7 +194,7 @@ def cached_trial_seconds(ses, res) -> float:
     ks = np.geomspace(ses.ws.search.multiplier_low, ses.ws.search.multiplier_high,
                       search.GRID_POINTS)
     grids = None
-    if search.solved_min_impact(ses):
+    if search_space.solved_min_impact(ses):
         grids = search.impact_grids(search.impact_ranges(ses, None, res.split_hour),
                                     [search.current_impacts(ses, current, None)])
     rp = api.make_replayer(ses, engine="serial", fence_windows=tuple(windows), progress=False)
