@@ -142,22 +142,6 @@ def load_history(ws: Workspace) -> History:
     return rows.finish(source_hash=reader.digest())
 
 
-def history_from_frame(
-    frame: pd.DataFrame, ws: Workspace, name: str = "history", first_row: int = 2
-) -> History:
-    """Same as `load_history` for rows already in memory (row numbers start at `first_row`)."""
-    src = ws.history
-    columns = [src.time_column, *src.key_columns, *ws.measures]
-    for c in columns:
-        if c not in frame.columns:
-            raise InputError(f"{name} column '{c}'", "column is missing")
-    if len(frame) == 0:
-        raise InputError(name, "has no data rows")
-    rows = RowParser(ws, name, first_row)
-    rows.add(frame[columns])
-    return rows.finish()
-
-
 def _display(path: Path, root: Path) -> str:
     try:
         return str(path.relative_to(root))

@@ -13,7 +13,7 @@ messages count the header as row 1.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -417,11 +417,6 @@ def check_overlaps(
             )
         if end[p] > reach_end:
             reach_end, reach_pos = int(end[p]), int(p)
-
-
-def with_team(incidents: Incidents, team: np.ndarray) -> Incidents:
-    """Copy of `incidents` with the team column replaced."""
-    return replace(incidents, team=np.asarray(team, dtype=object))
 
 
 def _utc(hours: pd.DatetimeIndex) -> pd.DatetimeIndex:
