@@ -296,3 +296,73 @@ def test_a_worker_that_retires_mid_run_has_its_batches_rerun(monkeypatch):
             assert victim not in ex.shared_keys
         finally:
             ex.close()
+
+
+def test_cached_streams_hold_no_remainder_and_derive_it_bit_for_bit():
+    """Reference: `remainder_stream` run on each series alone. The replayer's cache holds
+    the expected values and the quartiles only (the remainder is one array per setting
+    less); the remainder it hands out, value - expected, is the stream's own bit for
+    bit, NaN at the same hours (before the first fit and at undefined hours inside the
+    replay), in-fit and forecast alike."""
+    from calibrate.decomposition.decompose import remainder_stream
+    from calibrate.engine.replay import Replayer
+    from calibrate.inputs.history import History, LevelSeries
+    from calibrate.settings import DetectorSettings
+
+    rng = np.random.default_rng(3)
+    n = 24 * 21
+    t = np.arange(n)
+    y = 100 * (1.5 + np.sin(2 * np.pi * t / 24)) + rng.normal(0, 5, (3, n))
+    y[0, 300:304] = np.nan  # undefined hours (a derived metric's 0/0)
+    y[2, 400] = np.nan
+    hours = pd.date_range("2026-01-05", periods=n, freq="h", tz="UTC")
+    keys = pd.DataFrame({"series": ["s1", "s2", "s3"]})
+    hist = History(hours=hours, levels={"series": LevelSeries(
+        "series", ("series",), keys, {"x": y})}, key_columns=("series",))
+    rp = Replayer(hist, progress=False)
+    nan_inside = 0
+    for mode in ("fit", "forecast"):
+        s = DetectorSettings(decomposition_window_hours=168, fence_window_hours=48,
+                             expected_value=mode)
+        (st,) = rp.streams(DetectorConfig(base=s)).values()
+        windows = tuple(sorted(st.q1))
+        assert st.nbytes == st.expected.nbytes * (1 + 2 * len(windows))
+        got = st.remainder
+        for r in range(3):
+            ref = remainder_stream(y[r], s, windows).remainder
+            np.testing.assert_array_equal(got[r], ref)
+            nan_inside += int(np.isnan(ref[168:]).sum())
+    assert nan_inside == 2 * 5  # the undefined hours were compared, in both modes
+
+
+def _block(shared: dict, task: int) -> np.ndarray:
+    return np.full(100_000, float(task + shared["offset"]))
+
+
+def test_local_executor_lets_go_of_results_it_has_yielded():
+    """A result the local engine has handed over is not kept alive by the engine while
+    later tasks are still coming (the replay copies each task's rows in as it arrives;
+    a pool that kept every result would hold a whole setting's streams twice). Checked
+    with weak references: every result but the last one taken is freed."""
+    import gc
+    import weakref
+
+    from calibrate.engine.executors import LocalExecutor
+
+    ex = LocalExecutor(workers=2)
+    try:
+        it = ex.run(_block, {"offset": 1}, list(range(6)))
+        refs = []
+        seen = set()
+        for _ in range(5):
+            i, arr = next(it)
+            assert arr[0] == i + 1
+            seen.add(i)
+            refs.append(weakref.ref(arr))
+            del arr
+        gc.collect()
+        assert len(seen) == 5
+        assert [r() is None for r in refs[:-1]] == [True] * 4
+        it.close()
+    finally:
+        ex.close()

@@ -228,11 +228,14 @@ class LocalExecutor(Executor):
             with _script_not_rerun(fn):  # workers start on the first submits
                 futures = [pool.submit(_run_task, self._token, fn, i, t)
                            for i, t in enumerate(tasks)]
+        pending = set(futures)
+        del futures  # a finished future holds its result: only `pending` keeps them
         try:
-            for fut in as_completed(futures):
+            for fut in as_completed(list(pending)):
+                pending.discard(fut)
                 yield fut.result()
         finally:
-            for fut in futures:
+            for fut in pending:
                 fut.cancel()
 
     def close(self) -> None:

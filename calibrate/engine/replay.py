@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate.decomposition.decompose import Stream, fence_scores, remainder_stream
+from calibrate.decomposition.decompose import fence_scores, remainder_stream
 from calibrate.detection.detectors import episode_runs, flatline_flags
 from calibrate.detection.episodes import CodedEpisodes, Episodes
 from calibrate.engine.executors import Executor, SerialExecutor, batched
@@ -32,16 +32,27 @@ SCORE_BLOCK_ROWS = 250_000
 
 @dataclass
 class StreamSet:
-    """Remainder streams of every series of one level and metric (n_series, n_hours)."""
+    """Remainder streams of every series of one level and metric (n_series, n_hours).
 
+    `value` is the history's own array (not a copy); the remainder is not stored but
+    derived from it: `remainder_stream` computes it as value - expected wherever the
+    expected value exists and NaN elsewhere, which is what value - expected gives
+    (NaN where either is NaN).
+    """
+
+    value: np.ndarray
     expected: np.ndarray
-    remainder: np.ndarray
     q1: dict[int, np.ndarray]
     q3: dict[int, np.ndarray]
 
     @property
+    def remainder(self) -> np.ndarray:
+        return self.value - self.expected
+
+    @property
     def nbytes(self) -> int:
-        arrays = [self.expected, self.remainder, *self.q1.values(), *self.q3.values()]
+        """Bytes held by the cache (the history's `value` is not counted)."""
+        arrays = [self.expected, *self.q1.values(), *self.q3.values()]
         return sum(a.nbytes for a in arrays)
 
 
@@ -71,7 +82,10 @@ class MetricScores:
 def _stream_task(shared: dict, task: tuple) -> tuple:
     level, metric, rows, settings, windows = task
     values = shared[(level, metric)]
-    out = [remainder_stream(values[r], settings, windows) for r in rows]
+    out = []
+    for r in rows:
+        st = remainder_stream(values[r], settings, windows)
+        out.append((st.expected, st.q1, st.q3))  # the remainder is value - expected
     return level, metric, rows, out
 
 
@@ -211,16 +225,19 @@ class Replayer:
             for rows in batched(range(n_s), SERIES_PER_TASK):
                 tasks.append((lv, m, np.array(rows), s, windows))
         if tasks:
-            results: dict[tuple, list] = {}
+            # each task's rows are copied in as it arrives, so the per-series results
+            # never pile up beside the assembled arrays
+            sets = {(lv, m): _empty_set(self.history, lv, m, windows)
+                    for lv, m, _s, windows in need.values()}
             bar = tqdm(
                 total=len(tasks), desc="replay", unit="task", disable=not self.progress, leave=False
             )
             for _, (lv, m, rows, out) in self.executor.run(_stream_task, self.shared, tasks):
-                results.setdefault((lv, m), []).append((rows, out))
+                _fill(sets[(lv, m)], rows, out)
                 bar.update(1)
             bar.close()
-            for key, (lv, m, _s, windows) in need.items():
-                self.cache[key] = _assemble(results[(lv, m)], self.history, lv, windows)
+            for key, (lv, m, _s, _windows) in need.items():
+                self.cache[key] = sets[(lv, m)]
                 self.fits += self.history.levels[lv].n_series
         keys = {(lv, m): self._key(lv, m, config.for_series(lv, m))
                 for lv in self.levels for m in self.metrics}
@@ -247,14 +264,15 @@ class Replayer:
             s = config.for_series(lv, m)
             w = s.fence_window_hours
             q1, q3 = st.q1[w], st.q3[w]
-            score = fence_scores(st.remainder, q1, q3, s.sides)
-            value = self.history.levels[lv].values[m]
+            remainder = st.remainder
+            score = fence_scores(remainder, q1, q3, s.sides)
+            value = st.value
             if s.flatline_hours:
                 flat = flatline_flags(value, st.expected, q3 - q1, s.flatline_hours)
             else:
                 flat = np.zeros(value.shape, dtype=bool)
             out[(lv, m)] = MetricScores(
-                lv, m, s, value, st.expected, st.remainder, q1, q3, score, flat
+                lv, m, s, value, st.expected, remainder, q1, q3, score, flat
             )
         return out
 
@@ -280,21 +298,23 @@ def _shared_arrays(history: History, levels: tuple[str, ...],
     return memo[key]
 
 
-def _assemble(parts: list, history: History, level: str, windows: tuple[int, ...]) -> StreamSet:
-    n_s, n = history.levels[level].n_series, history.n_hours
-    expected = np.full((n_s, n), np.nan)
-    remainder = np.full((n_s, n), np.nan)
-    q1 = {w: np.full((n_s, n), np.nan) for w in windows}
-    q3 = {w: np.full((n_s, n), np.nan) for w in windows}
-    for rows, streams in parts:
-        for r, st in zip(rows, streams, strict=True):
-            st: Stream
-            expected[r] = st.expected
-            remainder[r] = st.remainder
-            for w in windows:
-                q1[w][r] = st.q1[w]
-                q3[w][r] = st.q3[w]
-    return StreamSet(expected, remainder, q1, q3)
+def _empty_set(history: History, level: str, metric: str,
+               windows: tuple[int, ...]) -> StreamSet:
+    """A `StreamSet` to be filled row by row (`_fill`): every row is written once."""
+    ls = history.levels[level]
+    shape = (ls.n_series, history.n_hours)
+    return StreamSet(ls.values[metric], np.full(shape, np.nan),
+                     {w: np.full(shape, np.nan) for w in windows},
+                     {w: np.full(shape, np.nan) for w in windows})
+
+
+def _fill(st: StreamSet, rows: np.ndarray, out: list) -> None:
+    """Copy one task's per-series (expected, q1, q3) into the rows `rows` of `st`."""
+    for r, (expected, q1, q3) in zip(rows, out, strict=True):
+        st.expected[r] = expected
+        for w in st.q1:
+            st.q1[w][r] = q1[w]
+            st.q3[w][r] = q3[w]
 
 
 def sweep(
