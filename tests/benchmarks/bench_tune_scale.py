@@ -14,11 +14,11 @@ campaigns give 1,105 series, 4,420 series-metrics). Market-local daily cycles,
 weekends, AR(1) noise, lasting budget changes, a few missing rows per series, and one
 labelled incident per 10 campaigns (spikes, drops, outages, click-tracking breaks,
 spend spikes, click-through collapses; none in the first 4 weeks) at the three levels.
-Owners route the markets and some advertisers to 4 teams with 2-4 analysts each, and
-the goal gives every team its own alert budget. The `[search]` space is the sample's
-(fit or forecast, two decomposition windows, three seasonal spans, four fence windows,
-three flatline lengths); the fence multiplier and each metric's minimum impact are
-solved as in every tune.
+Owners route the markets and some advertisers to 4 teams with 4-8 analysts each, and
+the goal gives every team its own alert budget (one some setting meets). The
+`[search]` space is the sample's (fit or forecast, two decomposition windows, three
+seasonal spans, four fence windows, three flatline lengths); the fence multiplier and
+each metric's minimum impact are solved as in every tune.
 
 The workspace is written once to a temporary folder (Parquet history, CSV incidents and
 owners, `workspace.toml`); then every run is one fresh `python -m calibrate tune` process
@@ -69,8 +69,10 @@ TARGET_SECONDS = 600.0
 TARGET_BYTES = 2 * 2**30
 N_MARKETS = 5
 MARKET_OFFSETS = (0, 1, 2, -5, 9)  # UTC offsets of the invented markets (hours)
-TEAMS = {"team-a": 3, "team-b": 4, "team-c": 2, "team-d": 3}  # analysts per team
-BUDGETS = {"team-a": 15.0, "team-b": 15.0, "team-c": 20.0, "team-d": 15.0}
+# analysts per team and alert budgets (per analyst per day) that some setting meets: a
+# goal nothing meets would time the "no setting meets the goal" path instead
+TEAMS = {"team-a": 6, "team-b": 8, "team-c": 4, "team-d": 6}
+BUDGETS = {"team-a": 20.0, "team-b": 20.0, "team-c": 20.0, "team-d": 20.0}
 KINDS = ("spike", "drop", "outage", "clicks_flat", "spend_spike", "ctr_collapse")
 
 WORKSPACE_TOML = """\
