@@ -10,8 +10,8 @@ Compares, on invented hourly counts (period 24, seasonal span 7):
   `MSTL`.
 
 Cores: every ratio is measured with numba and BLAS limited to one thread, so both sides
-run on one core. The batch is also timed with every numba thread, printed as throughput
-(fits per second per core), with no ratio. After compilation, each run times both sides
+run on one core (the kernels have no parallel loops: the replay's workers are one
+process per core). After compilation, each run times both sides
 back to back (each call repeated for at least `--min-time` seconds); every figure is the
 median and range over `--runs` runs (at least 3), and each ratio is computed per run.
 The kernel's results are checked against statsmodels' so the speed is not bought with
@@ -117,7 +117,6 @@ def main() -> None:
 
         print("\nbatch of 200 consecutive windows (stl_fit_windows), one core each side")
         y = _series(2000, seed=1)
-        batches = {}
         for window in args.sizes:
             ends = np.arange(window - 1, window - 1 + 200, dtype=np.int64)
             seg = y[ends[0] - window + 1: ends[0] + 1]
@@ -126,7 +125,6 @@ def main() -> None:
                           y: np.ndarray = y) -> object:
                     return stl_fit_windows(y, e, w, 24, 7, 0, 0, r)
 
-                batches[(window, robust)] = batch
                 compare(f"  window {window}, robust={robust}",
                         lambda s=seg, r=robust: STL(s, period=24, seasonal=7, robust=r).fit(),
                         {"batch": batch}, runs, mt, fits=len(ends))
@@ -139,14 +137,6 @@ def main() -> None:
                     {"kernel": lambda r=robust: mstl_fit(y, (24, 168), robust=r)}, runs, mt)
 
     numba.set_num_threads(all_threads)
-    print(f"\nbatch throughput with {all_threads} numba threads (no reference at that core "
-          "count: fits per second per core)")
-    for (window, robust), batch in batches.items():
-        batch()
-        rate = repeat(lambda b=batch: 200 / per_call(b, mt) / all_threads, runs)
-        print(f"  window {window}, robust={robust}: throughput "
-              f"{rate.fmt(',.0f', 'fits/s/core')}")
-
     print("\nlinear_smoother build (one-off per window, cached afterwards)")
     for window in args.sizes:
         def build(w: int = window) -> float:
