@@ -38,7 +38,6 @@ def cli_tune(args: Any) -> int:
     Exit 0 with the config written; 2 when no setting meets the goal (nothing
     written, the best trade-offs printed).
     """
-
     out = Path(args.out)
     force = bool(getattr(args, "force", False))
     check_outputs([out], force, folders=[getattr(args, "report", None)])
@@ -113,7 +112,6 @@ def _tune_and_write(ses: Session, args: Any, goal: Goal, out: Path, force: bool,
 
 def cli_report(args: Any) -> int:
     """`calibrate report WORKSPACE (--config C | --study [NAME]) --out DIR`."""
-
     config_path, study = getattr(args, "config", None), getattr(args, "study", None)
     if (config_path is None) == (study is None):
         raise UsageError("give either --config FILE or --study [NAME]")
@@ -152,7 +150,6 @@ def cli_report(args: Any) -> int:
 
 def cli_retune(args: Any) -> int:
     """`calibrate retune WORKSPACE --verdicts F --out C [--previous P] [--report D]`."""
-
     out = Path(args.out)
     paths = retune_paths(out, Path(args.report) if args.report else None)
     check_outputs(paths[:3], args.force, folders=paths[3:])

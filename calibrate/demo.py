@@ -29,7 +29,6 @@ FOLDERS = ("workspace", "report")
 
 def run_demo(args) -> int:
     """Run the demo; `args` has out, trials, engine, workers, scheduler, force."""
-
     t_start = time.perf_counter()
     out = Path(args.out)
     force = bool(getattr(args, "force", False))

@@ -18,7 +18,9 @@ comparison report are new files.
 
 from __future__ import annotations
 
+import base64
 import hashlib
+import html
 import json
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
@@ -264,7 +266,6 @@ def compare(
     known_false: Incidents,
 ) -> Comparison:
     """Figures, alerts per team, incidents gained and lost, known false alarms still raised."""
-
     first = max(api.first_scored_hour(old.config, ses.ws), api.first_scored_hour(new.config,
                                                                                   ses.ws))
     n = ses.history.n_hours
@@ -318,7 +319,6 @@ def explain_still_raised(
     """Why known false alarms are still raised: the fence multiplier and the minimum
     impact that would each drop one, and the miss rate there (everything else as in the
     new settings; the minimum impact raised for every series alike)."""
-
     out = []
     ep = new.episodes
     m = match(ep, still, 0, 0)
@@ -549,10 +549,6 @@ def comparison_markdown(res: RetuneResult) -> str:
 
 def comparison_html(res: RetuneResult, png: bytes) -> str:
     """The comparison report as one self-contained HTML page."""
-    import base64
-    import html
-
-
     md = comparison_markdown(res)
     body = []
     in_table = False

@@ -372,7 +372,6 @@ def group_impact_data(
     """For a config with groups: per group, recall and alerts per analyst per day (of
     every group together) as that group's minimum impact moves at its chosen k, every
     other group at its chosen settings. Grids as in `impact_data`, per group."""
-
     config = chosen.config
     owner = {key: next((i for i, g in enumerate(config.groups) if g.matches(*key)), None)
              for key in chosen.scores}
@@ -394,7 +393,6 @@ def _impact_curve(ses, chosen, mine, rest, s, group, start, end, teams, budgets)
     """Recall and load of all series as the minimum impacts of those in `mine` (settings
     `s`, search group `group`) move together over their per-metric grids (x: the share of
     each metric's range, `impact_grids`), those in `rest` at their own settings."""
-
     inc = period_filter(ses.incidents, start, end)
     early, late = ses.ws.incidents.early_hours, ses.ws.incidents.late_hours
     days = max(end - start, 1) / 24.0
@@ -622,7 +620,6 @@ def _panel(
 def can_be_negative(ws: Any, metric: str, values: np.ndarray) -> bool:
     """False for a measure or a formula that `formulas.never_negative` clears, when
     none of the series' `values` is negative either (a measure may hold refunds)."""
-
     formula = ws.metrics.get(metric)
     if formula is not None and not never_negative(formula):
         return True

@@ -54,7 +54,6 @@ def write_report_data_files(files: Mapping[str, bytes], out_dir: str | Path,
                             force: bool = False) -> Path:
     """Write `files` as the folder `out_dir` (`calibrate.outputs.write_folder`: built
     complete first; with `force` only this tool's files in an existing folder change)."""
-
     return write_folder(files, out_dir, force=force)
 
 
