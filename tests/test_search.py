@@ -468,9 +468,11 @@ def test_tuned_config_replays_to_the_figures_it_claims(tmp_path, tune_by):
         (g,) = res.config.groups
         assert (g.name, g.levels, g.metrics) == ("leaf_volume", ("campaign",), ("impressions",))
         assert {"leaf_volume", "base"} <= {p.group for p in search.build_space(ses)}
-        # the base's multiplier is solved as one more group
-        assert res.config.base.fence_multiplier in set(res.trials["k[base]"])
-        assert g.settings.fence_multiplier in set(res.trials["k[leaf_volume]"])
+        # the base's multiplier is solved as one more group, then written short: at or
+        # just above a trial's solved value (the replay below shows the same figures)
+        for m, col in ((res.config.base.fence_multiplier, "k[base]"),
+                       (g.settings.fence_multiplier, "k[leaf_volume]")):
+            assert any(k <= m < k + 1 for k in set(res.trials[col])), (m, col)
         if extra == OWN_RANGES:  # and so are both groups' per-metric minimum impacts
             for m in ses.ws.metric_names:
                 assert res.config.base.impact_for(m) in set(res.trials[f"min_impact[base/{m}]"])
@@ -806,3 +808,19 @@ def test_metric_lines_warn_about_metrics_switched_off_or_missing_all():
     assert any(x.startswith("per detector") and "fence: 500 alerts" in x for x in lines)
     assert any("2 incident(s) begin before the first scored hour" in x for x in lines)
     assert any("already alerting" in x for x in lines)
+
+
+@pytest.mark.parametrize(("k", "breakpoints", "want"), [
+    (6.3708989217200065, [6.3708989217200065, 6.3712, 7.0], 6.371),  # 6.371 < 6.3712
+    (6.3708989217200065, [6.3708989217200065, 6.37090], 6.370899),  # a close breakpoint
+    (1.5, [1.5, 5.0], 2.0),  # one digit reaches
+    (12.0, [1.0, 12.0], 12.0),  # no breakpoint above: kept
+    (0.05, [0.05, 0.0512], 0.05),  # already short
+])
+def test_short_multiplier_stays_below_the_next_breakpoint(k, breakpoints, want):
+    """Hand-worked: flags are score > k, so any value in [k, next breakpoint) flags the
+    same hours; the shortest decimal there is written."""
+    got = search.short_multiplier(k, np.array(breakpoints))
+    assert got == want
+    above = [b for b in breakpoints if b > k]
+    assert k <= got and (not above or got < min(above))

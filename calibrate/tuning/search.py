@@ -319,9 +319,11 @@ def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[D
         fev.group_min_impacts = {g: v for g, v in grids.items() if g}
         study = _run_study(ses, fev, space, starts, f"{name}-fold{f.number}of{len(folds)}",
                            store, budget, progress)
-        best, chosen, _, f.config = _chosen(ses, space, study, ses.ws.detector)
+        best, chosen, _, config = _chosen(ses, space, study, ses.ws.detector)
+        # shortened on the fold's own tuning hours (fev's breakpoints end at train_end)
+        f.config = rounded_multipliers(config, fev.breakpoints(ev.replayer.scores(config)))
         f.feasible = best is not None
-        f.settings = {**chosen.params, "fence_multiplier": chosen.user_attrs.get("k"),
+        f.settings = {**chosen.params, "fence_multiplier": f.config.base.fence_multiplier,
                       **{f"min_impact[{m}]": v for m, v in
                          (chosen.user_attrs.get("min_impact") or {}).items()}}
         eps = ev.replayer.replay(f.config).episodes
@@ -674,11 +676,42 @@ def _chosen(ses: Session, space: list[Param], study: optuna.Study, current: Dete
     return best, chosen, structure, config
 
 
+def short_multiplier(k: float, breakpoints: np.ndarray) -> float:
+    """The decimal with the fewest significant digits in ``[k, next breakpoint)``.
+
+    Flags are ``score > k``, so every multiplier from `k` up to the next tuning-hour
+    score above it flags the same tuning hours: the short value gives the same
+    tuning-week figures, and a config people can read. `k` itself when no breakpoint
+    lies above it (the grid's end).
+    """
+    above = breakpoints[breakpoints > k]
+    if not above.size or not math.isfinite(k) or k <= 0:
+        return k
+    nxt = float(above.min())
+    for digits in range(1, 17):
+        scale = 10.0 ** (digits - 1 - math.floor(math.log10(k)))
+        d = float(f"{math.ceil(k * scale) / scale:.{digits}g}")
+        if k <= d < nxt:
+            return d
+    return k
+
+
+def rounded_multipliers(config: DetectorConfig, breakpoints: np.ndarray) -> DetectorConfig:
+    """`config` with each fence multiplier shortened by `short_multiplier` (the union of
+    every series' breakpoints is finer than any group's, so each group keeps its flags)."""
+    def short(s: DetectorSettings) -> DetectorSettings:
+        return replace(s, fence_multiplier=short_multiplier(s.fence_multiplier, breakpoints))
+
+    return replace(config, base=short(config.base),
+                   groups=tuple(replace(g, settings=short(g.settings)) for g in config.groups))
+
+
 def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
             store_name: str, current: DetectorConfig, goal: Goal,
             store_front: bool = False) -> TuneResult:
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
     best, chosen, structure, config = _chosen(ses, space, study, current)
+    config = rounded_multipliers(config, ev.breakpoints(ev.replayer.scores(config)))
     a = chosen.user_attrs
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)
