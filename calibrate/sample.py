@@ -248,12 +248,13 @@ def _base_series() -> _Series:
     return _Series(keys=keys, offset=np.array(offsets), campaign_index=np.array(camp))
 
 
-def _ar1(rng: np.random.Generator, n: int, sigma: float, phi: float) -> np.ndarray:
-    """(n, N_HOURS) stationary AR(1) noise with marginal standard deviation `sigma`."""
-    z = rng.standard_normal((n, N_HOURS)) * sigma * np.sqrt(1.0 - phi * phi)
+def _ar1(rng: np.random.Generator, n: int, sigma: float, phi: float,
+         hours: int = N_HOURS) -> np.ndarray:
+    """(n, hours) stationary AR(1) noise with marginal standard deviation `sigma`."""
+    z = rng.standard_normal((n, hours)) * sigma * np.sqrt(1.0 - phi * phi)
     out = np.empty_like(z)
     out[:, 0] = rng.standard_normal(n) * sigma
-    for t in range(1, N_HOURS):
+    for t in range(1, hours):
         out[:, t] = phi * out[:, t - 1] + z[:, t]
     return out
 

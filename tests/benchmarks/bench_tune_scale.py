@@ -137,16 +137,6 @@ holdout_fraction = 0.25
 """
 
 
-def _ar1(rng: np.random.Generator, n: int, hours: int, sigma: float, phi: float) -> np.ndarray:
-    """(n, hours) stationary AR(1) noise with marginal standard deviation `sigma`."""
-    z = rng.standard_normal((n, hours)) * sigma * np.sqrt(1.0 - phi * phi)
-    out = np.empty_like(z)
-    out[:, 0] = rng.standard_normal(n) * sigma
-    for t in range(1, hours):
-        out[:, t] = phi * out[:, t - 1] + z[:, t]
-    return out
-
-
 def _keys(n_series: int) -> pd.DataFrame:
     """Base series (campaigns): market, advertiser, campaign; 10 campaigns per advertiser
     on average, advertisers spread over the markets."""
@@ -233,7 +223,7 @@ def generate(folder: Path, n_series: int, days: int, seed: int) -> Path:
             zero_all[m, w] = True
         else:
             zero_clicks[m, w] = True
-    noise = np.exp(_ar1(rng, n, hours, 0.09, 0.6))
+    noise = np.exp(sample._ar1(rng, n, 0.09, 0.6, hours))
     lam = volume[:, None] * profile * weekend * imp_mult * noise
     impressions = np.where(zero_all, 0, rng.poisson(lam))
     ctr = rng.uniform(0.006, 0.04, (n, 1)) * ctr_mult
