@@ -14,6 +14,8 @@ from __future__ import annotations
 
 import abc
 import contextlib
+import ctypes
+import ctypes.util
 import os
 import signal
 import socket
@@ -144,6 +146,34 @@ def single_thread_worker() -> None:
         numba.set_num_threads(1)
     except ImportError:  # pragma: no cover - both come with the dependencies
         pass
+    steady_heap()
+
+
+# glibc's mallopt parameters (malloc.h)
+M_TRIM_THRESHOLD = -1
+M_MMAP_THRESHOLD = -3
+HEAP_MMAP_BYTES = 32 * 2**20  # glibc's largest mmap threshold on 64-bit systems
+HEAP_TRIM_BYTES = 64 * 2**20
+heap_steady = False  # set in a worker once `steady_heap` took effect
+
+
+def steady_heap() -> None:
+    """Keep a worker's freed memory for its next task (glibc only; elsewhere nothing).
+
+    A task allocates and frees arrays of a few MB per series. glibc gives such blocks
+    back to the system when they are freed (unmapped, or the heap's top trimmed) and
+    the next task takes fresh pages, which the kernel must zero: measured on a
+    1,105-series tune, a third of each worker's time went to the kernel. Serving
+    blocks up to 32 MB from the heap and keeping up to 64 MB free at its top makes the
+    pages stay; the worker's peak memory is unchanged, it is only held between tasks.
+    """
+    global heap_steady
+    try:
+        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
+    except (OSError, AttributeError):  # pragma: no cover - not glibc
+        return
+    heap_steady = bool(mallopt(M_MMAP_THRESHOLD, HEAP_MMAP_BYTES)
+                       and mallopt(M_TRIM_THRESHOLD, HEAP_TRIM_BYTES))
 
 
 def _run_task(token: int, fn: Callable, index: int, task: Any) -> tuple[int, Any]:
