@@ -87,6 +87,8 @@ def make_replayer(
     workers: int | None = None,
     scheduler: str | None = None,
     fence_windows: tuple[int, ...] = (),
+    sides: tuple[str, ...] = (),
+    flatlines: tuple[int, ...] = (),
     progress: bool = True,
     cache_bytes: int | None = None,
 ) -> Replayer:
@@ -115,6 +117,8 @@ def make_replayer(
         executor=executor,
         routes=ses.routes,
         fence_windows=fence_windows,
+        sides=sides,
+        flatlines=flatlines,
         progress=progress,
         own_executor=owned,
         cache_bytes=cache_bytes,

@@ -19,7 +19,7 @@ import numpy as np
 import pytest
 
 from calibrate.detection.detectors import episodes_grid
-from calibrate.engine.replay import MetricScores, sweep, sweep_codes, sweep_runs
+from calibrate.engine.replay import HourScores, sweep, sweep_codes, sweep_runs
 from calibrate.inputs.incidents import Incidents
 from calibrate.scoring.curves import impact_curves, multiplier_curve
 from calibrate.scoring.matching import match, period_filter
@@ -171,7 +171,7 @@ def test_runs_never_join_across_series() -> None:
 # --------------------------------------------------------------------------- grid sweep
 
 
-def random_scores(seed: int) -> dict[tuple[str, str], MetricScores]:
+def random_scores(seed: int) -> dict[tuple[str, str], HourScores]:
     rng = np.random.default_rng(seed)
     out = {}
     for j, (lv, m) in enumerate([("top", "clicks"), ("top", "ctr"), ("leaf", "clicks"),
@@ -179,8 +179,7 @@ def random_scores(seed: int) -> dict[tuple[str, str], MetricScores]:
         score, flat, value, expected = random_arrays(seed * 10 + j, n_s=3 if lv == "top" else 5)
         s = DetectorSettings(flatline_hours=6, min_impact=float(rng.choice([0.0, 30.0])),
                              combine=str(rng.choice(["any", "all"])))
-        zeros = np.zeros_like(score)
-        out[(lv, m)] = MetricScores(lv, m, s, value, expected, zeros, zeros, zeros, score, flat)
+        out[(lv, m)] = HourScores(lv, m, s, value, expected, score, flat)
     return out
 
 

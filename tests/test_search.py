@@ -33,6 +33,7 @@ from calibrate.outputs import load_config, load_provenance
 from calibrate.scoring.figures import validation_verdict
 from calibrate.scoring.matching import match, period_filter
 from calibrate.scoring.tradeoffs import load_axis
+from calibrate.settings import DetectorGroup
 from calibrate.tuning import evaluate, search, search_space, summaries
 from tests.synthetic import make_workspace
 
@@ -526,9 +527,9 @@ def test_grouped_front_points_replay_to_what_they_claim(tmp_path, solved):
     res = _tune(ses, tmp_path, trials=3, storage=storage)
     assert res.config.groups
     goal = ses.ws.goal
-    _, _, _, _, fence_w, ks, ms = search._plan(ses, ())
+    _, _, _, _, grids, ks, ms = search._plan(ses, ())
     assert bool(ms) == solved
-    ev = search._evaluator(ses, ks, ms, fence_w, res.first_hour, res.split_hour, goal, None,
+    ev = search._evaluator(ses, ks, ms, grids, res.first_hour, res.split_hour, goal, None,
                            engine="serial")
     try:
         front = ev.group_front(res.config)
@@ -824,3 +825,54 @@ def test_short_multiplier_stays_below_the_next_breakpoint(k, breakpoints, want):
     assert got == want
     above = [b for b in breakpoints if b > k]
     assert k <= got and (not above or got < min(above))
+
+
+class _FullScores(evaluate.Evaluator):
+    """Reference evaluator: reads every hour of a full replay (`Replayer.scores`)."""
+
+    def scores(self, config):
+        return self.replayer.scores(config)
+
+
+@pytest.mark.parametrize("tune_by", ["", "level"])
+def test_tuning_store_evaluates_exactly_as_full_replays(tmp_path, tune_by):
+    """Reference: the same evaluator reading the full replay's scores of every hour
+    (`Replayer.scores`, what `calibrate replay` scores). Every figure of every setting
+    (both expected-value modes, both sides, flatlines on and off, solved minimum
+    impacts, per-level groups) is equal, for the tune's split and for an earlier
+    split reading the same store (a rolling fold); each decomposition setting is
+    fitted once however many fence windows, sides and flatline lengths are visited."""
+    search_toml = SEARCH + (f'\ntune_by = "{tune_by}"' if tune_by else "") + OWN_RANGES
+    ses = api.open_session(make_workspace(tmp_path / "ws", search=search_toml))
+    _, starts, first, split, grids, ks, ms = search._plan(ses, ())
+    grids = {**grids, "sides": ("both", "up"), "flatlines": (0, 6)}
+    ev = search._evaluator(ses, ks, ms, grids, first, split, ses.ws.goal, None,
+                           engine="serial")
+    ref_rp = api.make_replayer(ses, engine="serial", progress=False)
+    base = ses.ws.detector
+    try:
+        settings = [replace(base.base, expected_value=mode, fence_window_hours=w, sides=sd,
+                            flatline_hours=f)
+                    for mode in ("fit", "forecast") for w in (48, 72)
+                    for sd in ("both", "up") for f in (0, 6)]
+        configs = [replace(base, base=s) for s in settings]
+        if tune_by:  # one group per level, each with other settings
+            levels = list(ses.history.levels)
+            configs = [replace(base, groups=tuple(
+                DetectorGroup(name=lv, levels=(lv,), settings=settings[(k + 3 * i) % len(settings)])
+                for i, lv in enumerate(levels))) for k in range(len(settings))]
+        for split_at in (split, split - 168):
+            ref = _FullScores(ses, ref_rp, ks, first, split_at, ses.ws.goal, None,
+                              min_impacts=ev.min_impacts,
+                              group_min_impacts=ev.group_min_impacts)
+            got = evaluate.Evaluator(ses, ev.replayer, ks, first, split_at, ses.ws.goal, None,
+                                     min_impacts=ev.min_impacts,
+                                     group_min_impacts=ev.group_min_impacts,
+                                     scores_end=split)
+            for config in configs:
+                assert got.evaluate(config).attrs() == ref.evaluate(config).attrs()
+        n_series = sum(ls.n_series for ls in ses.history.levels.values())
+        assert ev.replayer.fits == 2 * n_series * len(ses.ws.metric_names)
+    finally:
+        ev.replayer.close()
+        ref_rp.close()

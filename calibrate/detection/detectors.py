@@ -25,6 +25,9 @@ FENCE_BIT = 1
 FLATLINE_BIT = 2
 
 
+MIN_FLATLINE = 2  # a shorter flatline length flags nothing
+
+
 def flatline_flags(
     value: np.ndarray, expected: np.ndarray, iqr: np.ndarray, hours: int
 ) -> np.ndarray:
@@ -38,7 +41,7 @@ def flatline_flags(
     expected = np.atleast_2d(expected)
     iqr = np.atleast_2d(iqr)
     out = np.zeros(value.shape, dtype=bool)
-    if hours < 2 or value.shape[1] < hours:
+    if hours < MIN_FLATLINE or value.shape[1] < hours:
         return out
     _flatline_kernel(value, expected, iqr, hours, out)
     return out

@@ -18,7 +18,7 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from calibrate.decomposition.decompose import fence_scores, remainder_stream
-from calibrate.detection.detectors import episode_runs, flatline_flags
+from calibrate.detection.detectors import MIN_FLATLINE, episode_runs, flatline_flags
 from calibrate.detection.episodes import CodedEpisodes, Episodes
 from calibrate.engine.executors import Executor, SerialExecutor, batched
 from calibrate.inputs.history import History
@@ -57,17 +57,15 @@ class StreamSet:
 
 
 @dataclass
-class MetricScores:
-    """Per-hour detector results of one level and metric, all (n_series, n_hours)."""
+class HourScores:
+    """What episodes are found from, for one level and metric (n_series, n_hours):
+    the settings, values, expected values, fence scores and flatline flags."""
 
     level: str
     metric: str
     settings: DetectorSettings
     value: np.ndarray
     expected: np.ndarray
-    remainder: np.ndarray
-    q1: np.ndarray
-    q3: np.ndarray
     score: np.ndarray
     flat: np.ndarray
 
@@ -79,6 +77,40 @@ class MetricScores:
         return count >= self.settings.min_detectors
 
 
+@dataclass
+class MetricScores(HourScores):
+    """`HourScores` of a replay, with the remainders and fence quartiles."""
+
+    remainder: np.ndarray
+    q1: np.ndarray
+    q3: np.ndarray
+
+
+@dataclass
+class TuningHours:
+    """The hours of one level, metric, decomposition setting, fence window and sides
+    that scoring a multiplier grid can flag, over hours [0, end).
+
+    A grid whose lowest multiplier is `low` flags an hour only if its fence score
+    exceeds `low` or a flatline detector flags it (`episode_runs` starts from exactly
+    those hours), so only they are kept: ``index`` (series * end + hour, ascending),
+    their fence score and expected value, and per flatline length its flags. Every
+    other hour reads back as a NaN score, unflagged (`Replayer.tuning_scores`).
+    """
+
+    n_series: int
+    end: int
+    index: np.ndarray
+    score: np.ndarray
+    expected: np.ndarray
+    flat: dict[int, np.ndarray]
+
+    @property
+    def nbytes(self) -> int:
+        arrays = [self.index, self.score, self.expected, *self.flat.values()]
+        return sum(a.nbytes for a in arrays)
+
+
 def _stream_task(shared: dict, task: tuple) -> tuple:
     level, metric, rows, settings, windows = task
     values = shared[(level, metric)]
@@ -86,6 +118,31 @@ def _stream_task(shared: dict, task: tuple) -> tuple:
     for r in rows:
         st = remainder_stream(values[r], settings, windows)
         out.append((st.expected, st.q1, st.q3))  # the remainder is value - expected
+    return level, metric, rows, out
+
+
+def _tuning_task(shared: dict, task: tuple) -> tuple:
+    """`_stream_task` keeping only each (fence window, sides)'s `TuningHours` parts."""
+    level, metric, rows, settings, windows, sides, flatlines, end, low = task
+    values = shared[(level, metric)]
+    out = []
+    for r in rows:
+        st = remainder_stream(values[r], settings, windows)
+        value = values[r][:end]
+        expected = st.expected[:end]
+        remainder = value - expected  # as `Replayer.scores` derives it
+        parts = {}
+        for w in windows:
+            q1, q3 = st.q1[w][:end], st.q3[w][:end]
+            flat = {f: flatline_flags(value, expected, q3 - q1, f)[0] for f in flatlines}
+            any_flat = np.logical_or.reduce([*flat.values(), np.zeros(end, dtype=bool)])
+            for sd in sides:
+                score = fence_scores(remainder, q1, q3, sd)
+                with np.errstate(invalid="ignore"):
+                    hours = np.flatnonzero((score > low) | any_flat)
+                parts[(w, sd)] = (hours, score[hours], expected[hours],
+                                  {f: fl[hours] for f, fl in flat.items()})
+        out.append(parts)
     return level, metric, rows, out
 
 
@@ -162,9 +219,10 @@ class Replayer:
         Where the decompositions run (default: this process).
     routes : dict, optional
         level -> team of each series (from `Owners.route`).
-    fence_windows : tuple of int, optional
-        Grid of fence windows whose quartiles are computed at fit time; a
-        configuration's own fence window is always added.
+    fence_windows, sides, flatlines : tuple, optional
+        Fence windows, sides and flatline lengths every fit for `tuning_scores`
+        keeps the candidate hours of (a configuration's own are always added), so
+        trials that change only these never refit.
     progress : bool
         Show a progress bar over decomposition tasks.
     """
@@ -178,6 +236,8 @@ class Replayer:
         executor: Executor | None = None,
         routes: dict[str, np.ndarray] | None = None,
         fence_windows: tuple[int, ...] = (),
+        sides: tuple[str, ...] = (),
+        flatlines: tuple[int, ...] = (),
         progress: bool = True,
         own_executor: bool = False,
         cache_bytes: int | None = None,
@@ -195,6 +255,10 @@ class Replayer:
         self.executor = executor or SerialExecutor()
         self.routes = routes or {}
         self.fence_windows = tuple(sorted(set(fence_windows)))
+        self.sides = tuple(sorted(set(sides)))
+        self.flatlines = tuple(sorted({f for f in flatlines if f >= MIN_FLATLINE}))
+        # (level, metric, decomposition key, end, low) -> (fence window, sides) -> hours
+        self.tuning: dict[tuple, dict[tuple[int, str], TuningHours]] = {}
         self.progress = progress
         self.cache: OrderedDict[tuple, StreamSet] = OrderedDict()  # least recent first
         self.shared = _shared_arrays(history, tuple(self.levels), tuple(self.metrics))
@@ -214,8 +278,7 @@ class Replayer:
                 have = self.cache.get(key)
                 if have is not None and s.fence_window_hours in have.q1:
                     continue
-                windows = set(self.fence_windows) | {s.fence_window_hours}
-                windows = {w for w in windows if w < s.decomposition_window_hours}
+                windows = {s.fence_window_hours}
                 if have is not None:
                     windows |= set(have.q1)
                 need[key] = (lv, m, s, tuple(sorted(windows)))
@@ -272,9 +335,77 @@ class Replayer:
             else:
                 flat = np.zeros(value.shape, dtype=bool)
             out[(lv, m)] = MetricScores(
-                lv, m, s, value, st.expected, remainder, q1, q3, score, flat
+                lv, m, s, value, st.expected, score, flat, remainder=remainder, q1=q1, q3=q3
             )
         return out
+
+    def tuning_scores(self, config: DetectorConfig, end: int, low: float
+                      ) -> dict[tuple[str, str], HourScores]:
+        """`scores` over hours [0, end) for a multiplier grid whose lowest value is `low`:
+        the same episodes for every such grid (`TuningHours`), from a store a fraction
+        of the size of the remainder streams, and no hour from `end` on is read.
+
+        The store keeps, per decomposition setting, every fence window, sides and
+        flatline length of the replayer's grids (and each configuration's own), so a
+        setting is fitted once however many trials visit it.
+        """
+        need: dict[tuple, tuple[str, str, DetectorSettings, tuple, tuple, tuple]] = {}
+        for lv in self.levels:
+            for m in self.metrics:
+                s = config.for_series(lv, m)
+                key = (*self._key(lv, m, s), end, low)
+                have = self.tuning.get(key, {})
+                part = have.get((s.fence_window_hours, s.sides))
+                f = s.flatline_hours
+                if part is not None and (f < MIN_FLATLINE or f in part.flat):
+                    continue
+                windows = {w for w in self.fence_windows if w < s.decomposition_window_hours}
+                windows |= {s.fence_window_hours} | {w for w, _ in have}
+                sides = set(self.sides) | {s.sides} | {sd for _, sd in have}
+                flats = set(self.flatlines) | {f for p in have.values() for f in p.flat}
+                flats |= {f} if f >= MIN_FLATLINE else set()
+                need[key] = (lv, m, s, tuple(sorted(windows)), tuple(sorted(sides)),
+                             tuple(sorted(flats)))
+        tasks = []
+        for lv, m, s, windows, sides, flats in need.values():
+            for rows in batched(range(self.history.levels[lv].n_series), SERIES_PER_TASK):
+                tasks.append((lv, m, np.array(rows), s, windows, sides, flats, end, low))
+        if tasks:
+            got: dict[tuple[str, str], list] = {(lv, m): [] for lv, m, *_ in need.values()}
+            bar = tqdm(total=len(tasks), desc="fit", unit="task", disable=not self.progress,
+                       leave=False)
+            for _, (lv, m, rows, out) in self.executor.run(_tuning_task, self.shared, tasks):
+                got[(lv, m)].extend(zip(rows.tolist(), out, strict=True))
+                bar.update(1)
+            bar.close()
+            for key, (lv, m, _s, windows, sides, _f) in need.items():
+                per_series = sorted(got[(lv, m)], key=lambda item: item[0])
+                self.tuning[key] = {(w, sd): _tuning_hours(per_series, (w, sd), end)
+                                    for w in windows for sd in sides}
+                self.fits += self.history.levels[lv].n_series
+        out = {}
+        n = self.history.n_hours
+        for lv in self.levels:
+            for m in self.metrics:
+                s = config.for_series(lv, m)
+                th = self.tuning[(*self._key(lv, m, s), end, low)][(s.fence_window_hours, s.sides)]
+                value = self.shared[(lv, m)]
+                score = np.full(value.shape, np.nan)
+                expected = np.full(value.shape, np.nan)
+                flat = np.zeros(value.shape, dtype=bool)
+                # the store's index counts hours [0, end); these arrays are n hours wide
+                at = th.index // end * n + th.index % end
+                score.flat[at] = th.score
+                expected.flat[at] = th.expected
+                if s.flatline_hours >= MIN_FLATLINE:
+                    flat.flat[at] = th.flat[s.flatline_hours]
+                out[(lv, m)] = HourScores(lv, m, s, value, expected, score, flat)
+        return out
+
+    @property
+    def tuning_bytes(self) -> int:
+        """Bytes held by the `tuning_scores` store."""
+        return sum(th.nbytes for parts in self.tuning.values() for th in parts.values())
 
     def replay(self, config: DetectorConfig) -> ReplayResult:
         """Replay `config`: per-hour scores and the alert episodes it raises."""
@@ -285,6 +416,22 @@ class Replayer:
     def close(self) -> None:
         if self.own_executor:
             self.executor.close()
+
+
+def _tuning_hours(per_series: list, part: tuple[int, str], end: int) -> TuningHours:
+    """One (fence window, sides)'s `TuningHours` from `_tuning_task`'s per-series parts
+    (in series order)."""
+    pieces = [(r, parts[part]) for r, parts in per_series]
+    index = np.concatenate([r * end + hours for r, (hours, *_) in pieces]
+                           + [np.empty(0, dtype=np.int64)])
+    flats = pieces[0][1][3].keys() if pieces else ()
+    return TuningHours(
+        n_series=len(pieces), end=end, index=index.astype(np.int64),
+        score=np.concatenate([p[1] for _, p in pieces] + [np.empty(0)]),
+        expected=np.concatenate([p[2] for _, p in pieces] + [np.empty(0)]),
+        flat={f: np.concatenate([p[3][f] for _, p in pieces] + [np.empty(0, dtype=bool)])
+              for f in flats},
+    )
 
 
 def _shared_arrays(history: History, levels: tuple[str, ...],
@@ -318,7 +465,7 @@ def _fill(st: StreamSet, rows: np.ndarray, out: list) -> None:
 
 
 def sweep(
-    scores: dict[tuple[str, str], MetricScores],
+    scores: dict[tuple[str, str], HourScores],
     ks: np.ndarray | None,
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,
@@ -351,7 +498,7 @@ def sweep(
 
 
 def sweep_codes(
-    scores: dict[tuple[str, str], MetricScores],
+    scores: dict[tuple[str, str], HourScores],
     ks: np.ndarray | None,
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,
@@ -430,7 +577,7 @@ class RunTable:
 
 
 def sweep_runs(
-    scores: dict[tuple[str, str], MetricScores],
+    scores: dict[tuple[str, str], HourScores],
     ks: np.ndarray,
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from calibrate.api import Session
-from calibrate.engine.replay import MetricScores, Replayer, sweep_codes, sweep_runs
+from calibrate.engine.replay import HourScores, Replayer, sweep_codes, sweep_runs
 from calibrate.errors import InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import BASE_GROUP, Goal
@@ -99,6 +99,9 @@ class Evaluator:
     min_impacts: dict[str, np.ndarray] | None = None
     # the same per group (tune_by level, metric or group), by group name
     group_min_impacts: dict[str, dict[str, np.ndarray]] = field(default_factory=dict)
+    # the scores it reads end here (default: the split); evaluators of earlier splits
+    # sharing a replayer pass the latest one, so they share its store of tuning hours
+    scores_end: int | None = None
     incidents: Incidents = field(init=False)
     false_windows: Incidents | None = field(init=False)
     # the goal settings are judged by: the miss-rate target tightened by
@@ -106,6 +109,11 @@ class Evaluator:
     judge: Goal = field(init=False)
 
     def __post_init__(self) -> None:
+        if self.scores_end is None:
+            self.scores_end = self.split_hour
+        if self.scores_end < self.split_hour:
+            raise ValueError(f"scores_end {self.scores_end} is before the split "
+                             f"{self.split_hour}")
         if self.ses.incidents is None:
             raise InputError(str(self.ses.ws.file), "no [incidents] path: nothing to tune against")
         self.incidents = period_filter(self.ses.incidents, self.first_hour, self.split_hour)
@@ -116,11 +124,16 @@ class Evaluator:
         if self.known_false is not None and len(self.known_false):
             self.false_windows = self.known_false
 
+    def scores(self, config: DetectorConfig) -> dict[tuple[str, str], HourScores]:
+        """What `config` flags on hours before `scores_end`
+        (`Replayer.tuning_scores`: each decomposition setting fitted once)."""
+        return self.replayer.tuning_scores(config, self.scores_end, float(self.ks.min()))
+
     @property
     def n_days(self) -> float:
         return (self.split_hour - self.first_hour) / 24.0
 
-    def curve(self, scores: dict[tuple[str, str], MetricScores]) -> tuple[Curve, np.ndarray, Any]:
+    def curve(self, scores: dict[tuple[str, str], HourScores]) -> tuple[Curve, np.ndarray, Any]:
         """Curve on the tuning hours, known-false alerts per k, and the episodes."""
         eps = sweep_codes(scores, self.ks, self.replayer.routes,
                           start_hours=(self.first_hour, self.split_hour))
@@ -138,7 +151,7 @@ class Evaluator:
         """Solve the multiplier(s) of `config` and return its figures."""
         if self.min_impacts is not None and not config.groups:
             return self._evaluate_with_impact(config)
-        scores = self.replayer.scores(config)
+        scores = self.scores(config)
         if not config.groups:
             c, kf, _ = self.curve(scores)
             pt = self._exact(scores, None)
@@ -156,7 +169,7 @@ class Evaluator:
             return ev
         return self._evaluate_groups(config, scores)
 
-    def breakpoints(self, scores: dict[tuple[str, str], MetricScores]) -> np.ndarray:
+    def breakpoints(self, scores: dict[tuple[str, str], HourScores]) -> np.ndarray:
         """Every multiplier at which the flags change, within the grid's range: each
         distinct fence score of the hours before the split in (min grid, max grid],
         plus the grid itself (today's multiplier among it)."""
@@ -167,7 +180,7 @@ class Evaluator:
             parts.append(v[(v > low) & (v <= high)])
         return np.unique(np.concatenate(parts))
 
-    def _exact(self, scores: dict[tuple[str, str], MetricScores],
+    def _exact(self, scores: dict[tuple[str, str], HourScores],
                grids: dict[str, np.ndarray] | None):
         """`scoring.curves.exact_solve` over every breakpoint multiplier (and minimum-impact
         level of `grids`; None: each series' own minimum impact)."""
@@ -195,7 +208,7 @@ class Evaluator:
         miss-rate excess, then the lowest worst budget ratio (the exact search's
         feasible pairs include every grid pair's, so none of those is feasible either)."""
         grids = self.min_impacts
-        scores = self.replayer.scores(config)
+        scores = self.scores(config)
         curves, kfs, _ = self._impact_curves(scores, grids)
         pt = self._exact(scores, grids)
         if pt is not None:
@@ -230,7 +243,7 @@ class Evaluator:
                 for c, x, k, lv in pts]
 
     def _evaluate_groups(self, config: DetectorConfig,
-                         scores: dict[tuple[str, str], MetricScores]) -> Evaluation:
+                         scores: dict[tuple[str, str], HourScores]) -> Evaluation:
         parts, teams = self._group_parts(config, scores)
         j = self._joint(parts, teams, self.judge.max_miss_rate)
         ev = self._figures(feasible=True, reason="",
@@ -246,7 +259,7 @@ class Evaluator:
         """Best trade-offs of a grouped `config`: the joint solve (`greedy_multipliers`)
         at every miss-rate level k/n, kept where no other level catches as many for
         less load (`scoring.tradeoffs.best_tradeoffs`); most incidents caught first."""
-        parts, teams = self._group_parts(config, self.replayer.scores(config))
+        parts, teams = self._group_parts(config, self.scores(config))
         n_inc = len(self.incidents)
         budgets = {t: self.judge.budget(t) for t in self.ses.analysts}
         solves = [self._joint(parts, teams, (n_inc - c) / n_inc if n_inc else 0.0)
@@ -264,7 +277,7 @@ class Evaluator:
         return [solves[int(-k)] for _, _, k, _ in pts]
 
     def _group_parts(self, config: DetectorConfig,
-                     scores: dict[tuple[str, str], MetricScores]) -> tuple[list, list[str]]:
+                     scores: dict[tuple[str, str], HourScores]) -> tuple[list, list[str]]:
         """Every group's candidates (`_candidates`) and the teams they route to."""
         teams = list(self.ses.analysts)
         parts = []
@@ -304,7 +317,7 @@ class Evaluator:
         return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
                           group_k=group_k, group_min_impact=group_m)
 
-    def _candidates(self, name: str, sub: dict[tuple[str, str], MetricScores],
+    def _candidates(self, name: str, sub: dict[tuple[str, str], HourScores],
                     teams: list[str]):
         """One group's candidates: (name, caught (n_cand, n_inc), minimum impact grid or
         None, alerts, known-false alerts, curves (candidate i is row i % n_k of curve
@@ -326,7 +339,7 @@ class Evaluator:
         alerts = np.concatenate([c.alerts for c in curves])
         return name, caught, grid, alerts, np.concatenate(kfs), curves
 
-    def _impact_curves(self, scores: dict[tuple[str, str], MetricScores],
+    def _impact_curves(self, scores: dict[tuple[str, str], HourScores],
                        grids: dict[str, np.ndarray]):
         """Curves over the multiplier grid for every minimum-impact level of `grids`
         (tuning hours), the known-false alerts of each, and which incidents each

@@ -110,9 +110,10 @@ STUDY_FILE = ".calibrate/study.journal"
 # run again (as a new trial) by the next `tune`, so an interruption loses nothing
 BUDGET_STATES = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNED)
 INVALID = 1e9  # constraint value of a pruned (invalid) combination
-# remainder streams a tune keeps in memory; beyond, the least recently used
-# decomposition settings are dropped and refit if a later trial needs them again
-STREAM_CACHE_BYTES = 2 * 1024**3
+# remainder streams a tune keeps in memory for its full replays (the chosen settings,
+# rolling folds; trials read `Replayer.tuning_scores`); beyond, the least recently
+# used are dropped and refit if needed again
+STREAM_CACHE_BYTES = 512 * 1024**2
 
 
 # --------------------------------------------------------------------------- space
@@ -283,12 +284,12 @@ def tune(
         raise InputError("--trials", f"must be at least 1, but got {budget}")
     if ses.incidents is None:
         raise InputError(str(ws.file), "no [incidents] path: nothing to tune against")
-    space, starts, first_hour, split, fence_w, ks, ms = _plan(ses, warm_start)
+    space, starts, first_hour, split, grids, ks, ms = _plan(ses, warm_start)
     api.require_incidents(ses, first_hour, split)
     current = ws.detector
     name = study_name or study_name_for(ses, goal, known_false)
     store, store_name = open_storage(ses, storage)
-    ev = _evaluator(ses, ks, ms, fence_w, first_hour, split, goal, known_false,
+    ev = _evaluator(ses, ks, ms, grids, first_hour, split, goal, known_false,
                     executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
         with studies.storage_errors(store_name):
@@ -313,7 +314,7 @@ def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[D
     for f in folds:
         api.require_incidents(ses, ev.first_hour, f.train_end)
         fev = Evaluator(ses, ev.replayer, ev.ks, ev.first_hour, f.train_end, ev.goal,
-                        ev.known_false)
+                        ev.known_false, scores_end=ev.scores_end)
         grids = _impact_plan(ses, starts, f.train_end)
         fev.min_impacts = grids.get("")
         fev.group_min_impacts = {g: v for g, v in grids.items() if g}
@@ -321,7 +322,7 @@ def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[D
                            store, budget, progress)
         best, chosen, _, config = _chosen(ses, space, study, ses.ws.detector)
         # shortened on the fold's own tuning hours (fev's breakpoints end at train_end)
-        f.config = rounded_multipliers(config, fev.breakpoints(ev.replayer.scores(config)))
+        f.config = rounded_multipliers(config, fev.breakpoints(fev.scores(config)))
         f.feasible = best is not None
         f.settings = {**chosen.params, "fence_multiplier": f.config.base.fence_multiplier,
                       **{f"min_impact[{m}]": v for m, v in
@@ -340,13 +341,14 @@ def _rolling(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence[D
     result.verdict, result.verdict_reasons = word, why
 
 
-def _evaluator(ses: Session, ks: np.ndarray, ms: dict[str, np.ndarray], fence_w: Sequence[int],
-               first_hour: int, split: int, goal: Goal, known_false: Incidents | None,
-               **where: Any) -> Evaluator:
-    """An `Evaluator` over a new replayer (`where`: executor, engine, workers, scheduler
-    as for `api.make_replayer`); the caller closes ``ev.replayer``."""
-    rp = api.make_replayer(ses, fence_windows=tuple(fence_w), progress=False,
-                           cache_bytes=STREAM_CACHE_BYTES, **where)
+def _evaluator(ses: Session, ks: np.ndarray, ms: dict[str, np.ndarray],
+               grids: dict[str, tuple], first_hour: int, split: int, goal: Goal,
+               known_false: Incidents | None, **where: Any) -> Evaluator:
+    """An `Evaluator` over a new replayer whose tuning store keeps `grids` (fence
+    windows, sides and flatline lengths, from `_plan`); `where`: executor, engine,
+    workers, scheduler as for `api.make_replayer`. The caller closes ``ev.replayer``."""
+    rp = api.make_replayer(ses, progress=False, cache_bytes=STREAM_CACHE_BYTES, **grids,
+                           **where)
     try:
         return Evaluator(ses, rp, ks, first_hour, split, goal, known_false,
                          min_impacts=ms.get(""),
@@ -358,8 +360,9 @@ def _evaluator(ses: Session, ks: np.ndarray, ms: dict[str, np.ndarray], fence_w:
 
 def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     """What a search of the workspace scores and on which hours: the Optuna space, the
-    starting configs, the tuning hours [first_hour, split), the fence windows to cache
-    and the multiplier and minimum impact grids (None: the latter is searched)."""
+    starting configs, the tuning hours [first_hour, split), the fence windows, sides
+    and flatline lengths whose tuning hours every fit keeps, and the multiplier and
+    minimum impact grids (None: the latter is searched)."""
     ws = ses.ws
     space = build_space(ses)
     starts = [ws.detector, *warm_start]
@@ -388,7 +391,12 @@ def _plan(ses: Session, warm_start: Sequence[DetectorConfig]):
     ks = np.geomspace(lo, hi, GRID_POINTS)
     extra = [c.base.fence_multiplier for c in starts if lo <= c.base.fence_multiplier <= hi]
     ks = np.unique(np.r_[ks, extra])
-    return space, starts, first_hour, split, fence_w, ks, _impact_plan(ses, starts, split)
+    settings = [s for c in starts for s in (c.base, *(g.settings for g in c.groups))]
+    grids = {"fence_windows": tuple(fence_w),
+             "sides": tuple(candidate_values(space, "sides", [s.sides for s in settings]) or ()),
+             "flatlines": tuple(candidate_values(space, "flatline_hours",
+                                                 [s.flatline_hours for s in settings]) or ())}
+    return space, starts, first_hour, split, grids, ks, _impact_plan(ses, starts, split)
 
 
 def _impact_plan(ses: Session, starts: Sequence[DetectorConfig],
@@ -432,7 +440,7 @@ def study_result(
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     if ses.incidents is None:
         raise InputError(str(ses.ws.file), "no [incidents] path: nothing to report against")
-    space, starts, first_hour, split, fence_w, ks, ms = _plan(ses, ())
+    space, starts, first_hour, split, grids, ks, ms = _plan(ses, ())
     name = study_name or study_name_for(ses, goal or ses.ws.goal, None)
     if not (storage and "://" in storage):
         path = (Path(storage) if storage else ses.ws.root / STUDY_FILE).expanduser()
@@ -467,7 +475,7 @@ def study_result(
     goal = goal or ses.ws.goal
     if "hours" in attrs:
         first_hour, split = (int(h) for h in attrs["hours"])
-    ev = _evaluator(ses, ks, ms, fence_w, first_hour, split, goal, None,
+    ev = _evaluator(ses, ks, ms, grids, first_hour, split, goal, None,
                     executor=executor, engine=engine, workers=workers, scheduler=scheduler)
     try:
         with studies.storage_errors(store_name):
@@ -711,7 +719,7 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
             store_front: bool = False) -> TuneResult:
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
     best, chosen, structure, config = _chosen(ses, space, study, current)
-    config = rounded_multipliers(config, ev.breakpoints(ev.replayer.scores(config)))
+    config = rounded_multipliers(config, ev.breakpoints(ev.scores(config)))
     a = chosen.user_attrs
     teams = list(ses.analysts)
     trials = trials_frame(study, space, teams)

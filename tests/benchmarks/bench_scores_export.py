@@ -82,7 +82,8 @@ def synthetic_result(n_series: int, seed: int = 3) -> ReplayResult:
             score = np.abs(remainder) / 4.0
             flat = np.zeros(shape, dtype=bool)
             scores[(level, metric)] = MetricScores(level, metric, settings, value, expected,
-                                                   remainder, q1, q3, score, flat)
+                                                   score, flat, remainder=remainder, q1=q1,
+                                                   q3=q3)
     return ReplayResult(history, None, scores, None)
 
 
