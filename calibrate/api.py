@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from calibrate.engine.executors import Executor, make_executor
+from calibrate.engine.executors import Executor, make_executor, trim_heap
 from calibrate.engine.replay import Replayer, ReplayResult
 from calibrate.errors import InputError
 from calibrate.inputs.checks import unreplayable
@@ -74,6 +74,7 @@ def open_session(path: str | Path, incidents: bool = True) -> Session:
     inc = None
     if incidents and ws.incidents.path is not None:
         inc = route_teams(load_incidents(ws, history), routes)
+    trim_heap()  # the frames the history was built from are gone
     return Session(ws, history, routes, inc)
 
 

@@ -355,10 +355,12 @@ def episode_runs(
         raise ValueError(f"min_impact must be a number or a grid of numbers, but got {ms}")
     lo, hi = (0, score.shape[1]) if start_hours is None else start_hours
     by_size = np.argsort(ms, kind="stable")  # the kernel reaches them in ascending order
-    ints, floats, raised_sorted = _runs_kernel(
+    # the kernel returns views of arrays sized for every candidate hour: copied, the
+    # runs kept hold only their own memory
+    ints, floats, raised_sorted = (a.copy() for a in _runs_kernel(
         score, flat, value, expected, ks[order], int(min_detectors), ms[by_size], int(lo),
         int(hi),
-    )
+    ))
     raised = np.empty_like(raised_sorted)
     raised[by_size] = raised_sorted
     keep = raised[0] >= 0

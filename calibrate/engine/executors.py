@@ -16,6 +16,7 @@ import abc
 import contextlib
 import ctypes
 import ctypes.util
+import gc
 import os
 import signal
 import socket
@@ -174,6 +175,17 @@ def steady_heap() -> None:
         return
     heap_steady = bool(mallopt(M_MMAP_THRESHOLD, HEAP_MMAP_BYTES)
                        and mallopt(M_TRIM_THRESHOLD, HEAP_TRIM_BYTES))
+
+
+def trim_heap() -> None:
+    """Give memory freed in this process back to the system (glibc's malloc_trim;
+    elsewhere nothing). After a large load (a history's frames) or a dropped cache,
+    glibc keeps the freed pages for later allocations; a long tune never needs them."""
+    gc.collect()
+    try:
+        ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):  # pragma: no cover - not glibc
+        pass
 
 
 def _run_task(token: int, fn: Callable, index: int, task: Any) -> tuple[int, Any]:

@@ -176,8 +176,9 @@ class Evaluator:
         low, high = float(self.ks.min()), float(self.ks.max())
         parts = [self.ks]
         for ms in scores.values():
-            v = ms.score[:, :self.split_hour].ravel()
-            parts.append(v[(v > low) & (v <= high)])
+            v = ms.score[:, :self.split_hour]
+            with np.errstate(invalid="ignore"):
+                parts.append(np.unique(v[(v > low) & (v <= high)]))  # no copy of all hours
         return np.unique(np.concatenate(parts))
 
     def _exact(self, scores: dict[tuple[str, str], HourScores],

@@ -294,9 +294,10 @@ def tune(
     try:
         with studies.storage_errors(store_name):
             study = _run_study(ses, ev, space, starts, name, store, budget, progress)
+            rolling_too = ws.search.validation == "rolling"
             result = _result(ses, ev, space, study, name, store_name, current, goal,
-                             store_front=True)
-            if ws.search.validation == "rolling":
+                             store_front=True, keep_store=rolling_too)
+            if rolling_too:
                 _rolling(ses, ev, space, starts, name, store, budget, progress, result)
     finally:
         ev.replayer.close()
@@ -716,7 +717,7 @@ def rounded_multipliers(config: DetectorConfig, breakpoints: np.ndarray) -> Dete
 
 def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study, name: str,
             store_name: str, current: DetectorConfig, goal: Goal,
-            store_front: bool = False) -> TuneResult:
+            store_front: bool = False, keep_store: bool = True) -> TuneResult:
     finished = study.get_trials(deepcopy=False, states=BUDGET_STATES)
     best, chosen, structure, config = _chosen(ses, space, study, current)
     config = rounded_multipliers(config, ev.breakpoints(ev.scores(config)))
@@ -739,6 +740,8 @@ def _result(ses: Session, ev: Evaluator, space: list[Param], study: optuna.Study
             if store_front:
                 study.set_user_attr(key, json_safe(fronts[chosen.number]))
     pareto = pareto_frame(finished, goal, ses.analysts, fronts)
+    if not keep_store:  # nothing reads the trials' store after this: free it for the replay
+        ev.replayer.drop_tuning()
     n = ses.history.n_hours
     episodes = ev.replayer.replay(config).episodes
     tuning = api.score_episodes(ses, episodes, ev.first_hour, ev.split_hour)
