@@ -11,6 +11,8 @@ import dataclasses
 import os
 import platform
 import signal
+import subprocess
+import sys
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -387,3 +389,10 @@ def test_local_workers_keep_freed_memory_between_tasks():
     # (two workers: one would run the tasks in this process)
     with LocalExecutor(2) as ex:
         assert [r for _, r in ex.run(_heap_steady, None, [0, 1])] == [True, True]
+
+
+def test_worker_tasks_import_no_pandas():
+    # a worker imports the task module and the executor's: numpy and the kernels only
+    code = ("import sys, calibrate.engine.tasks, calibrate.engine.executors; "
+            "sys.exit(int('pandas' in sys.modules))")
+    assert subprocess.run([sys.executable, "-c", code]).returncode == 0

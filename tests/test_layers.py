@@ -25,7 +25,7 @@ STAGES: dict[str, int] = {
     # 4 detection
     "detection.detectors": 4, "detection.episodes": 4,
     # 5 replay engine
-    "engine.executors": 5, "engine.replay": 5,
+    "engine.executors": 5, "engine.tasks": 5, "engine.replay": 5,
     # 6 scoring
     "scoring.matching": 6, "scoring.intervals": 6, "scoring.tables": 6, "scoring.figures": 6,
     "scoring.curves": 6, "scoring.tradeoffs": 6, "scoring.alerts_file": 6,

@@ -17,10 +17,11 @@ import numpy as np
 import pandas as pd
 from tqdm.auto import tqdm
 
-from calibrate.decomposition.decompose import fence_scores, remainder_stream
+from calibrate.decomposition.decompose import fence_scores
 from calibrate.detection.detectors import MIN_FLATLINE, episode_runs, flatline_flags
 from calibrate.detection.episodes import CodedEpisodes, Episodes
 from calibrate.engine.executors import Executor, SerialExecutor, batched, trim_heap
+from calibrate.engine.tasks import stream_task, tuning_task
 from calibrate.inputs.history import History
 from calibrate.settings import DetectorConfig, DetectorSettings
 
@@ -109,41 +110,6 @@ class TuningHours:
     def nbytes(self) -> int:
         arrays = [self.index, self.score, self.expected, *self.flat.values()]
         return sum(a.nbytes for a in arrays)
-
-
-def _stream_task(shared: dict, task: tuple) -> tuple:
-    level, metric, rows, settings, windows = task
-    values = shared[(level, metric)]
-    out = []
-    for r in rows:
-        st = remainder_stream(values[r], settings, windows)
-        out.append((st.expected, st.q1, st.q3))  # the remainder is value - expected
-    return level, metric, rows, out
-
-
-def _tuning_task(shared: dict, task: tuple) -> tuple:
-    """`_stream_task` keeping only each (fence window, sides)'s `TuningHours` parts."""
-    level, metric, rows, settings, windows, sides, flatlines, end, low = task
-    values = shared[(level, metric)]
-    out = []
-    for r in rows:
-        st = remainder_stream(values[r], settings, windows)
-        value = values[r][:end]
-        expected = st.expected[:end]
-        remainder = value - expected  # as `Replayer.scores` derives it
-        parts = {}
-        for w in windows:
-            q1, q3 = st.q1[w][:end], st.q3[w][:end]
-            flat = {f: flatline_flags(value, expected, q3 - q1, f)[0] for f in flatlines}
-            any_flat = np.logical_or.reduce([*flat.values(), np.zeros(end, dtype=bool)])
-            for sd in sides:
-                score = fence_scores(remainder, q1, q3, sd)
-                with np.errstate(invalid="ignore"):
-                    hours = np.flatnonzero((score > low) | any_flat)
-                parts[(w, sd)] = (hours, score[hours], expected[hours],
-                                  {f: fl[hours] for f, fl in flat.items()})
-        out.append(parts)
-    return level, metric, rows, out
 
 
 @dataclass
@@ -295,7 +261,7 @@ class Replayer:
             bar = tqdm(
                 total=len(tasks), desc="replay", unit="task", disable=not self.progress, leave=False
             )
-            for _, (lv, m, rows, out) in self.executor.run(_stream_task, self.shared, tasks):
+            for _, (lv, m, rows, out) in self.executor.run(stream_task, self.shared, tasks):
                 _fill(sets[(lv, m)], rows, out)
                 bar.update(1)
             bar.close()
@@ -374,7 +340,7 @@ class Replayer:
             got: dict[tuple[str, str], list] = {(lv, m): [] for lv, m, *_ in need.values()}
             bar = tqdm(total=len(tasks), desc="fit", unit="task", disable=not self.progress,
                        leave=False)
-            for _, (lv, m, rows, out) in self.executor.run(_tuning_task, self.shared, tasks):
+            for _, (lv, m, rows, out) in self.executor.run(tuning_task, self.shared, tasks):
                 got[(lv, m)].extend(zip(rows.tolist(), out, strict=True))
                 bar.update(1)
             bar.close()
@@ -425,7 +391,7 @@ class Replayer:
 
 
 def _tuning_hours(per_series: list, part: tuple[int, str], end: int) -> TuningHours:
-    """One (fence window, sides)'s `TuningHours` from `_tuning_task`'s per-series parts
+    """One (fence window, sides)'s `TuningHours` from `tuning_task`'s per-series parts
     (in series order)."""
     pieces = [(r, parts[part]) for r, parts in per_series]
     # int32 where every index fits: a fifth of the store

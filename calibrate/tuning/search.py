@@ -74,7 +74,7 @@ from tqdm.auto import tqdm
 from calibrate import api
 from calibrate.api import Session
 from calibrate.detection.episodes import Episodes
-from calibrate.engine.executors import Executor
+from calibrate.engine.executors import Executor, trim_heap
 from calibrate.errors import CalibrationError, InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import BASE_GROUP, Goal
@@ -543,6 +543,7 @@ def _run_study(ses: Session, ev: Evaluator, space: list[Param], starts: Sequence
             trial.set_user_attr("invalid", str(exc))
             raise optuna.TrialPruned(str(exc)) from None
         e = ev.evaluate(config)
+        trim_heap(collect=False)  # the trial's temporaries, before the next one's
         for key, val in e.attrs().items():
             if key != "constraints":
                 trial.set_user_attr(key, val)
