@@ -87,6 +87,21 @@ def _flagged(score, flat, k, min_det):
 
 
 @numba.njit(cache=True)
+def _depths(sc, fl, sorted_ks, min_det):
+    """(depth, fence depth) of one candidate hour (see `_candidates`)."""
+    # levels whose multiplier the score exceeds: a prefix of the sorted grid
+    lo, hi = 0, len(sorted_ks)
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if sc > sorted_ks[mid]:
+            lo = mid + 1
+        else:
+            hi = mid
+    # flagged without the fence at every level, else exactly where it exceeds k
+    return (len(sorted_ks) if _flagged(np.nan, fl, 0.0, min_det) else lo), lo
+
+
+@numba.njit(cache=True)
 def _candidates(score, flat, value, expected, sorted_ks, min_det):
     """Every hour flagged at the smallest multiplier, in series then hour order.
 
@@ -117,17 +132,7 @@ def _candidates(score, flat, value, expected, sorted_ks, min_det):
             sc, fl = score[s, t], flat[s, t]
             if not _flagged(sc, fl, sorted_ks[0], min_det):
                 continue
-            # levels whose multiplier the score exceeds: a prefix of the sorted grid
-            lo, hi = 0, n_k
-            while lo < hi:
-                mid = (lo + hi) // 2
-                if sc > sorted_ks[mid]:
-                    lo = mid + 1
-                else:
-                    hi = mid
-            f_depth[c] = lo
-            # flagged without the fence at every level, else exactly where it exceeds k
-            depth[c] = n_k if _flagged(np.nan, fl, 0.0, min_det) else lo
+            depth[c], f_depth[c] = _depths(sc, fl, sorted_ks, min_det)
             c_s[c], c_t[c], c_score[c], c_flat[c] = s, t, sc, fl
             c_value[c], c_expected[c] = value[s, t], expected[s, t]
             c += 1
@@ -135,9 +140,55 @@ def _candidates(score, flat, value, expected, sorted_ks, min_det):
 
 
 @numba.njit(cache=True)
+def _sparse_candidates(series, hours, score, flat, value, expected, sorted_ks, min_det):
+    """`_candidates` of hours given as parallel arrays (in series then hour order, a
+    superset of the flagged ones; every hour not given is unflagged)."""
+    n_k = len(sorted_ks)
+    m = 0
+    if n_k:
+        for i in range(len(series)):
+            m += _flagged(score[i], flat[i], sorted_ks[0], min_det)
+    c_s = np.empty(m, dtype=np.int64)
+    c_t = np.empty(m, dtype=np.int64)
+    depth = np.empty(m, dtype=np.int64)
+    f_depth = np.empty(m, dtype=np.int64)
+    c_score = np.empty(m, dtype=np.float64)
+    c_flat = np.empty(m, dtype=np.bool_)
+    c_value = np.empty(m, dtype=np.float64)
+    c_expected = np.empty(m, dtype=np.float64)
+    c = 0
+    for i in range(len(series) if m else 0):
+        sc, fl = score[i], flat[i]
+        if not _flagged(sc, fl, sorted_ks[0], min_det):
+            continue
+        depth[c], f_depth[c] = _depths(sc, fl, sorted_ks, min_det)
+        c_s[c], c_t[c], c_score[c], c_flat[c] = series[i], hours[i], sc, fl
+        c_value[c], c_expected[c] = value[i], expected[i]
+        c += 1
+    return c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected
+
+
+@numba.njit(cache=True)
 def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, ms,
                  start_lo, start_hi):
-    """The kept runs of flagged hours of a multiplier grid (see `episode_runs`).
+    """`_runs_core` of every hour of (n_series, n_hours) arrays."""
+    return _runs_core(_candidates(score, flat, value, expected, sorted_ks, min_det),
+                      len(sorted_ks), ms, start_lo, start_hi)
+
+
+@numba.njit(cache=True)
+def _sparse_runs_kernel(series, hours, score, flat, value, expected, sorted_ks, min_det, ms,
+                        start_lo, start_hi):
+    """`_runs_core` of the hours given as parallel arrays (`_sparse_candidates`)."""
+    return _runs_core(_sparse_candidates(series, hours, score, flat, value, expected,
+                                         sorted_ks, min_det),
+                      len(sorted_ks), ms, start_lo, start_hi)
+
+
+@numba.njit(cache=True)
+def _runs_core(cands, n_k, ms, start_lo, start_hi):
+    """The kept runs of flagged hours of a multiplier grid (see `episode_runs`), from
+    the candidate hours `cands` (`_candidates`) of a grid of `n_k` multipliers.
 
     Per run and ascending minimum impact ``ms[l]``, the raised hour: the first hour
     at which |impact so far| (the running sum of value - expected) reaches ``ms[l]``
@@ -152,10 +203,7 @@ def _runs_kernel(score, flat, value, expected, sorted_ks, min_det, ms,
     series then start order; each run drops at least one hour, so there are at
     most as many runs as candidate hours.
     """
-    n_k = len(sorted_ks)
-    c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected = _candidates(
-        score, flat, value, expected, sorted_ks, min_det
-    )
+    c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected = cands
     m = len(c_s)
     n_m = len(ms)
     ints = np.empty((8, m), dtype=np.int64)
@@ -348,19 +396,51 @@ def episode_runs(
     flat = np.ascontiguousarray(np.atleast_2d(flat), dtype=np.bool_)
     value = np.ascontiguousarray(np.atleast_2d(value), dtype=np.float64)
     expected = np.ascontiguousarray(np.atleast_2d(expected), dtype=np.float64)
+    sorted_ks, order, ms, by_size = _grids(ks, min_impact)
+    lo, hi = (0, score.shape[1]) if start_hours is None else start_hours
+    return _kept_runs(_runs_kernel(score, flat, value, expected, sorted_ks, int(min_detectors),
+                                   ms, int(lo), int(hi)), order, by_size)
+
+
+def episode_runs_at(
+    series: np.ndarray,
+    hours: np.ndarray,
+    score: np.ndarray,
+    flat: np.ndarray,
+    value: np.ndarray,
+    expected: np.ndarray,
+    ks: np.ndarray,
+    min_detectors: int,
+    min_impact: float | np.ndarray,
+    start_hours: tuple[int, int],
+) -> EpisodeRuns:
+    """`episode_runs` of the hours given as parallel arrays (in series then hour order);
+    every hour not given is unflagged. The same runs as `episode_runs` of the dense
+    arrays these hours come from, without building them."""
+    sorted_ks, order, ms, by_size = _grids(ks, min_impact)
+    as_int = [np.ascontiguousarray(a, dtype=np.int64) for a in (series, hours)]
+    as_float = [np.ascontiguousarray(a, dtype=np.float64) for a in (score, value, expected)]
+    lo, hi = start_hours
+    return _kept_runs(_sparse_runs_kernel(
+        *as_int, as_float[0], np.ascontiguousarray(flat, dtype=np.bool_), *as_float[1:],
+        sorted_ks, int(min_detectors), ms, int(lo), int(hi)), order, by_size)
+
+
+def _grids(ks, min_impact):
+    """The multiplier grid sorted, its order, and the minimum impacts sorted with theirs."""
     ks = np.ascontiguousarray(np.atleast_1d(ks), dtype=np.float64)
     order = np.argsort(ks, kind="stable")  # NaN sorts last
     ms = np.ascontiguousarray(np.atleast_1d(min_impact), dtype=np.float64)
     if len(ms) == 0 or np.isnan(ms).any():
         raise ValueError(f"min_impact must be a number or a grid of numbers, but got {ms}")
-    lo, hi = (0, score.shape[1]) if start_hours is None else start_hours
     by_size = np.argsort(ms, kind="stable")  # the kernel reaches them in ascending order
+    return ks[order], order, ms[by_size], by_size
+
+
+def _kept_runs(out, order, by_size) -> EpisodeRuns:
     # the kernel returns views of arrays sized for every candidate hour: copied, the
     # runs kept hold only their own memory
-    ints, floats, raised_sorted = (a.copy() for a in _runs_kernel(
-        score, flat, value, expected, ks[order], int(min_detectors), ms[by_size], int(lo),
-        int(hi),
-    ))
+    ints, floats, raised_sorted = (a.copy() for a in out)
     raised = np.empty_like(raised_sorted)
     raised[by_size] = raised_sorted
     keep = raised[0] >= 0

@@ -18,7 +18,13 @@ import pandas as pd
 from tqdm.auto import tqdm
 
 from calibrate.decomposition.decompose import fence_scores
-from calibrate.detection.detectors import MIN_FLATLINE, episode_runs, flatline_flags
+from calibrate.detection.detectors import (
+    MIN_FLATLINE,
+    EpisodeRuns,
+    episode_runs,
+    episode_runs_at,
+    flatline_flags,
+)
 from calibrate.detection.episodes import CodedEpisodes, Episodes
 from calibrate.engine.executors import Executor, SerialExecutor, batched, trim_heap
 from calibrate.engine.tasks import stream_task, tuning_task
@@ -76,6 +82,44 @@ class HourScores:
         with np.errstate(invalid="ignore"):
             count = (self.score > k).astype(np.int8) + self.flat.astype(np.int8)
         return count >= self.settings.min_detectors
+
+    def runs(self, ks: np.ndarray, min_impact: float | np.ndarray,
+             start_hours: tuple[int, int] | None) -> EpisodeRuns:
+        """`episode_runs` of these hours."""
+        return episode_runs(self.score, self.flat, self.value, self.expected, ks,
+                            self.settings.min_detectors, min_impact, start_hours)
+
+    def scores_before(self, hour: int) -> np.ndarray:
+        """The fence scores of the hours before `hour` (NaN: none)."""
+        return self.score[:, :hour]
+
+
+@dataclass
+class TuningScores:
+    """`HourScores` read from the tuning store (`Replayer.tuning_scores`): the same
+    runs and scores before `end`, without dense arrays."""
+
+    level: str
+    metric: str
+    settings: DetectorSettings
+    hours: TuningHours
+    value: np.ndarray  # the history's (n_series, n_hours)
+
+    def runs(self, ks: np.ndarray, min_impact: float | np.ndarray,
+             start_hours: tuple[int, int] | None) -> EpisodeRuns:
+        th = self.hours
+        series, hours = np.divmod(th.index.astype(np.int64), th.end)
+        f = self.settings.flatline_hours
+        flat = th.flat[f] if f >= MIN_FLATLINE else np.zeros(len(series), dtype=bool)
+        return episode_runs_at(series, hours, th.score, flat, self.value[series, hours],
+                               th.expected, ks, self.settings.min_detectors, min_impact,
+                               (0, th.end) if start_hours is None else start_hours)
+
+    def scores_before(self, hour: int) -> np.ndarray:
+        th = self.hours
+        if hour > th.end:
+            raise ValueError(f"the store ends at hour {th.end}, before {hour}")
+        return th.score[th.index % th.end < hour]
 
 
 @dataclass
@@ -306,9 +350,9 @@ class Replayer:
         return out
 
     def tuning_scores(self, config: DetectorConfig, end: int, low: float
-                      ) -> dict[tuple[str, str], HourScores]:
+                      ) -> dict[tuple[str, str], TuningScores]:
         """`scores` over hours [0, end) for a multiplier grid whose lowest value is `low`:
-        the same episodes for every such grid (`TuningHours`), from a store a fraction
+        the same runs for every such grid (`TuningHours`), from a store a fraction
         of the size of the remainder streams, and no hour from `end` on is read.
 
         The store keeps, per decomposition setting, every fence window, sides and
@@ -350,23 +394,11 @@ class Replayer:
                                     for w in windows for sd in sides}
                 self.fits += self.history.levels[lv].n_series
         out = {}
-        n = self.history.n_hours
         for lv in self.levels:
             for m in self.metrics:
                 s = config.for_series(lv, m)
                 th = self.tuning[(*self._key(lv, m, s), end, low)][(s.fence_window_hours, s.sides)]
-                value = self.shared[(lv, m)]
-                score = np.full(value.shape, np.nan)
-                expected = np.full(value.shape, np.nan)
-                flat = np.zeros(value.shape, dtype=bool)
-                # the store's index counts hours [0, end); these arrays are n hours wide
-                at = th.index.astype(np.int64)
-                at = at // end * n + at % end
-                score.flat[at] = th.score
-                expected.flat[at] = th.expected
-                if s.flatline_hours >= MIN_FLATLINE:
-                    flat.flat[at] = th.flat[s.flatline_hours]
-                out[(lv, m)] = HourScores(lv, m, s, value, expected, score, flat)
+                out[(lv, m)] = TuningScores(lv, m, s, th, self.shared[(lv, m)])
         return out
 
     def drop_tuning(self) -> None:
@@ -439,7 +471,7 @@ def _fill(st: StreamSet, rows: np.ndarray, out: list) -> None:
 
 
 def sweep(
-    scores: dict[tuple[str, str], HourScores],
+    scores: dict[tuple[str, str], HourScores | TuningScores],
     ks: np.ndarray | None,
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,
@@ -472,7 +504,7 @@ def sweep(
 
 
 def sweep_codes(
-    scores: dict[tuple[str, str], HourScores],
+    scores: dict[tuple[str, str], HourScores | TuningScores],
     ks: np.ndarray | None,
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,
@@ -527,8 +559,7 @@ def _pair_runs(scores, ks, routes, apply_min_impact, start_hours, min_impacts=No
             min_impact = min_impacts[m]
         else:
             min_impact = ms.settings.min_impact if apply_min_impact else 0.0
-        runs.append(episode_runs(ms.score, ms.flat, ms.value, ms.expected, grid,
-                                 ms.settings.min_detectors, min_impact, start_hours))
+        runs.append(ms.runs(grid, min_impact, start_hours))
     return runs, teams, team_of
 
 
@@ -551,7 +582,7 @@ class RunTable:
 
 
 def sweep_runs(
-    scores: dict[tuple[str, str], HourScores],
+    scores: dict[tuple[str, str], HourScores | TuningScores],
     ks: np.ndarray,
     routes: dict[str, np.ndarray] | None = None,
     apply_min_impact: bool = True,

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from calibrate.api import Session
-from calibrate.engine.replay import HourScores, Replayer, sweep_codes, sweep_runs
+from calibrate.engine.replay import HourScores, Replayer, TuningScores, sweep_codes, sweep_runs
 from calibrate.errors import InputError
 from calibrate.inputs.incidents import Incidents
 from calibrate.inputs.workspace import BASE_GROUP, Goal
@@ -33,6 +33,8 @@ from calibrate.scoring.tradeoffs import best_tradeoffs, curve_loads, load_axis
 from calibrate.settings import DetectorConfig
 
 KNOWN_FALSE_PENALTY = 1.0
+# per (level, metric): a replay's scores or the tuning store's
+Scores = dict[tuple[str, str], HourScores | TuningScores]
 
 
 @dataclass
@@ -124,7 +126,7 @@ class Evaluator:
         if self.known_false is not None and len(self.known_false):
             self.false_windows = self.known_false
 
-    def scores(self, config: DetectorConfig) -> dict[tuple[str, str], HourScores]:
+    def scores(self, config: DetectorConfig) -> Scores:
         """What `config` flags on hours before `scores_end`
         (`Replayer.tuning_scores`: each decomposition setting fitted once)."""
         return self.replayer.tuning_scores(config, self.scores_end, float(self.ks.min()))
@@ -133,7 +135,7 @@ class Evaluator:
     def n_days(self) -> float:
         return (self.split_hour - self.first_hour) / 24.0
 
-    def curve(self, scores: dict[tuple[str, str], HourScores]) -> tuple[Curve, np.ndarray, Any]:
+    def curve(self, scores: Scores) -> tuple[Curve, np.ndarray, Any]:
         """Curve on the tuning hours, known-false alerts per k, and the episodes."""
         eps = sweep_codes(scores, self.ks, self.replayer.routes,
                           start_hours=(self.first_hour, self.split_hour))
@@ -169,19 +171,19 @@ class Evaluator:
             return ev
         return self._evaluate_groups(config, scores)
 
-    def breakpoints(self, scores: dict[tuple[str, str], HourScores]) -> np.ndarray:
+    def breakpoints(self, scores: Scores) -> np.ndarray:
         """Every multiplier at which the flags change, within the grid's range: each
         distinct fence score of the hours before the split in (min grid, max grid],
         plus the grid itself (today's multiplier among it)."""
         low, high = float(self.ks.min()), float(self.ks.max())
         parts = [self.ks]
         for ms in scores.values():
-            v = ms.score[:, :self.split_hour]
+            v = ms.scores_before(self.split_hour)
             with np.errstate(invalid="ignore"):
                 parts.append(np.unique(v[(v > low) & (v <= high)]))  # no copy of all hours
         return np.unique(np.concatenate(parts))
 
-    def _exact(self, scores: dict[tuple[str, str], HourScores],
+    def _exact(self, scores: Scores,
                grids: dict[str, np.ndarray] | None):
         """`scoring.curves.exact_solve` over every breakpoint multiplier (and minimum-impact
         level of `grids`; None: each series' own minimum impact)."""
@@ -244,7 +246,7 @@ class Evaluator:
                 for c, x, k, lv in pts]
 
     def _evaluate_groups(self, config: DetectorConfig,
-                         scores: dict[tuple[str, str], HourScores]) -> Evaluation:
+                         scores: Scores) -> Evaluation:
         parts, teams = self._group_parts(config, scores)
         j = self._joint(parts, teams, self.judge.max_miss_rate)
         ev = self._figures(feasible=True, reason="",
@@ -278,7 +280,7 @@ class Evaluator:
         return [solves[int(-k)] for _, _, k, _ in pts]
 
     def _group_parts(self, config: DetectorConfig,
-                     scores: dict[tuple[str, str], HourScores]) -> tuple[list, list[str]]:
+                     scores: Scores) -> tuple[list, list[str]]:
         """Every group's candidates (`_candidates`) and the teams they route to."""
         teams = list(self.ses.analysts)
         parts = []
@@ -318,7 +320,7 @@ class Evaluator:
         return JointSolve(caught=int(caught.sum()), alerts=alerts, kf=kf, team_alerts=ta,
                           group_k=group_k, group_min_impact=group_m)
 
-    def _candidates(self, name: str, sub: dict[tuple[str, str], HourScores],
+    def _candidates(self, name: str, sub: Scores,
                     teams: list[str]):
         """One group's candidates: (name, caught (n_cand, n_inc), minimum impact grid or
         None, alerts, known-false alerts, curves (candidate i is row i % n_k of curve
@@ -340,7 +342,7 @@ class Evaluator:
         alerts = np.concatenate([c.alerts for c in curves])
         return name, caught, grid, alerts, np.concatenate(kfs), curves
 
-    def _impact_curves(self, scores: dict[tuple[str, str], HourScores],
+    def _impact_curves(self, scores: Scores,
                        grids: dict[str, np.ndarray]):
         """Curves over the multiplier grid for every minimum-impact level of `grids`
         (tuning hours), the known-false alerts of each, and which incidents each
