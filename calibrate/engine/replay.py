@@ -1,8 +1,9 @@
 """Hour-by-hour replay of the detector over every level and metric (stage 5).
 
-`Replayer` holds the history arrays, the executor and a cache of remainder
-streams keyed by the decomposition settings, so repeated replays (one per search
-trial) refit only when a setting the decomposition depends on changes. `replay`
+`Replayer` holds the history arrays, the executor, a cache of remainder streams
+keyed by the decomposition settings (full replays) and the store of tuning hours
+search trials read (`tuning_scores`), so a decomposition setting is refitted only
+when a setting it depends on changes. `replay`
 is the one-call convenience around it. Results stay numpy arrays; frames are made
 only by `alerts_frame` / `scores_frame` at the edge.
 """
@@ -140,7 +141,7 @@ class TuningHours:
     exceeds `low` or a flatline detector flags it (`episode_runs` starts from exactly
     those hours), so only they are kept: ``index`` (series * end + hour, ascending),
     their fence score and expected value, and per flatline length its flags. Every
-    other hour reads back as a NaN score, unflagged (`Replayer.tuning_scores`).
+    other hour is unflagged at every multiplier of such a grid (`TuningScores`).
     """
 
     n_series: int
