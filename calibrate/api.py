@@ -63,6 +63,11 @@ class Session:
         return min(max(idx, 0), self.history.n_hours)
 
 
+# a history holding more than this (its level arrays) is followed by `trim_heap`, which
+# costs a garbage collection (about 0.08 s), worth it only after a large load
+TRIM_BYTES = 64 * 2**20
+
+
 def open_session(path: str | Path, incidents: bool = True) -> Session:
     """Load a workspace, its history, owners routing and (optionally) incidents."""
     ws = load_workspace(path)
@@ -74,7 +79,8 @@ def open_session(path: str | Path, incidents: bool = True) -> Session:
     inc = None
     if incidents and ws.incidents.path is not None:
         inc = route_teams(load_incidents(ws, history), routes)
-    trim_heap()  # the frames the history was built from are gone
+    if sum(v.nbytes for ls in history.levels.values() for v in ls.values.values()) > TRIM_BYTES:
+        trim_heap()  # the frames a large history was built from are gone
     return Session(ws, history, routes, inc)
 
 

@@ -405,7 +405,7 @@ class Replayer:
     def drop_tuning(self) -> None:
         """Drop the `tuning_scores` store (and give its memory back)."""
         self.tuning.clear()
-        trim_heap()
+        trim_heap(collect=False)
 
     @property
     def tuning_bytes(self) -> int:
