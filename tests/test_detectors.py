@@ -18,7 +18,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from calibrate.detection.detectors import episodes_grid
+from calibrate.detection.detectors import episode_runs, episode_runs_at, episodes_grid
 from calibrate.engine.replay import HourScores, sweep, sweep_codes, sweep_runs
 from calibrate.inputs.incidents import Incidents
 from calibrate.scoring.curves import impact_curves, multiplier_curve
@@ -275,3 +275,23 @@ def test_run_table_curves_equal_replays_at_each_minimum_impact(seed: int) -> Non
         np.testing.assert_array_equal(caught[lv].sum(axis=1), ca.caught)
         moved |= lv > 0 and bool((cb.alerts != curves[0].alerts).any())
     assert moved and max(c.caught.max() for c in curves) > 0
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_runs_of_given_hours_equal_runs_of_the_dense_arrays(seed):
+    """Reference: `episode_runs` of the dense arrays. Given only the hours whose score
+    exceeds the grid's lowest multiplier or whose flatline flag is set (what the tuning
+    store keeps), `episode_runs_at` finds the same runs, raised hours and sums."""
+    score, flat, value, expected = random_arrays(seed)
+    ks = np.array([1.0, 1.5, 2.5, 4.0])
+    ms = np.array([0.0, 40.0, 150.0])
+    for min_det in (1, 2):
+        ref = episode_runs(score, flat, value, expected, ks, min_det, ms, (10, 100))
+        with np.errstate(invalid="ignore"):
+            s, t = np.nonzero((score > ks.min()) | flat)
+        got = episode_runs_at(s, t, score[s, t], flat[s, t], value[s, t], expected[s, t], ks,
+                              min_det, ms, (10, 100))
+        assert len(ref.ints[0]) > 5
+        for a, b in zip(ref[:4], got[:4], strict=True):
+            np.testing.assert_array_equal(a, b)
+        assert ref.n_rows == got.n_rows

@@ -102,6 +102,15 @@ def _depths(sc, fl, sorted_ks, min_det):
 
 
 @numba.njit(cache=True)
+def _candidate_arrays(m):
+    """Empty candidate columns for `m` hours (see `_candidates`)."""
+    return (np.empty(m, dtype=np.int64), np.empty(m, dtype=np.int64),
+            np.empty(m, dtype=np.int64), np.empty(m, dtype=np.int64),
+            np.empty(m, dtype=np.float64), np.empty(m, dtype=np.bool_),
+            np.empty(m, dtype=np.float64), np.empty(m, dtype=np.float64))
+
+
+@numba.njit(cache=True)
 def _candidates(score, flat, value, expected, sorted_ks, min_det):
     """Every hour flagged at the smallest multiplier, in series then hour order.
 
@@ -118,14 +127,7 @@ def _candidates(score, flat, value, expected, sorted_ks, min_det):
         for s in range(n_s):
             for t in range(n):
                 m += _flagged(score[s, t], flat[s, t], sorted_ks[0], min_det)
-    c_s = np.empty(m, dtype=np.int64)
-    c_t = np.empty(m, dtype=np.int64)
-    depth = np.empty(m, dtype=np.int64)
-    f_depth = np.empty(m, dtype=np.int64)
-    c_score = np.empty(m, dtype=np.float64)
-    c_flat = np.empty(m, dtype=np.bool_)
-    c_value = np.empty(m, dtype=np.float64)
-    c_expected = np.empty(m, dtype=np.float64)
+    c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected = _candidate_arrays(m)
     c = 0
     for s in range(n_s if m else 0):
         for t in range(n):
@@ -148,14 +150,7 @@ def _sparse_candidates(series, hours, score, flat, value, expected, sorted_ks, m
     if n_k:
         for i in range(len(series)):
             m += _flagged(score[i], flat[i], sorted_ks[0], min_det)
-    c_s = np.empty(m, dtype=np.int64)
-    c_t = np.empty(m, dtype=np.int64)
-    depth = np.empty(m, dtype=np.int64)
-    f_depth = np.empty(m, dtype=np.int64)
-    c_score = np.empty(m, dtype=np.float64)
-    c_flat = np.empty(m, dtype=np.bool_)
-    c_value = np.empty(m, dtype=np.float64)
-    c_expected = np.empty(m, dtype=np.float64)
+    c_s, c_t, depth, f_depth, c_score, c_flat, c_value, c_expected = _candidate_arrays(m)
     c = 0
     for i in range(len(series) if m else 0):
         sc, fl = score[i], flat[i]
