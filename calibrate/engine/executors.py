@@ -164,14 +164,13 @@ def steady_heap() -> None:
     A task allocates and frees arrays of a few MB per series. glibc gives such blocks
     back to the system when they are freed (unmapped, or the heap's top trimmed) and
     the next task takes fresh pages, which the kernel must zero: measured on a
-    1,105-series tune, a third of each worker's time went to the kernel. Serving
+    1,105-series tune, that was about a third of each worker's time. Serving
     blocks up to 32 MB from the heap and keeping up to 64 MB free at its top makes the
     pages stay; the worker's peak memory is unchanged, it is only held between tasks.
     """
     global heap_steady
-    try:
-        mallopt = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").mallopt
-    except (OSError, AttributeError):  # pragma: no cover - not glibc
+    mallopt = _libc_function("mallopt")
+    if mallopt is None:  # pragma: no cover - not glibc
         return
     heap_steady = bool(mallopt(M_MMAP_THRESHOLD, HEAP_MMAP_BYTES)
                        and mallopt(M_TRIM_THRESHOLD, HEAP_TRIM_BYTES))
@@ -185,10 +184,17 @@ def trim_heap(collect: bool = True) -> None:
     `collect`: run the garbage collector first."""
     if collect:
         gc.collect()
+    malloc_trim = _libc_function("malloc_trim")
+    if malloc_trim is not None:
+        malloc_trim(0)
+
+
+def _libc_function(name: str) -> Callable | None:
+    """A function of glibc's C library, None where there is none."""
     try:
-        ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6").malloc_trim(0)
+        return getattr(ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6"), name)
     except (OSError, AttributeError):  # pragma: no cover - not glibc
-        pass
+        return None
 
 
 def _run_task(token: int, fn: Callable, index: int, task: Any) -> tuple[int, Any]:

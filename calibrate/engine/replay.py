@@ -144,17 +144,11 @@ class TuningHours:
     other hour is unflagged at every multiplier of such a grid (`TuningScores`).
     """
 
-    n_series: int
     end: int
     index: np.ndarray
     score: np.ndarray
     expected: np.ndarray
     flat: dict[int, np.ndarray]
-
-    @property
-    def nbytes(self) -> int:
-        arrays = [self.index, self.score, self.expected, *self.flat.values()]
-        return sum(a.nbytes for a in arrays)
 
 
 @dataclass
@@ -407,11 +401,6 @@ class Replayer:
         self.tuning.clear()
         trim_heap(collect=False)
 
-    @property
-    def tuning_bytes(self) -> int:
-        """Bytes held by the `tuning_scores` store."""
-        return sum(th.nbytes for parts in self.tuning.values() for th in parts.values())
-
     def replay(self, config: DetectorConfig) -> ReplayResult:
         """Replay `config`: per-hour scores and the alert episodes it raises."""
         scores = self.scores(config)
@@ -433,7 +422,7 @@ def _tuning_hours(per_series: list, part: tuple[int, str], end: int) -> TuningHo
                            + [np.empty(0, dtype=dtype)])
     flats = pieces[0][1][3].keys() if pieces else ()
     return TuningHours(
-        n_series=len(pieces), end=end, index=index,
+        end=end, index=index,
         score=np.concatenate([p[1] for _, p in pieces] + [np.empty(0)]),
         expected=np.concatenate([p[2] for _, p in pieces] + [np.empty(0)]),
         flat={f: np.concatenate([p[3][f] for _, p in pieces] + [np.empty(0, dtype=bool)])
@@ -598,33 +587,26 @@ def sweep_runs(
     runs_of, teams, team_of = _pair_runs(scores, ks, routes, apply_min_impact, start_hours,
                                          min_impacts)
     order = np.argsort(ks, kind="stable")  # as episode_runs sorts the grid
+    parts = [(p, r, team_of[lv][r.ints[0]] if lv in team_of
+              else np.zeros(r.ints.shape[1], dtype=np.int64))
+             for p, ((lv, _m), r) in enumerate(zip(scores, runs_of, strict=True))]
+
+    def joined(arrays: list[np.ndarray], rows: int, dtype) -> np.ndarray:
+        return (np.concatenate(arrays, axis=-1) if arrays
+                else np.empty((rows, 0) if rows else 0, dtype=dtype))
+
+    ints = joined([r.ints for _, r, _ in parts], 8, np.int64)
+    floats = joined([r.floats for _, r, _ in parts], 3, np.float64)
     n_m = len(next(iter(min_impacts.values()))) if min_impacts else 1
-    sizes = [r.ints.shape[1] for r in runs_of]
-    n = sum(sizes)
-    ints = np.empty((8, n), dtype=np.int64)
-    floats = np.empty((3, n), dtype=np.float64)
-    raised = np.empty((n_m, n), dtype=np.int64)
-    pair = np.empty(n, dtype=np.int64)
-    team = np.zeros(n, dtype=np.int64)
-    row = 0
-    # each pair's runs are copied in and let go of at once, so the table and its parts
-    # are never all in memory together
-    for p, (lv, _m) in enumerate(scores):
-        r, runs_of[p] = runs_of[p], None
-        part = slice(row, row + sizes[p])
-        ints[:, part] = r.ints
-        floats[:, part] = r.floats
-        raised[:, part] = r.raised
-        pair[part] = p
-        if lv in team_of:
-            team[part] = team_of[lv][r.ints[0]]
-        row += sizes[p]
-        del r
+    raised = joined([r.raised for _, r, _ in parts], n_m, np.int64)
+    pair = joined([np.full(r.ints.shape[1], p, dtype=np.int64) for p, r, _ in parts], 0,
+                  np.int64)
     runs = CodedEpisodes(
         pair=pair, series=ints[0], start=ints[1], end=ints[2], peak_hour=ints[5],
         peak_score=floats[0], value=floats[1], expected=floats[2], bits=ints[7],
-        team_code=team, grid=np.zeros(n, dtype=np.int64), raised=raised[0],
-        pairs=tuple(scores), teams=teams,
+        team_code=joined([t for _, _, t in parts], 0, np.int64),
+        grid=np.zeros(len(pair), dtype=np.int64), raised=raised[0], pairs=tuple(scores),
+        teams=teams,
     )
     return RunTable(runs=runs, lo=ints[3], hi=ints[4], order=order, raised=raised)
 
