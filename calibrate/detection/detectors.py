@@ -122,7 +122,7 @@ def _candidates(score, flat, value, expected, sorted_ks, min_det):
     """
     n_s, n = score.shape
     n_k = len(sorted_ks)
-    m = 0
+    m = np.int64(0)  # not a bare 0: numba would type it as a literal (one more copy)
     if n_k:
         for s in range(n_s):
             for t in range(n):
@@ -146,7 +146,7 @@ def _sparse_candidates(series, hours, score, flat, value, expected, sorted_ks, m
     """`_candidates` of hours given as parallel arrays (in series then hour order, a
     superset of the flagged ones; every hour not given is unflagged)."""
     n_k = len(sorted_ks)
-    m = 0
+    m = np.int64(0)  # not a bare 0: numba would type it as a literal (one more copy)
     if n_k:
         for i in range(len(series)):
             m += _flagged(score[i], flat[i], sorted_ks[0], min_det)
