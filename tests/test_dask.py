@@ -396,3 +396,27 @@ def test_worker_tasks_import_no_pandas():
     code = ("import sys, calibrate.engine.tasks, calibrate.engine.executors; "
             "sys.exit(int('pandas' in sys.modules))")
     assert subprocess.run([sys.executable, "-c", code]).returncode == 0
+
+
+def test_workers_run_the_callers_copy_of_calibrate(tmp_path):
+    """Started from a folder holding another package named calibrate (a checkout beside
+    an installed copy), local workers still import the caller's copy: Python 3.11's
+    fork server is started without the caller's sys.path, so nothing of ours may be
+    preloaded in it."""
+    (tmp_path / "other" / "calibrate").mkdir(parents=True)
+    (tmp_path / "other" / "calibrate" / "__init__.py").write_text("")
+    script = tmp_path / "where.py"
+    script.write_text(
+        "import importlib.util\n"
+        "import calibrate\n"
+        "from calibrate.engine.executors import LocalExecutor\n"
+        "if __name__ == '__main__':\n"
+        "    with LocalExecutor(2) as ex:\n"
+        "        spec = importlib.util.find_spec\n"
+        "        got = {r.origin for _, r in ex.run(spec, 'calibrate', [None, None])}\n"
+        "    print(got == {calibrate.__file__}, got, calibrate.__file__)\n")
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    done = subprocess.run([sys.executable, str(script)], cwd=tmp_path / "other", env=env,
+                          capture_output=True, text=True, timeout=120)
+    assert done.returncode == 0, done.stderr[-2000:]
+    assert done.stdout.startswith("True"), done.stdout

@@ -85,9 +85,13 @@ def _start_fork_server() -> None:
     """
     from multiprocessing import forkserver
 
-    # not the default `__main__`: where Python honours it, the fork server would run
-    # the calling script (an unguarded one would start a replay there, breaking the pool)
-    forkserver.set_forkserver_preload(["calibrate.engine.executors"])
+    # Nothing preloaded. Not the default `__main__`: where Python honours it, the fork
+    # server would run the calling script (an unguarded one would start a replay there,
+    # breaking the pool). Not this package either: Python 3.11 starts the fork server
+    # without the caller's sys.path, so beside a checkout it could import another copy
+    # (an installed one) and the workers would run that copy's code; each forked worker
+    # imports what it needs with the caller's sys.path instead.
+    forkserver.set_forkserver_preload([])
     if threading.current_thread() is not threading.main_thread():
         forkserver.ensure_running()  # signal handlers can only be set in the main thread
         return
