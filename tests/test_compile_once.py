@@ -49,7 +49,9 @@ print("MANY:" + ";".join(many))
 
 def test_every_kernel_compiles_once_per_process(tmp_path):
     ws = make_workspace(tmp_path / "ws")
-    env = {**os.environ, "PYTHONPATH": str(ROOT)}
+    # a compile cache of its own, empty: kernels found in a warm cache are not compiled
+    # at all (nor the kernels they call), so a second copy could not show
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "NUMBA_CACHE_DIR": str(tmp_path / "nb")}
     done = subprocess.run([sys.executable, "-c", SCRIPT, str(ws)], env=env,
                           capture_output=True, text=True, timeout=300)
     assert done.returncode == 0, done.stderr[-3000:]
