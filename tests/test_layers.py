@@ -37,7 +37,8 @@ STAGES: dict[str, int] = {
     "tuning.search": 8, "tuning.summaries": 8,
     # 9 outputs: report, analysts' feedback, sample data, the workflows the CLI runs
     "reporting.report_data": 9, "reporting.formats": 9, "reporting.build": 9,
-    "reporting.render": 9, "reporting.plots": 9, "reporting.report": 9,
+    "reporting.render": 9, "reporting.plots": 9, "reporting.settings_table": 9,
+    "reporting.report": 9,
     "feedback.review": 9, "feedback.review_data": 9, "feedback.review_app": 9,
     "feedback.retune": 9, "sample": 9, "demo": 9, "commands": 9,
     # 10 command line

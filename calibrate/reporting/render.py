@@ -24,6 +24,10 @@ from calibrate.reporting.report_data import ReportData, SeriesPanel
 from calibrate.scoring.tables import ANY_LABEL
 
 TEMPLATES = Path(__file__).parents[1] / "templates"
+SETTINGS_FILE_NOTE = (
+    "The chosen settings as one flat table, one row per group and watched metric with "
+    "every setting spelled out (what another detector needs), are in settings.csv beside "
+    "this page.")
 
 
 def summary_dict(data: ReportData) -> dict[str, Any]:
@@ -266,7 +270,8 @@ def render_html(data: ReportData, images: Mapping[str, bytes]) -> str:
     return _environment().get_template("report.html").render(
         data=data, css=CSS, data_uri=data_uri, short_answer=short_answer,
         budgets_text=_budgets_text, goal_rows=goal_rows, metric_rows=metric_rows,
-        fold_table=fold_table, impact_file=_impact_file, panel_file=_panel_file)
+        fold_table=fold_table, impact_file=_impact_file, panel_file=_panel_file,
+        settings_note=SETTINGS_FILE_NOTE)
 
 
 @functools.cache
@@ -327,6 +332,7 @@ def render_markdown(data: ReportData) -> str:
     lines += _md_table(["setting", "current", "chosen", "changed"],
                        [[r.name, show(r.current), show(r.chosen), "**yes**" if r.changed
                          else ""] for r in data.settings])
+    lines += ["", SETTINGS_FILE_NOTE]
     lines += ["", "## 3. Recall against alert load", "", "![trade-off](tradeoff.png)", "",
               "## 4. Moving the fence multiplier and the minimum impact", "",
               "![multiplier](multiplier.png)", "",

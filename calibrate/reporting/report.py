@@ -5,8 +5,10 @@ rollout.
 `write_config_report(ses, config, out_dir)` that of any config
 (`calibrate report --config`). Each replays the settings, computes the content
 (`calibrate.reporting.build`), renders it (`calibrate.reporting.render`: ``index.html``,
-``report.md``, ``summary.json`` and the PNG plots) and writes the folder in one step
-(`calibrate.outputs.write_folder`), with an optional progress bar over those steps.
+``report.md``, ``summary.json`` and the PNG plots; ``settings.csv`` holds the settings as
+one flat table, ``alerts-for-review.csv`` the alerts to review) and writes the folder in
+one step (`calibrate.outputs.write_folder`), with an optional progress bar over those
+steps.
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ from calibrate.reporting.build import build_report_data
 from calibrate.reporting.formats import plain
 from calibrate.reporting.render import render_html, render_markdown, render_plots, summary_dict
 from calibrate.reporting.report_data import ReportData
+from calibrate.reporting.settings_table import settings_csv
 from calibrate.settings import DetectorConfig
 from calibrate.tuning import rolling, summaries
 
@@ -60,6 +63,13 @@ def write_report_data_files(files: Mapping[str, bytes], out_dir: str | Path,
 def _review_csv(result: ReplayResult) -> bytes:
 
     return review_frame(result.alerts_frame()).to_csv(index=False).encode("utf-8")
+
+
+def _extra_files(ses: api.Session, config: DetectorConfig, chosen: ReplayResult
+                 ) -> dict[str, bytes]:
+    """The alerts to review and the settings as one flat table (`settings_table`)."""
+    return {"alerts-for-review.csv": _review_csv(chosen),
+            "settings.csv": settings_csv(config, ses.ws.metric_names)}
 
 
 def steps_bar(progress: bool, total: int = 4) -> tqdm:
@@ -104,7 +114,7 @@ def write_config_report(
         ses, chosen, current=cur, first_hour=first, split_hour=split_hour,
         title="Calibration report", source=source))
     step(bar, "plots and files", lambda: write_report_data(
-        data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
+        data, out_dir, force=force, extra=_extra_files(ses, config, chosen)))
     bar.close()
     return data
 
@@ -146,7 +156,7 @@ def write_report(ses: api.Session, result: Any, out_dir: str | Path, *, force: b
             stability={n: [str(x) for x in v]
                        for n, v in rolling.stability(result.folds).items()})
     step(bar, "plots and files", lambda: write_report_data(
-        data, out_dir, force=force, extra={"alerts-for-review.csv": _review_csv(chosen)}))
+        data, out_dir, force=force, extra=_extra_files(ses, result.config, chosen)))
     if steps is None:
         bar.close()
     return data

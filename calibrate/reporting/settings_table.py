@@ -1,0 +1,97 @@
+"""A config as one flat table (stage 9): what another detector needs to apply it.
+
+`tuned.toml` stores group tables as differences from the base table, and a metric's
+minimum impact as an entry of a table. `settings_table` resolves them: one row per
+group (in matching order, the base last) and watched metric, every setting spelled out,
+plus the STL smoother lengths and iteration counts statsmodels resolves from them
+(docs/detector.md, "Detector semantics"). The report folder holds it as ``settings.csv``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import warnings
+from collections.abc import Sequence
+
+import pandas as pd
+
+from calibrate.decomposition.stl import iterations, mstl_settings, stl_config
+from calibrate.settings import DetectorConfig, DetectorSettings
+
+#: columns of the table, in order
+COLUMNS = (
+    "order", "group", "levels", "metric",
+    *(f.name for f in dataclasses.fields(DetectorSettings) if f.name != "min_impact_per_metric"),
+    "stl_periods", "stl_seasonal_spans", "stl_trend_spans", "stl_low_pass_spans",
+    "stl_inner_iterations", "stl_outer_iterations", "stl_passes",
+)
+
+
+def stl_lengths(s: DetectorSettings) -> dict[str, str]:
+    """The periods, smoother lengths and iteration counts the fits of `s` use, as
+    statsmodels resolves them (space-separated, one entry per seasonal component: with
+    `weekly_period` MSTL derives its own seasonal spans, drops a period of half the
+    window or more, and makes two passes over the components when two are left)."""
+    if s.weekly_period:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)
+            periods, spans = mstl_settings(
+                s.decomposition_window_hours, (s.period_hours, 7 * s.period_hours), None)
+    else:
+        periods, spans = (s.period_hours,), (s.seasonal_span,)
+    trend_low = [stl_config(p, w, None if s.weekly_period else s.trend_span or None)
+                 for p, w in zip(periods, spans, strict=True)]
+    inner, outer = iterations(s.robust, None, None)
+
+    def text(values: Sequence[int]) -> str:
+        return " ".join(str(v) for v in values)
+
+    return {
+        "stl_periods": text(periods),
+        "stl_seasonal_spans": text(spans),
+        "stl_trend_spans": text([t for t, _ in trend_low]),
+        "stl_low_pass_spans": text([lp for _, lp in trend_low]),
+        "stl_inner_iterations": str(inner),
+        "stl_outer_iterations": str(outer),
+        "stl_passes": str(2 if len(periods) > 1 else 1),
+    }
+
+
+def settings_table(config: DetectorConfig, metrics: Sequence[str]) -> pd.DataFrame:
+    """One row per group and watched metric with every setting resolved.
+
+    Parameters
+    ----------
+    config : DetectorConfig
+        The settings (base table and ordered groups).
+    metrics : sequence of str
+        The watched metrics, in the workspace's order.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns `COLUMNS`. A series of level l and metric m uses the first row (lowest
+        `order`) whose `levels` holds l (or is ``any``) and whose `metric` is m; the base
+        rows (group ``base``, levels ``any``) come last and cover every other series.
+        `min_impact` is that metric's own, in its units.
+    """
+    scopes = [(g.name, g.levels, g.metrics, g.settings) for g in config.groups]
+    scopes.append(("base", (), (), config.base))
+    rows = []
+    for order, (name, levels, only, settings) in enumerate(scopes, start=1):
+        lengths = stl_lengths(settings)
+        for metric in metrics:
+            if only and metric not in only:
+                continue
+            values = dataclasses.asdict(settings)
+            values.pop("min_impact_per_metric")
+            values["min_impact"] = settings.impact_for(metric)
+            rows.append({"order": order, "group": name,
+                         "levels": " ".join(levels) if levels else "any",
+                         "metric": metric, **values, **lengths})
+    return pd.DataFrame(rows, columns=list(COLUMNS))
+
+
+def settings_csv(config: DetectorConfig, metrics: Sequence[str]) -> bytes:
+    """`settings_table` as CSV bytes (floats written in full, as in tuned.toml)."""
+    return settings_table(config, metrics).to_csv(index=False).encode("utf-8")

@@ -1,0 +1,131 @@
+"""The settings as one flat table (`settings.csv`): each row, applied on its own to the
+series it covers, raises exactly the alerts of the grouped config, and the STL lengths
+it spells out are the ones statsmodels resolves."""
+
+from __future__ import annotations
+
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from statsmodels.tsa.seasonal import MSTL, STL
+
+from calibrate import api
+from calibrate.engine.executors import SerialExecutor
+from calibrate.reporting.report import write_config_report
+from calibrate.reporting.settings_table import COLUMNS, settings_table, stl_lengths
+from calibrate.settings import DetectorConfig, DetectorSettings
+from tests.synthetic import make_workspace
+
+GROUPED = {
+    "fence_window_hours": 48, "fence_multiplier": 2.5,
+    "min_impact": {"impressions": 150.0, "clicks": 4.0},
+    "group": {
+        "markets": {"levels": ["market"], "fence_multiplier": 3.5, "sides": "up"},
+        "clicks": {"metrics": ["clicks"], "expected_value": "forecast",
+                   "fence_multiplier": 2.0},
+    },
+}
+
+
+@pytest.fixture(scope="module")
+def ses(tmp_path_factory: pytest.TempPathFactory) -> api.Session:
+    return api.open_session(make_workspace(tmp_path_factory.mktemp("ws")))
+
+
+def _row_settings(row: pd.Series) -> DetectorSettings:
+    names = [c for c in COLUMNS[4:] if not c.startswith("stl_")]
+    values = {n: row[n].item() if hasattr(row[n], "item") else row[n] for n in names}
+    return DetectorSettings(**values)
+
+
+def _first_row(table: pd.DataFrame, level: str, metric: str) -> pd.Series:
+    """The table's own rule: the lowest `order` whose levels hold the level (or are
+    `any`) and whose metric is the metric."""
+    hit = table[(table["metric"] == metric)
+                & table["levels"].map(lambda s: s == "any" or level in s.split())]
+    return hit.sort_values("order", kind="stable").iloc[0]
+
+
+def test_each_row_alone_raises_the_alerts_of_the_grouped_config(ses) -> None:
+    config = DetectorConfig.from_table(GROUPED, "test")
+    metrics = ses.ws.metric_names
+    table = settings_table(config, metrics)
+    assert list(table.columns) == list(COLUMNS)
+    # every row a series can reach is there: groups in order, the base last
+    assert table["group"].tolist() == ["markets"] * 2 + ["clicks"] + ["base"] * 2
+    assert table["metric"].tolist() == ["impressions", "clicks", "clicks"] * 1 + [
+        "impressions", "clicks"]
+
+    def replay(cfg: DetectorConfig) -> pd.DataFrame:
+        res = api.replay_session(ses, cfg, executor=SerialExecutor(), progress=False)
+        return res.alerts_frame().drop(columns=["alert_id"])
+
+    grouped = replay(config)
+    assert len(grouped) > 0
+    parts = []
+    for _, row in table.iterrows():
+        alone = replay(DetectorConfig(base=_row_settings(row)))
+        mine = [
+            (lv, m) for lv in ses.ws.levels for m in metrics
+            if _first_row(table, lv, m).name == row.name
+        ]
+        keep = alone[[(lv, m) in mine for lv, m in zip(alone["level"], alone["metric"],
+                                                          strict=True)]]
+        parts.append(keep)
+    flat = pd.concat(parts, ignore_index=True)
+    order = ["level", "metric", "start", "raised_hour"]
+    assert len(flat) == len(grouped)
+    pd.testing.assert_frame_equal(
+        flat.sort_values(order, kind="stable").reset_index(drop=True),
+        grouped.sort_values(order, kind="stable").reset_index(drop=True))
+
+
+@pytest.mark.parametrize(("window", "seasonal", "trend", "weekly", "robust"), [
+    (336, 7, 0, False, False),
+    (336, 15, 61, False, True),
+    (672, 7, 0, True, False),
+    (337, 7, 0, True, True),  # the shortest window a weekly period is valid with
+])
+def test_stl_lengths_are_the_ones_statsmodels_resolves(window, seasonal, trend, weekly,
+                                                       robust) -> None:
+    # reference: statsmodels' own STL.config and MSTL.periods / windows
+    s = DetectorSettings(decomposition_window_hours=window, seasonal_span=seasonal,
+                         trend_span=trend, weekly_period=weekly, robust=robust,
+                         fence_window_hours=48)
+    got = stl_lengths(s)
+    y = np.random.default_rng(0).normal(size=window)
+    if weekly:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", UserWarning)  # no period is dropped
+            m = MSTL(y, periods=(24, 168))
+        periods, spans = list(m.periods), list(m.windows)
+        assert got["stl_passes"] == str(m.iterate if len(periods) > 1 else 1)
+    else:
+        periods, spans = [24], [seasonal]
+        assert got["stl_passes"] == "1"
+    configs = [STL(y, period=p, seasonal=w, trend=None if weekly or not trend else trend,
+                   robust=robust).config for p, w in zip(periods, spans, strict=True)]
+    assert got["stl_periods"] == " ".join(map(str, periods))
+    assert got["stl_seasonal_spans"] == " ".join(map(str, spans))
+    assert got["stl_trend_spans"] == " ".join(str(c["trend"]) for c in configs)
+    assert got["stl_low_pass_spans"] == " ".join(str(c["low_pass"]) for c in configs)
+    # the iteration counts are statsmodels' defaults: a fit with them given explicitly
+    # is the default fit, bit for bit
+    stl = STL(y, period=periods[0], seasonal=spans[0], robust=robust)
+    default, explicit = stl.fit(), stl.fit(inner_iter=int(got["stl_inner_iterations"]),
+                                           outer_iter=int(got["stl_outer_iterations"]))
+    assert np.array_equal(default.resid, explicit.resid)
+
+
+def test_the_report_folder_holds_the_table(ses, tmp_path: Path) -> None:
+    config = DetectorConfig.from_table(GROUPED, "test")
+    out = tmp_path / "report"
+    write_config_report(ses, config, out, executor=SerialExecutor())
+    written = pd.read_csv(out / "settings.csv", keep_default_na=False)
+    expect = settings_table(config, ses.ws.metric_names)
+    # the CSV reads back to the same values (floats written at full precision)
+    pd.testing.assert_frame_equal(written.astype(str), expect.astype(str))
+    assert written.loc[written["group"] == "base", "min_impact"].tolist()[:2] == [150.0, 4.0]
