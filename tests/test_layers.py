@@ -29,7 +29,6 @@ STAGES: dict[str, int] = {
     # 6 scoring
     "scoring.matching": 6, "scoring.intervals": 6, "scoring.tables": 6, "scoring.figures": 6,
     "scoring.curves": 6, "scoring.tradeoffs": 6, "scoring.alerts_file": 6,
-    "scoring.hour_level": 6,
     # 7 the session layer: a loaded workspace, replays and figures over it
     "api": 7,
     # 8 tuning

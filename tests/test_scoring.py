@@ -15,7 +15,6 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from sklearn.metrics import precision_recall_fscore_support
 from statsmodels.stats.proportion import proportion_confint
 
 from calibrate.detection.episodes import Episodes
@@ -25,11 +24,6 @@ from calibrate.inputs.workspace import Goal
 from calibrate.scoring.alerts_file import episodes_from_alerts_frame
 from calibrate.scoring.curves import Curve, multiplier_curve, solve_multiplier
 from calibrate.scoring.figures import figures
-from calibrate.scoring.hour_level import (
-    intervals_mask,
-    point_precision_recall,
-    range_precision_recall,
-)
 from calibrate.scoring.intervals import wilson
 from calibrate.scoring.matching import match, period_filter, route_teams
 from calibrate.scoring.tables import breakdown, volume
@@ -253,32 +247,6 @@ def test_match_equals_pairwise_reference(seed: int) -> None:
 
 
 # --------------------------------------------------------------------------- point / range
-
-
-def test_point_level_against_sklearn() -> None:
-    truth = intervals_mask(np.array([2, 10]), np.array([6, 12]), 16)
-    pred = intervals_mask(np.array([4, 11, 14]), np.array([8, 12, 15]), 16)
-    # by hand: truth hours 2..5, 10..11; pred 4..7, 11, 14 -> tp 3, precision 3/6, recall 3/6
-    assert truth.sum() == 6 and pred.sum() == 6
-    p, r = point_precision_recall(truth, pred)
-    # scikit-learn precision_recall_fscore_support(average="binary")
-    sp, sr, _, _ = precision_recall_fscore_support(truth, pred, average="binary")
-    assert (p, r) == pytest.approx((sp, sr)) and p == pytest.approx(0.5)
-    rng = np.random.default_rng(1)
-    for _ in range(20):
-        t, q = rng.random(200) < 0.2, rng.random(200) < 0.3
-        sp, sr, _, _ = precision_recall_fscore_support(t, q, average="binary")  # scikit-learn
-        assert point_precision_recall(t, q) == pytest.approx((sp, sr))
-
-
-def test_range_based_tatbul_examples() -> None:
-    bits = lambda s: np.array([c == "1" for c in s])  # noqa: E731
-    # Tatbul et al. (2018), NeurIPS, "Precision and Recall for Time Series":
-    # alpha=0, flat bias, gamma=1
-    p, r = range_precision_recall(bits("0011111"), bits("0111100"))
-    assert (p, r) == pytest.approx((0.75, 0.6))
-    p, r = range_precision_recall(bits("00110110110"), bits("01111111111"))
-    assert (p, r) == pytest.approx((0.6, 1.0))
 
 
 # --------------------------------------------------------------------------- intervals

@@ -4,6 +4,5 @@
 Wilson and bootstrap intervals; `tables` the figures per group and the weekly volume;
 `figures` one configuration's figures and the out-of-sample verdict; `curves` the
 figures over a multiplier grid and the multiplier solves; `tradeoffs` alert load as one
-number and the Pareto fronts; `alerts_file` an alerts frame read back into episodes;
-`hour_level` hour-level and range precision and recall, for comparison.
+number and the Pareto fronts; `alerts_file` an alerts frame read back into episodes.
 """
