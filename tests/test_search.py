@@ -876,3 +876,25 @@ def test_tuning_store_evaluates_exactly_as_full_replays(tmp_path, tune_by):
     finally:
         ev.replayer.close()
         ref_rp.close()
+
+
+def test_trial_evaluator_scores_a_setting_as_the_tune_did(ses, tmp_path):
+    """`search.trial_evaluator` (what bench_search.py times a store trial with) is the
+    tune's own: today's settings, the study's first trial, get the figures the study
+    recorded, and further trials on the fitted setting refit nothing."""
+    res = _tune(ses, tmp_path, trials=2)
+    store, _ = search.open_storage(ses, str(tmp_path / "study.journal"))
+    first = optuna.load_study(study_name=res.study_name, storage=store).trials[0]
+    ev = search.trial_evaluator(ses, engine="serial")
+    try:
+        got = ev.evaluate(ses.ws.detector)
+        assert got.value == first.value
+        attrs = got.attrs()
+        assert attrs.pop("constraints") == first.user_attrs["constraints"]
+        assert attrs == {k: v for k, v in first.user_attrs.items() if k in attrs}
+        fits = ev.replayer.fits
+        for w in (48, 72):
+            ev.evaluate(ses.ws.detector.with_base(fence_window_hours=w))
+        assert ev.replayer.fits == fits > 0
+    finally:
+        ev.replayer.close()

@@ -883,6 +883,14 @@ def provenance(ses: Session, config: DetectorConfig, name: str, store: str, goal
 # --------------------------------------------------------------------------- CLI
 
 
+def trial_evaluator(ses: Session, **where: Any) -> Evaluator:
+    """The `Evaluator` a tune of the workspace scores its trials with (the same grids,
+    tuning hours and goal; no known false alarms); `where` as for `api.make_replayer`.
+    The caller closes ``ev.replayer``."""
+    _, _, first_hour, split, grids, ks, ms = _plan(ses, ())
+    return _evaluator(ses, ks, ms, grids, first_hour, split, ses.ws.goal, None, **where)
+
+
 def split_hour(ses: Session) -> int:
     """First held-out hour of the workspace's search (`n_hours`: none held out)."""
     return _plan(ses, ())[3]
