@@ -24,6 +24,7 @@ from calibrate.reporting.build import build_report_data, goal_verdict
 from calibrate.reporting.render import render_html
 from calibrate.reporting.report import write_config_report, write_report
 from calibrate.reporting.report_data import ReportData
+from calibrate.reporting.settings_table import settings_table
 from calibrate.scoring.tradeoffs import pareto_front
 from tests.synthetic import make_workspace
 
@@ -151,6 +152,16 @@ def test_markup_in_values_is_shown_as_text(written) -> None:
     assert "a&b<i>" in text
     assert bad in p.alts
     assert "<script" not in page and "<b>" not in page
+
+
+def test_the_folder_holds_the_settings_as_one_flat_table(ses, chosen_config,
+                                                        config_report: Path) -> None:
+    # tests/test_settings_table.py checks the table itself against replays and statsmodels
+    written = pd.read_csv(config_report / "settings.csv", keep_default_na=False)
+    expect = settings_table(chosen_config, ses.ws.metric_names)
+    # the CSV reads back to the same values (floats written at full precision)
+    pd.testing.assert_frame_equal(written.astype(str), expect.astype(str))
+    assert set(written["fence_multiplier"]) == {2.5}
 
 
 def test_markdown_images_are_files_beside_it(config_report: Path) -> None:

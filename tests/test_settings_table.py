@@ -5,7 +5,6 @@ it spells out are the ones statsmodels resolves."""
 from __future__ import annotations
 
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -14,7 +13,6 @@ from statsmodels.tsa.seasonal import MSTL, STL
 
 from calibrate import api
 from calibrate.engine.executors import SerialExecutor
-from calibrate.reporting.report import write_config_report
 from calibrate.reporting.settings_table import COLUMNS, settings_table, stl_lengths
 from calibrate.settings import DetectorConfig, DetectorSettings
 from tests.synthetic import make_workspace
@@ -118,14 +116,3 @@ def test_stl_lengths_are_the_ones_statsmodels_resolves(window, seasonal, trend, 
     default, explicit = stl.fit(), stl.fit(inner_iter=int(got["stl_inner_iterations"]),
                                            outer_iter=int(got["stl_outer_iterations"]))
     assert np.array_equal(default.resid, explicit.resid)
-
-
-def test_the_report_folder_holds_the_table(ses, tmp_path: Path) -> None:
-    config = DetectorConfig.from_table(GROUPED, "test")
-    out = tmp_path / "report"
-    write_config_report(ses, config, out, executor=SerialExecutor())
-    written = pd.read_csv(out / "settings.csv", keep_default_na=False)
-    expect = settings_table(config, ses.ws.metric_names)
-    # the CSV reads back to the same values (floats written at full precision)
-    pd.testing.assert_frame_equal(written.astype(str), expect.astype(str))
-    assert written.loc[written["group"] == "base", "min_impact"].tolist()[:2] == [150.0, 4.0]
