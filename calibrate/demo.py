@@ -124,7 +124,7 @@ alerts-current.csv      alerts today's [detector] settings would have raised
 study.journal           the Optuna study (re-running the demo continues it)
 tuned.toml              tuned settings; `calibrate replay workspace --config tuned.toml` reads it
 report/index.html       the calibration report (self-contained; open it in a browser)
-report/settings.csv     the tuned settings as one flat table (one row per group and metric)
+report/settings.csv     the tuned settings as one flat table (one row per level and metric)
 alerts-for-review.csv   tuned settings' alerts with a blank verdict column for analysts
 volume.csv              alerts per team per week against the budget
 """

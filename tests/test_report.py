@@ -158,7 +158,7 @@ def test_the_folder_holds_the_settings_as_one_flat_table(ses, chosen_config,
                                                         config_report: Path) -> None:
     # tests/test_settings_table.py checks the table itself against replays and statsmodels
     written = pd.read_csv(config_report / "settings.csv", keep_default_na=False)
-    expect = settings_table(chosen_config, ses.ws.metric_names)
+    expect = settings_table(chosen_config, list(ses.ws.levels), ses.ws.metric_names)
     # the CSV reads back to the same values (floats written at full precision)
     pd.testing.assert_frame_equal(written.astype(str), expect.astype(str))
     assert set(written["fence_multiplier"]) == {2.5}

@@ -34,28 +34,25 @@ def ses(tmp_path_factory: pytest.TempPathFactory) -> api.Session:
 
 
 def _row_settings(row: pd.Series) -> DetectorSettings:
-    names = [c for c in COLUMNS[4:] if not c.startswith("stl_")]
+    names = [c for c in COLUMNS[3:] if not c.startswith("stl_")]
     values = {n: row[n].item() if hasattr(row[n], "item") else row[n] for n in names}
     return DetectorSettings(**values)
 
 
-def _first_row(table: pd.DataFrame, level: str, metric: str) -> pd.Series:
-    """The table's own rule: the lowest `order` whose levels hold the level (or are
-    `any`) and whose metric is the metric."""
-    hit = table[(table["metric"] == metric)
-                & table["levels"].map(lambda s: s == "any" or level in s.split())]
-    return hit.sort_values("order", kind="stable").iloc[0]
-
-
 def test_each_row_alone_raises_the_alerts_of_the_grouped_config(ses) -> None:
     config = DetectorConfig.from_table(GROUPED, "test")
-    metrics = ses.ws.metric_names
-    table = settings_table(config, metrics)
+    levels, metrics = list(ses.ws.levels), list(ses.ws.metric_names)
+    table = settings_table(config, levels, metrics)
     assert list(table.columns) == list(COLUMNS)
-    # every row a series can reach is there: groups in order, the base last
-    assert table["group"].tolist() == ["markets"] * 2 + ["clicks"] + ["base"] * 2
-    assert table["metric"].tolist() == ["impressions", "clicks", "clicks"] * 1 + [
-        "impressions", "clicks"]
+    # one row per level and metric, with the group a replay matches first
+    assert list(zip(table["level"], table["metric"], strict=True)) == [
+        (lv, m) for lv in levels for m in metrics]
+    want = {("market", "impressions"): "markets", ("market", "clicks"): "markets",
+            ("campaign", "impressions"): "base", ("campaign", "clicks"): "clicks"}
+    assert table.set_index(["level", "metric"])["group"].to_dict() == want
+    assert table.set_index(["level", "metric"])["min_impact"].to_dict() == {
+        ("market", "impressions"): 150.0, ("market", "clicks"): 4.0,
+        ("campaign", "impressions"): 150.0, ("campaign", "clicks"): 4.0}
 
     def replay(cfg: DetectorConfig) -> pd.DataFrame:
         res = api.replay_session(ses, cfg, executor=SerialExecutor(), progress=False)
@@ -66,13 +63,7 @@ def test_each_row_alone_raises_the_alerts_of_the_grouped_config(ses) -> None:
     parts = []
     for _, row in table.iterrows():
         alone = replay(DetectorConfig(base=_row_settings(row)))
-        mine = [
-            (lv, m) for lv in ses.ws.levels for m in metrics
-            if _first_row(table, lv, m).name == row.name
-        ]
-        keep = alone[[(lv, m) in mine for lv, m in zip(alone["level"], alone["metric"],
-                                                          strict=True)]]
-        parts.append(keep)
+        parts.append(alone[(alone["level"] == row["level"]) & (alone["metric"] == row["metric"])])
     flat = pd.concat(parts, ignore_index=True)
     order = ["level", "metric", "start", "raised_hour"]
     assert len(flat) == len(grouped)

@@ -25,7 +25,7 @@ from calibrate.scoring.tables import ANY_LABEL
 
 TEMPLATES = Path(__file__).parents[1] / "templates"
 SETTINGS_FILE_NOTE = (
-    "The chosen settings as one flat table, one row per group and watched metric with "
+    "The chosen settings as one flat table, one row per level and watched metric with "
     "every setting spelled out (what another detector needs), are in settings.csv beside "
     "this page.")
 

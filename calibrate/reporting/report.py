@@ -69,7 +69,7 @@ def _extra_files(ses: api.Session, config: DetectorConfig, chosen: ReplayResult
                  ) -> dict[str, bytes]:
     """The alerts to review and the settings as one flat table (`settings_table`)."""
     return {"alerts-for-review.csv": _review_csv(chosen),
-            "settings.csv": settings_csv(config, ses.ws.metric_names)}
+            "settings.csv": settings_csv(config, list(ses.ws.levels), ses.ws.metric_names)}
 
 
 def steps_bar(progress: bool, total: int = 4) -> tqdm:

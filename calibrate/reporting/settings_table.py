@@ -1,10 +1,11 @@
 """A config as one flat table (stage 9): what another detector needs to apply it.
 
-`tuned.toml` stores group tables as differences from the base table, and a metric's
-minimum impact as an entry of a table. `settings_table` resolves them: one row per
-group (in matching order, the base last) and watched metric, every setting spelled out,
-plus the STL smoother lengths and iteration counts statsmodels resolves from them
-(docs/detector.md, "Detector semantics"). The report folder holds it as ``settings.csv``.
+`tuned.toml` stores group tables as differences from the base table, matched to series
+in order, and a metric's minimum impact as an entry of a table. `settings_table`
+resolves them: one row per level and watched metric with the settings its series are
+replayed with, every setting spelled out, plus the STL smoother lengths and iteration
+counts statsmodels resolves from them (docs/detector.md, "Detector semantics"). The
+report folder holds it as ``settings.csv``.
 """
 
 from __future__ import annotations
@@ -20,7 +21,7 @@ from calibrate.settings import DetectorConfig, DetectorSettings
 
 #: columns of the table, in order
 COLUMNS = (
-    "order", "group", "levels", "metric",
+    "level", "metric", "group",
     *(f.name for f in dataclasses.fields(DetectorSettings) if f.name != "min_impact_per_metric"),
     "stl_periods", "stl_seasonal_spans", "stl_trend_spans", "stl_low_pass_spans",
     "stl_inner_iterations", "stl_outer_iterations", "stl_passes",
@@ -57,41 +58,40 @@ def stl_lengths(s: DetectorSettings) -> dict[str, str]:
     }
 
 
-def settings_table(config: DetectorConfig, metrics: Sequence[str]) -> pd.DataFrame:
-    """One row per group and watched metric with every setting resolved.
+def settings_table(config: DetectorConfig, levels: Sequence[str],
+                   metrics: Sequence[str]) -> pd.DataFrame:
+    """One row per level and watched metric: the settings its series are replayed with.
 
     Parameters
     ----------
     config : DetectorConfig
         The settings (base table and ordered groups).
-    metrics : sequence of str
-        The watched metrics, in the workspace's order.
+    levels, metrics : sequence of str
+        The workspace's levels and watched metrics, in its order.
 
     Returns
     -------
     pandas.DataFrame
-        Columns `COLUMNS`. A series of level l and metric m uses the first row (lowest
-        `order`) whose `levels` holds l (or is ``any``) and whose `metric` is m; the base
-        rows (group ``base``, levels ``any``) come last and cover every other series.
-        `min_impact` is that metric's own, in its units.
+        Columns `COLUMNS`: the level and metric, the group whose settings apply (the
+        first matching one, as in a replay; ``base`` when none matches), every setting
+        (`min_impact` the metric's own, in its units) and the STL lengths of
+        `stl_lengths`.
     """
-    scopes = [(g.name, g.levels, g.metrics, g.settings) for g in config.groups]
-    scopes.append(("base", (), (), config.base))
     rows = []
-    for order, (name, levels, only, settings) in enumerate(scopes, start=1):
-        lengths = stl_lengths(settings)
+    for level in levels:
         for metric in metrics:
-            if only and metric not in only:
-                continue
+            group = next((g for g in config.groups if g.matches(level, metric)), None)
+            settings = config.base if group is None else group.settings
             values = dataclasses.asdict(settings)
             values.pop("min_impact_per_metric")
             values["min_impact"] = settings.impact_for(metric)
-            rows.append({"order": order, "group": name,
-                         "levels": " ".join(levels) if levels else "any",
-                         "metric": metric, **values, **lengths})
+            rows.append({"level": level, "metric": metric,
+                         "group": "base" if group is None else group.name,
+                         **values, **stl_lengths(settings)})
     return pd.DataFrame(rows, columns=list(COLUMNS))
 
 
-def settings_csv(config: DetectorConfig, metrics: Sequence[str]) -> bytes:
+def settings_csv(config: DetectorConfig, levels: Sequence[str], metrics: Sequence[str]
+                 ) -> bytes:
     """`settings_table` as CSV bytes (floats written in full, as in tuned.toml)."""
-    return settings_table(config, metrics).to_csv(index=False).encode("utf-8")
+    return settings_table(config, levels, metrics).to_csv(index=False).encode("utf-8")
