@@ -11,7 +11,6 @@ report folder holds it as ``settings.csv``.
 from __future__ import annotations
 
 import dataclasses
-import warnings
 from collections.abc import Sequence
 
 import pandas as pd
@@ -31,13 +30,11 @@ COLUMNS = (
 def stl_lengths(s: DetectorSettings) -> dict[str, str]:
     """The periods, smoother lengths and iteration counts the fits of `s` use, as
     statsmodels resolves them (space-separated, one entry per seasonal component: with
-    `weekly_period` MSTL derives its own seasonal spans, drops a period of half the
-    window or more, and makes two passes over the components when two are left)."""
+    `weekly_period` MSTL derives its own seasonal spans and makes two passes over the
+    components)."""
     if s.weekly_period:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", UserWarning)
-            periods, spans = mstl_settings(
-                s.decomposition_window_hours, (s.period_hours, 7 * s.period_hours), None)
+        periods, spans = mstl_settings(
+            s.decomposition_window_hours, (s.period_hours, 7 * s.period_hours), None)
     else:
         periods, spans = (s.period_hours,), (s.seasonal_span,)
     trend_low = [stl_config(p, w, None if s.weekly_period else s.trend_span or None)

@@ -48,7 +48,8 @@ def variants(text: str) -> dict[str, str]:
 
 
 def one_run(text: str, trials: int, engine: str) -> tuple[float, str, str, str]:
-    """Tune a fresh copy: (seconds, best value, held-out miss rate, warning)."""
+    """Tune a fresh copy: (seconds, best value, held-out miss rate with its count,
+    interval and verdict, warning)."""
     with tempfile.TemporaryDirectory() as tmp:
         ws = sample_copy(Path(tmp), text)
         ses = api.open_session(ws)
@@ -58,7 +59,10 @@ def one_run(text: str, trials: int, engine: str) -> tuple[float, str, str, str]:
         took = time.perf_counter() - t0
     best = res.trials[res.trials["feasible"]]
     value = f"{best['value'].min():.2f}" if len(best) else "none feasible"
-    held = "n/a" if res.holdout is None else f"{res.holdout.miss_rate:.3f}"
+    h = res.holdout
+    held = "n/a" if h is None else (
+        f"{h.miss_rate:.3f} ({h.incidents - h.caught} of {h.incidents} missed, Wilson 95% "
+        f"{h.miss_rate_low:.3f}-{h.miss_rate_high:.3f}; verdict: {res.verdict})")
     return took, value, held, res.holdout_warning or ""
 
 
